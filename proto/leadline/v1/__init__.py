@@ -1,0 +1,1 @@
+"""Generated leadline v1 wire contract (protobuf + gRPC stubs)."""
