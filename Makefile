@@ -1,0 +1,54 @@
+# leadline developer commands. A fresh machine needs only Python >= 3.11 and make:
+#   make demo   - create .venv, install leadline, run the end-to-end demo
+#   make test   - create .venv, install with test extras, lint, run the tests
+PYTHON ?= python3
+VENV ?= .venv
+PY := $(VENV)/bin/python
+PROTO_DIR := proto
+PROTO_OUT := proto/leadline/v1
+
+.PHONY: demo test lint format proto bench bench-quick clean
+
+$(PY):
+	$(PYTHON) -c 'import sys; assert sys.version_info >= (3, 11), "leadline needs Python >= 3.11, found " + sys.version'
+	$(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+
+# Stamp files: reinstall only when pyproject.toml changes.
+$(VENV)/.installed: pyproject.toml | $(PY)
+	$(PY) -m pip install --quiet -e .
+	touch $@
+
+$(VENV)/.installed-test: pyproject.toml | $(PY)
+	$(PY) -m pip install --quiet -e '.[test]'
+	touch $(VENV)/.installed $@
+
+demo: $(VENV)/.installed
+	$(VENV)/bin/leadline demo
+
+test: $(VENV)/.installed-test lint
+	$(PY) -m pytest -q
+
+lint: $(VENV)/.installed-test
+	$(VENV)/bin/ruff check .
+	$(VENV)/bin/ruff format --check .
+	$(VENV)/bin/mypy service client
+
+format: $(VENV)/.installed-test
+	$(VENV)/bin/ruff format .
+	$(VENV)/bin/ruff check --fix .
+
+# Regenerate the committed protobuf / gRPC code with the pinned grpcio-tools.
+proto: $(VENV)/.installed-test
+	$(PY) -m grpc_tools.protoc -I$(PROTO_DIR) --python_out=$(PROTO_DIR) \
+		--pyi_out=$(PROTO_DIR) --grpc_python_out=$(PROTO_DIR) \
+		$(PROTO_OUT)/leadline.proto
+
+bench: $(VENV)/.installed-test
+	$(PY) benchmarks/labels.py
+
+bench-quick: $(VENV)/.installed-test
+	$(PY) benchmarks/labels.py --quick
+
+clean:
+	rm -rf $(VENV) build dist *.egg-info .pytest_cache .mypy_cache .ruff_cache
