@@ -1,0 +1,401 @@
+"""Loss-predicting surrogate: expected loss g and residual second moment E[(L - g)^2].
+
+Cold start (version 0, no labels):
+- classification: the model's own predictive distribution pi = f, so
+  g = sum_y f(y) loss(f, y) and E[L^2] likewise;
+- regression: the model's outputs carry no spread, so a constant prior from the cap:
+  g = cap / 2 and E[(L - g)^2] = cap^2 / 4 (the largest variance of a variable in
+  [0, cap], Popoviciu's inequality), deliberately pessimistic until labels arrive.
+
+With labels (``fit_surrogate``): LightGBM boosting that starts from the model's own output
+(``init_score``) and learns corrections, strongly regularised for tiny label sets, fitted
+``ensemble_size`` times on bootstrap resamples for an epistemic spread:
+- classification: multiclass boosting with init_score = log(clipped f); the ensemble's
+  mean class probabilities give g and E[L^2]. Classes never seen among the labels keep the
+  model's own probability (the seen classes share the rest), so a class absent from a tiny
+  label set is not pushed towards zero.
+- regression: one booster for the target mean (init_score = f) and one for the deployed
+  model's raw squared error (y - f)^2; the error d = y - f is modelled as Gaussian with
+  mean mu - f and variance max((y - f)^2-fit - (mu - f)^2, 10% of the fit), and the clipped
+  loss moments follow in closed form (``LossSpec.expected_losses``).
+E[(L - g)^2] = mean over members of (E[L^2] - g^2) + variance over members of g.
+
+Refit cost is bounded: at most ``max_training_rows`` labels (a seeded subsample beyond),
+``num_rounds`` rounds of ``num_leaves`` leaves per member (times K classes), and
+``ensemble_size`` members; scoring costs ensemble_size x num_rounds (x K) tree walks per
+item. Everything is deterministic given ``seed`` (LightGBM runs with
+``deterministic=True`` on ``num_threads`` threads).
+
+Persistence: ``to_bytes`` writes a JSON envelope holding each booster's
+``model_to_string`` text; no pickle.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+from dataclasses import dataclass
+
+import lightgbm as lgb
+import numpy as np
+
+from ._checks import check_finite_array
+from .losses import CROSS_ENTROPY_CLIP, LossKind, LossSpec
+
+__all__ = [
+    "Surrogate",
+    "SurrogateScores",
+    "SurrogateSettings",
+    "cold_start_surrogate",
+    "fit_surrogate",
+]
+
+_LOG = logging.getLogger(__name__)
+_FORMAT = "leadline-surrogate"
+_FORMAT_VERSION = 1
+_REGRESSION_SPREAD_FLOOR = 0.1  # share of the squared-error fit kept as variance
+
+
+@dataclass(frozen=True)
+class SurrogateScores:
+    """Per-item surrogate predictions, each (n,)."""
+
+    expected_loss: np.ndarray
+    residual_second_moment: np.ndarray
+    spread: np.ndarray
+
+
+@dataclass(frozen=True, kw_only=True)
+class SurrogateSettings:
+    """Capacity and cost limits of a surrogate fit (defaults tuned for tiny label sets)."""
+
+    ensemble_size: int = 5
+    num_leaves: int = 7
+    min_data_in_leaf: int = 3
+    num_rounds: int = 40
+    learning_rate: float = 0.1
+    lambda_l2: float = 5.0
+    max_bin: int = 63
+    max_training_rows: int = 20_000
+    #: With at least this many labels a 20% hold-out picks the number of rounds.
+    early_stopping_min_labels: int = 200
+    num_threads: int = 1
+
+    def __post_init__(self) -> None:
+        for name in (
+            "ensemble_size",
+            "num_leaves",
+            "min_data_in_leaf",
+            "num_rounds",
+            "max_bin",
+            "max_training_rows",
+            "num_threads",
+        ):
+            value = getattr(self, name)
+            if not isinstance(value, int) or value < 1:
+                raise ValueError(f"{name} = {value!r}, must be an integer >= 1.")
+        if self.num_leaves < 2:
+            raise ValueError(f"num_leaves = {self.num_leaves!r}, must be >= 2.")
+        if self.num_threads > 2:
+            raise ValueError(f"num_threads = {self.num_threads!r}, must be 1 or 2.")
+        if not (0.0 < self.learning_rate <= 1.0):
+            raise ValueError(f"learning_rate = {self.learning_rate!r}, must be in (0, 1].")
+        if not (self.lambda_l2 >= 0.0):
+            raise ValueError(f"lambda_l2 = {self.lambda_l2!r}, must be >= 0.")
+
+
+class Surrogate:
+    """A fitted, immutable surrogate. Build with ``cold_start_surrogate`` or
+    ``fit_surrogate``; ``version`` 0 is the cold start."""
+
+    def __init__(
+        self,
+        spec: LossSpec,
+        *,
+        version: int,
+        label_count: int,
+        boosters: tuple[lgb.Booster, ...] = (),
+        variance_boosters: tuple[lgb.Booster, ...] = (),
+        seen_classes: tuple[int, ...] = (),
+        feature_dim: int = -1,
+    ) -> None:
+        self.spec = spec
+        self.version = int(version)
+        self.label_count = int(label_count)
+        self._boosters = boosters
+        self._variance_boosters = variance_boosters
+        self._seen_classes = seen_classes
+        self._feature_dim = feature_dim
+
+    def __repr__(self) -> str:
+        return (
+            f"Surrogate(version={self.version}, label_count={self.label_count}, "
+            f"members={len(self._boosters)}, spec={self.spec!r})"
+        )
+
+    @property
+    def is_cold_start(self) -> bool:
+        return not self._boosters
+
+    # ----------------------------------------------------------------------------------
+
+    def score(self, features: np.ndarray, outputs: np.ndarray) -> SurrogateScores:
+        """g, E[(L - g)^2] and the ensemble spread of g for every item."""
+        out = self.spec.check_outputs(outputs)
+        n = out.shape[0]
+        if self.is_cold_start:
+            return _cold_scores(self.spec, out)
+        x = _design(features, out, self._feature_dim)
+        if x.shape[0] != n:
+            raise ValueError(f"features has {x.shape[0]} rows, must match outputs ({n}).")
+        firsts, seconds = [], []
+        for index, booster in enumerate(self._boosters):
+            if self.spec.is_classification:
+                pi = _class_probabilities(booster, x, out, self._seen_classes)
+                first, second = self.spec.expected_losses(out, pi)
+            else:
+                mean = out + booster.predict(x)
+                raw = np.maximum(self._variance_boosters[index].predict(x), 0.0)
+                variance = np.maximum(raw - (mean - out) ** 2, _REGRESSION_SPREAD_FLOOR * raw)
+                first, second = self.spec.expected_losses(out, (mean, variance))
+            firsts.append(first)
+            seconds.append(second)
+        first_stack = np.vstack(firsts)
+        second_stack = np.vstack(seconds)
+        g = first_stack.mean(axis=0)
+        aleatoric = np.maximum(second_stack - first_stack**2, 0.0).mean(axis=0)
+        epistemic = first_stack.var(axis=0)
+        return SurrogateScores(
+            expected_loss=g,
+            residual_second_moment=aleatoric + epistemic,
+            spread=np.sqrt(epistemic),
+        )
+
+    # ----------------------------------------------------------------------------------
+
+    def to_bytes(self) -> bytes:
+        """JSON envelope with LightGBM model text; read back with ``from_bytes``."""
+        envelope = {
+            "format": _FORMAT,
+            "format_version": _FORMAT_VERSION,
+            "loss_kind": self.spec.kind.value,
+            "num_classes": self.spec.num_classes,
+            "version": self.version,
+            "label_count": self.label_count,
+            "feature_dim": self._feature_dim,
+            "seen_classes": list(self._seen_classes),
+            "boosters": [b.model_to_string() for b in self._boosters],
+            "variance_boosters": [b.model_to_string() for b in self._variance_boosters],
+        }
+        return json.dumps(envelope).encode("utf-8")
+
+    @classmethod
+    def from_bytes(cls, spec: LossSpec, data: bytes) -> Surrogate:
+        """Inverse of ``to_bytes``; ValueError if the bytes are not a surrogate for spec."""
+        try:
+            envelope = json.loads(bytes(data).decode("utf-8"))
+        except (UnicodeDecodeError, json.JSONDecodeError) as error:
+            raise ValueError(f"data is not a surrogate envelope ({error}).") from None
+        if not isinstance(envelope, dict) or envelope.get("format") != _FORMAT:
+            raise ValueError("data format is not 'leadline-surrogate'.")
+        if envelope.get("format_version") != _FORMAT_VERSION:
+            raise ValueError(
+                f"format_version = {envelope.get('format_version')!r}, must be {_FORMAT_VERSION}."
+            )
+        if envelope["loss_kind"] != spec.kind.value or envelope["num_classes"] != spec.num_classes:
+            raise ValueError(
+                f"surrogate was fitted for loss {envelope['loss_kind']!r} with "
+                f"{envelope['num_classes']} classes, spec is {spec!r}."
+            )
+        return cls(
+            spec,
+            version=envelope["version"],
+            label_count=envelope["label_count"],
+            boosters=tuple(lgb.Booster(model_str=s) for s in envelope["boosters"]),
+            variance_boosters=tuple(
+                lgb.Booster(model_str=s) for s in envelope["variance_boosters"]
+            ),
+            seen_classes=tuple(int(c) for c in envelope["seen_classes"]),
+            feature_dim=int(envelope["feature_dim"]),
+        )
+
+
+def cold_start_surrogate(spec: LossSpec) -> Surrogate:
+    """Version 0: the model's own predictive distribution (regression: constant prior)."""
+    return Surrogate(spec, version=0, label_count=0)
+
+
+def _cold_scores(spec: LossSpec, outputs: np.ndarray) -> SurrogateScores:
+    n = outputs.shape[0]
+    if spec.is_classification:
+        first, second = spec.expected_losses(outputs, outputs)
+        residual = np.maximum(second - first**2, 0.0)
+    else:
+        first = np.full(n, spec.loss_cap / 2.0)
+        residual = np.full(n, spec.loss_cap**2 / 4.0)
+    return SurrogateScores(expected_loss=first, residual_second_moment=residual, spread=np.zeros(n))
+
+
+def _design(features: object, outputs: np.ndarray, feature_dim: int) -> np.ndarray:
+    x = check_finite_array("features", features, ndim=2)
+    if feature_dim >= 0 and x.shape[1] != feature_dim:
+        raise ValueError(
+            f"features has {x.shape[1]} columns, surrogate was fitted on {feature_dim}."
+        )
+    columns = outputs if outputs.ndim == 2 else outputs[:, None]
+    return np.hstack([x, columns])
+
+
+def _log_init(outputs: np.ndarray) -> np.ndarray:
+    return np.log(np.clip(outputs, CROSS_ENTROPY_CLIP, 1.0))
+
+
+def _class_probabilities(
+    booster: lgb.Booster, x: np.ndarray, outputs: np.ndarray, seen: tuple[int, ...]
+) -> np.ndarray:
+    raw = booster.predict(x, raw_score=True) + _log_init(outputs)
+    raw = raw - raw.max(axis=1, keepdims=True)
+    learned = np.exp(raw)
+    k = outputs.shape[1]
+    seen_mask = np.zeros(k, dtype=bool)
+    seen_mask[list(seen)] = True
+    # Unseen classes keep the model's own probability; seen classes share the rest in the
+    # proportions the boosted model learned.
+    unseen_mass = outputs[:, ~seen_mask].sum(axis=1, keepdims=True)
+    learned_seen = learned[:, seen_mask]
+    learned_seen = learned_seen / learned_seen.sum(axis=1, keepdims=True)
+    pi = outputs.copy()
+    pi[:, seen_mask] = learned_seen * np.clip(1.0 - unseen_mass, 0.0, 1.0)
+    return pi / pi.sum(axis=1, keepdims=True)
+
+
+def _params(settings: SurrogateSettings, objective: str, seed: int, **extra: object) -> dict:
+    params: dict[str, object] = {
+        "objective": objective,
+        "num_leaves": settings.num_leaves,
+        "min_data_in_leaf": settings.min_data_in_leaf,
+        "min_data_in_bin": 1,
+        "min_sum_hessian_in_leaf": 1e-3,
+        "learning_rate": settings.learning_rate,
+        "lambda_l2": settings.lambda_l2,
+        "max_bin": settings.max_bin,
+        "num_threads": settings.num_threads,
+        "deterministic": True,
+        "force_row_wise": True,
+        "seed": seed,
+        "verbose": -1,
+    }
+    params.update(extra)
+    return params
+
+
+def _train(
+    params: dict,
+    x: np.ndarray,
+    y: np.ndarray,
+    init: np.ndarray | None,
+    *,
+    settings: SurrogateSettings,
+    rng: np.random.Generator,
+) -> lgb.Booster:
+    n = x.shape[0]
+    callbacks = []
+    valid_sets = []
+    rows = np.arange(n)
+    if n >= settings.early_stopping_min_labels:
+        order = rng.permutation(n)
+        cut = n // 5
+        hold, rows = order[:cut], order[cut:]
+        valid = lgb.Dataset(
+            x[hold],
+            label=y[hold],
+            init_score=None if init is None else init[hold],
+            params={"verbose": -1},
+        )
+        valid_sets = [valid]
+        callbacks = [lgb.early_stopping(5, verbose=False)]
+    sample = rng.choice(rows, size=rows.size, replace=True)
+    train = lgb.Dataset(
+        x[sample],
+        label=y[sample],
+        init_score=None if init is None else init[sample],
+        params={"verbose": -1, "min_data_in_bin": 1, "max_bin": settings.max_bin},
+        free_raw_data=True,
+    )
+    if valid_sets:
+        valid_sets = [valid_sets[0]]
+        valid_sets[0].reference = train
+    return lgb.train(
+        params,
+        train,
+        num_boost_round=settings.num_rounds,
+        valid_sets=valid_sets or None,
+        callbacks=callbacks or None,
+    )
+
+
+def fit_surrogate(
+    spec: LossSpec,
+    features: object,
+    outputs: object,
+    labels: object,
+    *,
+    version: int,
+    seed: int,
+    settings: SurrogateSettings | None = None,
+) -> Surrogate:
+    """Fit the warm-started LightGBM ensemble on labeled items (features (n, d), outputs,
+    labels). With no labels it returns the cold start under ``version``."""
+    settings = settings or SurrogateSettings()
+    if int(version) != version or version < 0:
+        raise ValueError(f"version = {version!r}, must be an integer >= 0.")
+    out = spec.check_outputs(outputs)
+    y = spec.check_labels(labels, out.shape[0])
+    x = _design(features, out, -1)
+    if x.shape[0] != out.shape[0]:
+        raise ValueError(f"features has {x.shape[0]} rows, must match outputs ({out.shape[0]}).")
+    feature_dim = x.shape[1] - (out.shape[1] if out.ndim == 2 else 1)
+    n = out.shape[0]
+    if n == 0:
+        return Surrogate(spec, version=version, label_count=0, feature_dim=feature_dim)
+    rng = np.random.default_rng(seed)
+    if n > settings.max_training_rows:
+        keep = np.sort(rng.choice(n, size=settings.max_training_rows, replace=False))
+        x, out, y = x[keep], out[keep], y[keep]
+    boosters = []
+    variance_boosters = []
+    if spec.is_classification:
+        k = spec.num_classes
+        init = _log_init(out)
+        params = _params(settings, "multiclass", seed, num_class=k)
+        for member in range(settings.ensemble_size):
+            params["seed"] = seed + member
+            boosters.append(
+                _train(params, x, y.astype(np.float64), init, settings=settings, rng=rng)
+            )
+        seen = tuple(int(c) for c in np.unique(y))
+    else:
+        cap = spec.loss_cap
+        # Large errors only matter up to the cap: clip them so a few outliers cannot
+        # dominate the squared-error fit (2 sqrt(cap) for squared, 2 cap for absolute).
+        edge = 2.0 * np.sqrt(cap) if spec.kind is LossKind.SQUARED_ERROR else 2.0 * cap
+        error = np.clip(y - out, -edge, edge)
+        target = out + error
+        squared = error**2
+        params = _params(settings, "regression", seed)
+        for member in range(settings.ensemble_size):
+            params["seed"] = seed + member
+            boosters.append(_train(params, x, target, out, settings=settings, rng=rng))
+            # No init_score: LightGBM starts from the mean squared error by itself.
+            variance_boosters.append(_train(params, x, squared, None, settings=settings, rng=rng))
+        seen = ()
+    _LOG.debug("fitted surrogate version %s on %s labels", version, n)
+    return Surrogate(
+        spec,
+        version=version,
+        label_count=n,
+        boosters=tuple(boosters),
+        variance_boosters=tuple(variance_boosters),
+        seen_classes=seen,
+        feature_dim=feature_dim,
+    )
