@@ -1,0 +1,172 @@
+"""Split numpy ingest arrays into ItemBatch messages of a safe size.
+
+gRPC refuses messages above 4 MiB by default, and one huge message also holds the
+server's single writer for long. We cut the rows so that each message stays under a byte
+budget (1 MiB by default) and a row cap, in order, without copying more than needed.
+"""
+
+from __future__ import annotations
+
+import uuid
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from leadline.v1 import leadline_pb2
+
+__all__ = ["IngestColumns", "plan_batches", "build_batches"]
+
+# Bytes a protobuf field adds around its payload: tag plus a length varint. Generous on
+# purpose: the budget must hold, a few bytes of slack cost nothing.
+_FIELD_OVERHEAD = 6
+# A message's fixed part: pool name, request id, tags of the packed fields.
+_MESSAGE_OVERHEAD = 512
+# A fixed namespace so that a caller's request_id always expands to the same batch ids.
+_BATCH_ID_NAMESPACE = uuid.UUID("6f0b3c52-93f1-4a47-8d8a-4c8e5b7f2d19")
+
+
+@dataclass(frozen=True)
+class IngestColumns:
+    """Validated ingest columns, row-aligned; optional columns are None or length n."""
+
+    item_ids: list[str]
+    features: np.ndarray  # (n, d) float32
+    outputs: np.ndarray  # (n, k) or (n,) float32
+    payload_refs: list[str] | None
+    segments: list[str] | None
+    event_time_ms: np.ndarray | None  # (n,) int64
+
+    @classmethod
+    def from_arrays(
+        cls,
+        item_ids: Sequence[str] | np.ndarray,
+        features: np.ndarray | Sequence[Sequence[float]],
+        outputs: np.ndarray | Sequence[float] | Sequence[Sequence[float]],
+        *,
+        payload_refs: Sequence[str] | np.ndarray | None = None,
+        segments: Sequence[str] | np.ndarray | None = None,
+        event_time_ms: Sequence[int] | np.ndarray | None = None,
+    ) -> IngestColumns:
+        """Check shapes and lengths; ValueError names the argument, its shape and the rule.
+
+        Values (finite numbers, probabilities summing to 1, id rules) are the server's to
+        check: it does so once for every client.
+        """
+        ids = [str(item_id) for item_id in item_ids]
+        n = len(ids)
+        feats = np.asarray(features, dtype=np.float32)
+        if feats.ndim != 2 or feats.shape[0] != n:
+            raise ValueError(
+                f"features has shape {feats.shape}, must be (n, feature_dim) with n == "
+                f"len(item_ids) == {n}."
+            )
+        outs = np.asarray(outputs, dtype=np.float32)
+        if outs.ndim not in (1, 2) or outs.shape[0] != n:
+            raise ValueError(
+                f"outputs has shape {outs.shape}, must be (n, num_classes) for "
+                f"classification or (n,) for regression, with n == len(item_ids) == {n}."
+            )
+        refs = cls._optional_strings("payload_refs", payload_refs, n)
+        segs = cls._optional_strings("segments", segments, n)
+        times = None
+        if event_time_ms is not None:
+            times = np.asarray(event_time_ms, dtype=np.int64)
+            if times.shape != (n,):
+                raise ValueError(
+                    f"event_time_ms has shape {times.shape}, must be ({n},): one per item."
+                )
+        return cls(ids, feats, outs, refs, segs, times)
+
+    @staticmethod
+    def _optional_strings(
+        name: str, values: Sequence[str] | np.ndarray | None, n: int
+    ) -> list[str] | None:
+        if values is None:
+            return None
+        strings = [str(value) for value in values]
+        if len(strings) != n:
+            raise ValueError(f"{name} has {len(strings)} entries, must have {n}: one per item.")
+        return strings
+
+    def __len__(self) -> int:
+        return len(self.item_ids)
+
+    def row_bytes(self) -> np.ndarray:
+        """Upper estimate of the encoded bytes each row adds to a message."""
+        n = len(self)
+        fixed = 4 * (
+            self.features.shape[1] + (self.outputs.shape[1] if self.outputs.ndim == 2 else 1)
+        )
+        sizes = np.full(n, fixed, dtype=np.int64)
+        for strings in (self.item_ids, self.payload_refs, self.segments):
+            if strings is not None:
+                sizes += np.fromiter(
+                    (len(s.encode("utf-8")) + _FIELD_OVERHEAD for s in strings),
+                    dtype=np.int64,
+                    count=n,
+                )
+        if self.event_time_ms is not None:
+            sizes += 10  # at most a 10-byte varint each
+        return sizes
+
+
+def plan_batches(row_bytes: np.ndarray, *, max_rows: int, max_bytes: int) -> list[slice]:
+    """Consecutive row ranges, each with at most max_rows rows and max_bytes bytes.
+
+    A single row larger than the budget gets a batch of its own (the server then decides).
+    """
+    if max_rows < 1:
+        raise ValueError(f"max_rows == {max_rows}, must be >= 1.")
+    if max_bytes <= _MESSAGE_OVERHEAD:
+        raise ValueError(f"max_bytes == {max_bytes}, must be > {_MESSAGE_OVERHEAD}.")
+    budget = max_bytes - _MESSAGE_OVERHEAD
+    slices: list[slice] = []
+    start, n = 0, len(row_bytes)
+    cumulative = np.concatenate([[0], np.cumsum(row_bytes)])
+    while start < n:
+        # Largest end with cumulative[end] - cumulative[start] <= budget.
+        end = int(np.searchsorted(cumulative, cumulative[start] + budget, side="right")) - 1
+        end = min(max(end, start + 1), start + max_rows, n)
+        slices.append(slice(start, end))
+        start = end
+    return slices
+
+
+def batch_request_id(request_id: str | None, index: int) -> str:
+    """A fresh uuid4, or when the caller gave one, a stable UUID for batch ``index``.
+
+    A stable id lets a caller repeat a whole ``ingest`` call after a crash: each batch is
+    answered from its first result instead of being applied twice.
+    """
+    if request_id is None:
+        return str(uuid.uuid4())
+    return str(uuid.uuid5(_BATCH_ID_NAMESPACE, f"{request_id}/{index}"))
+
+
+def build_batches(
+    pool: str,
+    columns: IngestColumns,
+    *,
+    max_rows: int,
+    max_bytes: int,
+    request_id: str | None = None,
+) -> Iterator[leadline_pb2.ItemBatch]:
+    """ItemBatch messages covering every row once, in order, each with its request id."""
+    for index, rows in enumerate(
+        plan_batches(columns.row_bytes(), max_rows=max_rows, max_bytes=max_bytes)
+    ):
+        batch = leadline_pb2.ItemBatch(
+            pool=pool,
+            request_id=batch_request_id(request_id, index),
+            item_ids=columns.item_ids[rows],
+            features=columns.features[rows].ravel().tolist(),
+            model_outputs=columns.outputs[rows].ravel().tolist(),
+        )
+        if columns.payload_refs is not None:
+            batch.payload_refs.extend(columns.payload_refs[rows])
+        if columns.segments is not None:
+            batch.segments.extend(columns.segments[rows])
+        if columns.event_time_ms is not None:
+            batch.event_time_ms.extend(columns.event_time_ms[rows].tolist())
+        yield batch

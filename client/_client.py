@@ -1,0 +1,539 @@
+"""The typed leadline client: one method per RPC of the v1 contract.
+
+Every call carries a deadline, the bearer token, and waits for the channel to be ready
+(so a server that restarts is waited for, up to the deadline). Calls that fail with
+UNAVAILABLE are retried with exponential backoff by gRPC itself (service config); every
+write carries a request id fixed before the first attempt, so a retry is answered from
+the first result on the server and never applied twice.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import math
+import uuid
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any, TypeVar
+
+import grpc
+import numpy as np
+from grpc_health.v1 import health_pb2, health_pb2_grpc
+
+from leadline.client._batching import IngestColumns, build_batches
+from leadline.client._enums import parse_enum
+from leadline.client._errors import LeadlineError, error_from_rpc
+from leadline.client._tls import TlsConfig
+from leadline.v1 import leadline_pb2, leadline_pb2_grpc
+
+__all__ = ["Client", "IngestResult", "Skip", "pool_name"]
+
+_LOG = logging.getLogger(__name__)
+
+_SERVICES = (
+    "leadline.v1.PoolService",
+    "leadline.v1.IngestService",
+    "leadline.v1.LabelingService",
+    "leadline.v1.EstimateService",
+    "grpc.health.v1.Health",
+)
+# gRPC caps maxAttempts at 5. Together with wait_for_ready (each attempt waits for the
+# channel to reconnect, within the call's deadline) this rides out a server restart.
+_RETRY_POLICY = {
+    "maxAttempts": 5,
+    "initialBackoff": "0.2s",
+    "maxBackoff": "3s",
+    "backoffMultiplier": 2,
+    "retryableStatusCodes": ["UNAVAILABLE"],
+}
+SERVICE_CONFIG = json.dumps(
+    {
+        "methodConfig": [
+            {"name": [{"service": service} for service in _SERVICES], "retryPolicy": _RETRY_POLICY}
+        ]
+    }
+)
+_MIB = 1 << 20
+_CHANNEL_OPTIONS: list[tuple[str, Any]] = [
+    ("grpc.enable_retries", 1),
+    ("grpc.service_config", SERVICE_CONFIG),
+    # A request larger than the per-call retry buffer is never retried: keep the buffer
+    # above the largest ingest message we build.
+    ("grpc.per_rpc_retry_buffer_size", 16 * _MIB),
+    ("grpc.retry_buffer_size", 64 * _MIB),
+    ("grpc.max_receive_message_length", 64 * _MIB),
+    # Reconnect quickly after a restart (gRPC's default backoff grows to 120 s).
+    ("grpc.initial_reconnect_backoff_ms", 200),
+    ("grpc.min_reconnect_backoff_ms", 200),
+    ("grpc.max_reconnect_backoff_ms", 2000),
+]
+_T = TypeVar("_T")
+
+
+def pool_name(pool: str) -> str:
+    """'pools/{id}' for a pool id or a pool name; ValueError for an empty value."""
+    pool = pool.strip()
+    if not pool or pool == "pools/":
+        raise ValueError(f"pool == {pool!r}, must be a pool id or 'pools/{{pool_id}}'.")
+    return pool if pool.startswith("pools/") else f"pools/{pool}"
+
+
+@dataclass(frozen=True)
+class Skip:
+    """A label outcome meaning "the labeler could not label this item", with the reason."""
+
+    reason: str
+
+
+@dataclass(frozen=True)
+class IngestResult:
+    """Totals over all messages one ``Client.ingest`` call sent."""
+
+    accepted: int = 0
+    duplicates: int = 0
+    rejected: int = 0
+    errors: list[leadline_pb2.ItemError] = field(default_factory=list)
+    item_count: int = 0  # items in the pool after the last message
+    messages: int = 0  # ItemBatch messages sent
+
+
+Outcome = int | float | Skip | np.integer | np.floating
+
+
+class Client:
+    """A connection to one leadline server.
+
+    ``target`` is ``host:port``. ``token`` is sent as ``authorization: Bearer <token>``.
+    ``tls`` is None or False for a plain channel (loopback or a trusted network only),
+    True for TLS with the system's roots, or a :class:`TlsConfig`. ``timeout`` is the
+    deadline in seconds of every call unless a method is given its own; ``ingest_timeout``
+    is the deadline of each ingest message. ``wait_for_ready`` makes calls wait for the
+    server (up to the deadline) instead of failing at once while it is down.
+
+    Methods raise :class:`~leadline.client.LeadlineError` subclasses on failure and
+    ValueError for arguments that cannot form a request. Use as a context manager or call
+    ``close()``.
+    """
+
+    def __init__(
+        self,
+        target: str,
+        *,
+        token: str | None = None,
+        tls: TlsConfig | bool | None = None,
+        timeout: float = 30.0,
+        ingest_timeout: float = 120.0,
+        wait_for_ready: bool = True,
+        max_batch_rows: int = 5000,
+        max_batch_bytes: int = _MIB,
+    ) -> None:
+        if not target:
+            raise ValueError("target == '', must be 'host:port'.")
+        if timeout <= 0 or ingest_timeout <= 0:
+            raise ValueError(f"timeout == {timeout}, ingest_timeout == {ingest_timeout}; both > 0.")
+        self.target = target
+        self.timeout = timeout
+        self.ingest_timeout = ingest_timeout
+        self.wait_for_ready = wait_for_ready
+        self.max_batch_rows = max_batch_rows
+        self.max_batch_bytes = max_batch_bytes
+        self._metadata: tuple[tuple[str, str], ...] = (
+            (("authorization", f"Bearer {token}"),) if token else ()
+        )
+        options = list(_CHANNEL_OPTIONS)
+        if tls is None or tls is False:
+            self._channel = grpc.insecure_channel(target, options=options)
+        else:
+            config = TlsConfig() if tls is True else tls
+            if config.server_name:
+                options.append(("grpc.ssl_target_name_override", config.server_name))
+            self._channel = grpc.secure_channel(
+                target, config.channel_credentials(), options=options
+            )
+        self._pools = leadline_pb2_grpc.PoolServiceStub(self._channel)
+        self._ingest = leadline_pb2_grpc.IngestServiceStub(self._channel)
+        self._labeling = leadline_pb2_grpc.LabelingServiceStub(self._channel)
+        self._estimates = leadline_pb2_grpc.EstimateServiceStub(self._channel)
+        self._health = health_pb2_grpc.HealthStub(self._channel)
+
+    def __repr__(self) -> str:
+        auth = "token" if self._metadata else "no token"
+        return f"Client(target={self.target!r}, {auth}, timeout={self.timeout})"
+
+    def __enter__(self) -> Client:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Close the channel; further calls fail."""
+        self._channel.close()
+
+    def _call(
+        self,
+        method: str,
+        rpc: Callable[..., _T],
+        request: Any,
+        *,
+        timeout: float | None,
+        wait_for_ready: bool | None = None,
+    ) -> _T:
+        try:
+            return rpc(
+                request,
+                timeout=self.timeout if timeout is None else timeout,
+                metadata=self._metadata,
+                wait_for_ready=self.wait_for_ready if wait_for_ready is None else wait_for_ready,
+            )
+        except grpc.RpcError as error:
+            raise error_from_rpc(error, method=method) from None
+
+    # -- health ---------------------------------------------------------------------------
+
+    def health(self, *, service: str = "", timeout: float | None = None) -> str:
+        """The health service's status for ``service`` ('' = the whole server): 'SERVING'..."""
+        reply = self._call(
+            "Health.Check",
+            self._health.Check,
+            health_pb2.HealthCheckRequest(service=service),
+            timeout=timeout,
+        )
+        return str(health_pb2.HealthCheckResponse.ServingStatus.Name(reply.status))
+
+    # -- pools ----------------------------------------------------------------------------
+
+    def create_pool(
+        self,
+        pool_id: str,
+        *,
+        task: str | int,
+        feature_dim: int,
+        loss: str | int,
+        num_classes: int = 0,
+        cost_matrix: Sequence[Sequence[float]] | np.ndarray | None = None,
+        loss_cap: float = 0.0,
+        default_mode: str | int | None = None,
+        description: str = "",
+        selection_floor: float = 0.0,
+        default_lease_seconds: int = 0,
+        default_confidence: float = 0.0,
+        refit_every_labels: int = 0,
+        exist_ok: bool = False,
+        timeout: float | None = None,
+    ) -> leadline_pb2.Pool:
+        """Create ``pools/{pool_id}``; the server validates every setting.
+
+        ``task``: 'classification' or 'regression'; ``loss``: 'zero-one', 'cross-entropy',
+        'brier', 'cost-matrix', 'squared-error', 'absolute-error'; ``default_mode``:
+        'balanced' (server default), 'unbiased' or 'surrogate'. With ``exist_ok`` an
+        existing pool is returned as it is (its settings are not compared), which also
+        makes a retried creation harmless.
+        """
+        matrix: list[float] = (
+            [] if cost_matrix is None else np.asarray(cost_matrix, dtype=float).ravel().tolist()
+        )
+        pool = leadline_pb2.Pool(
+            task=parse_enum("TaskType", task, field="task"),
+            num_classes=num_classes,
+            feature_dim=feature_dim,
+            loss=parse_enum("LossKind", loss, field="loss"),
+            cost_matrix=matrix,
+            loss_cap=loss_cap,
+            default_mode=parse_enum("EstimatorMode", default_mode, field="default_mode"),
+            description=description,
+            selection_floor=selection_floor,
+            default_lease_seconds=default_lease_seconds,
+            default_confidence=default_confidence,
+            refit_every_labels=refit_every_labels,
+        )
+        request = leadline_pb2.CreatePoolRequest(pool_id=pool_id, pool=pool)
+        try:
+            return self._call("CreatePool", self._pools.CreatePool, request, timeout=timeout)
+        except LeadlineError as error:
+            if exist_ok and error.code == grpc.StatusCode.ALREADY_EXISTS:
+                return self.get_pool(pool_id, timeout=timeout)
+            raise
+
+    def get_pool(self, pool: str, *, timeout: float | None = None) -> leadline_pb2.Pool:
+        """The pool's settings and counts (``pool``: id or 'pools/{id}')."""
+        request = leadline_pb2.GetPoolRequest(name=pool_name(pool))
+        return self._call("GetPool", self._pools.GetPool, request, timeout=timeout)
+
+    def iter_pools(
+        self, *, page_size: int = 0, timeout: float | None = None
+    ) -> Iterator[leadline_pb2.Pool]:
+        """Every pool, ordered by name, fetched page by page."""
+        token = ""
+        while True:
+            request = leadline_pb2.ListPoolsRequest(page_size=page_size, page_token=token)
+            page = self._call("ListPools", self._pools.ListPools, request, timeout=timeout)
+            yield from page.pools
+            token = page.next_page_token
+            if not token:
+                return
+
+    def list_pools(
+        self, *, page_size: int = 0, timeout: float | None = None
+    ) -> list[leadline_pb2.Pool]:
+        """Every pool, ordered by name."""
+        return list(self.iter_pools(page_size=page_size, timeout=timeout))
+
+    def delete_pool(
+        self, pool: str, *, missing_ok: bool = False, timeout: float | None = None
+    ) -> None:
+        """Delete the pool with all its items, draws and labels.
+
+        With ``missing_ok`` an unknown pool is not an error (a retried delete is harmless).
+        """
+        request = leadline_pb2.DeletePoolRequest(name=pool_name(pool))
+        try:
+            self._call("DeletePool", self._pools.DeletePool, request, timeout=timeout)
+        except LeadlineError as error:
+            if not (missing_ok and error.code == grpc.StatusCode.NOT_FOUND):
+                raise
+
+    # -- ingest ---------------------------------------------------------------------------
+
+    def ingest(
+        self,
+        pool: str,
+        item_ids: Sequence[str] | np.ndarray,
+        features: np.ndarray | Sequence[Sequence[float]],
+        outputs: np.ndarray | Sequence[float] | Sequence[Sequence[float]],
+        *,
+        payload_refs: Sequence[str] | np.ndarray | None = None,
+        segments: Sequence[str] | np.ndarray | None = None,
+        event_time_ms: Sequence[int] | np.ndarray | None = None,
+        request_id: str | None = None,
+        timeout: float | None = None,
+    ) -> IngestResult:
+        """Send n items: ``features`` (n, feature_dim), ``outputs`` (n, num_classes)
+        probabilities or (n,) predictions, optional per-item columns.
+
+        The rows go out in order as messages of at most ``max_batch_rows`` rows and about
+        ``max_batch_bytes`` bytes, each with its own request id. Pass ``request_id`` to
+        make the whole call repeatable: the same arguments and ``request_id`` give the same
+        per-message ids, so a repeat after a crash applies nothing twice.
+
+        Raises ValueError for mismatched shapes before anything is sent. A message the
+        server refuses raises; the messages before it stay accepted (the exception does not
+        say how many: repeat with the same ``request_id`` to finish the job).
+        """
+        columns = IngestColumns.from_arrays(
+            item_ids,
+            features,
+            outputs,
+            payload_refs=payload_refs,
+            segments=segments,
+            event_time_ms=event_time_ms,
+        )
+        name = pool_name(pool)
+        accepted = duplicates = rejected = item_count = messages = 0
+        errors: list[leadline_pb2.ItemError] = []
+        for batch in build_batches(
+            name,
+            columns,
+            max_rows=self.max_batch_rows,
+            max_bytes=self.max_batch_bytes,
+            request_id=request_id,
+        ):
+            summary = self._call(
+                "IngestItems",
+                self._ingest.IngestItems,
+                batch,
+                timeout=self.ingest_timeout if timeout is None else timeout,
+            )
+            accepted += summary.accepted
+            duplicates += summary.duplicates
+            rejected += summary.rejected
+            errors.extend(summary.errors)
+            item_count = summary.item_count
+            messages += 1
+        return IngestResult(accepted, duplicates, rejected, errors, item_count, messages)
+
+    # -- labeling -------------------------------------------------------------------------
+
+    def acquire(
+        self,
+        pool: str,
+        count: int,
+        *,
+        labeler: str,
+        lease_seconds: int = 0,
+        request_id: str | None = None,
+        timeout: float | None = None,
+    ) -> list[leadline_pb2.Assignment]:
+        """Up to ``count`` items to label next, each held by ``labeler`` under a lease.
+
+        Fewer come back when fewer unlabeled items are left. ``request_id`` (default: a
+        fresh uuid4) makes a repeat return the same assignments.
+        """
+        request = leadline_pb2.AcquireItemsRequest(
+            pool=pool_name(pool),
+            count=count,
+            labeler=labeler,
+            lease_seconds=lease_seconds,
+            request_id=request_id or str(uuid.uuid4()),
+        )
+        reply = self._call("AcquireItems", self._labeling.AcquireItems, request, timeout=timeout)
+        return list(reply.assignments)
+
+    def submit_labels(
+        self,
+        pool: str,
+        labels: Mapping[str, Outcome] | Iterable[tuple[str, Outcome]],
+        *,
+        labeler: str,
+        request_id: str | None = None,
+        timeout: float | None = None,
+    ) -> leadline_pb2.SubmitLabelsResponse:
+        """Submit outcomes for held assignments: ``{assignment_id: outcome}`` or pairs.
+
+        An outcome is an int class label (classification), a float target value
+        (regression) or :class:`Skip`. Per-item problems come back in ``errors``; the
+        rest are kept.
+        """
+        pairs = labels.items() if isinstance(labels, Mapping) else labels
+        request = leadline_pb2.SubmitLabelsRequest(
+            pool=pool_name(pool), labeler=labeler, request_id=request_id or str(uuid.uuid4())
+        )
+        for assignment_id, outcome in pairs:
+            request.labels.append(_submission(assignment_id, outcome))
+        return self._call("SubmitLabels", self._labeling.SubmitLabels, request, timeout=timeout)
+
+    def release(
+        self,
+        pool: str,
+        assignment_ids: Iterable[str],
+        *,
+        labeler: str,
+        request_id: str | None = None,
+        timeout: float | None = None,
+    ) -> leadline_pb2.ReleaseItemsResponse:
+        """Give held assignments back unlabeled; they will be offered again."""
+        request = leadline_pb2.ReleaseItemsRequest(
+            pool=pool_name(pool),
+            assignment_ids=list(assignment_ids),
+            labeler=labeler,
+            request_id=request_id or str(uuid.uuid4()),
+        )
+        return self._call("ReleaseItems", self._labeling.ReleaseItems, request, timeout=timeout)
+
+    # -- estimates ------------------------------------------------------------------------
+
+    def get_estimate(
+        self,
+        pool: str,
+        *,
+        confidence: float = 0.0,
+        mode: str | int | None = None,
+        segment: str = "",
+        start_time_ms: int = 0,
+        end_time_ms: int = 0,
+        timeout: float | None = None,
+    ) -> leadline_pb2.Estimate:
+        """The risk estimate with its bounds; 0 / None / "" keep the pool's default."""
+        request = leadline_pb2.GetEstimateRequest(
+            pool=pool_name(pool),
+            confidence=confidence,
+            mode=parse_enum("EstimatorMode", mode, field="mode"),
+            segment=segment,
+            start_time_ms=start_time_ms,
+            end_time_ms=end_time_ms,
+        )
+        return self._call("GetEstimate", self._estimates.GetEstimate, request, timeout=timeout)
+
+    def check_gate(
+        self,
+        pool: str,
+        *,
+        max_risk: float,
+        confidence: float = 0.0,
+        bound: str | int | None = None,
+        mode: str | int | None = None,
+        segment: str = "",
+        start_time_ms: int = 0,
+        end_time_ms: int = 0,
+        timeout: float | None = None,
+    ) -> leadline_pb2.GateResult:
+        """PASS / FAIL / UNDECIDED for "risk < max_risk at confidence".
+
+        ``bound``: 'anytime' (the server's default, safe to poll) or 'fixed-time'.
+        """
+        if not math.isfinite(max_risk):
+            raise ValueError(f"max_risk == {max_risk}, must be a finite number.")
+        request = leadline_pb2.CheckGateRequest(
+            pool=pool_name(pool),
+            max_risk=max_risk,
+            confidence=confidence,
+            bound=parse_enum("BoundKind", bound, field="bound"),
+            mode=parse_enum("EstimatorMode", mode, field="mode"),
+            segment=segment,
+            start_time_ms=start_time_ms,
+            end_time_ms=end_time_ms,
+        )
+        return self._call("CheckGate", self._estimates.CheckGate, request, timeout=timeout)
+
+    def iter_draws(
+        self, pool: str, *, page_size: int = 0, timeout: float | None = None
+    ) -> Iterator[leadline_pb2.Draw]:
+        """The pool's draws in draw order with their outcomes, fetched page by page."""
+        token = ""
+        while True:
+            request = leadline_pb2.ListDrawsRequest(
+                pool=pool_name(pool), page_size=page_size, page_token=token
+            )
+            page = self._call("ListDraws", self._estimates.ListDraws, request, timeout=timeout)
+            yield from page.draws
+            token = page.next_page_token
+            if not token:
+                return
+
+    def list_draws(
+        self, pool: str, *, page_size: int = 0, timeout: float | None = None
+    ) -> list[leadline_pb2.Draw]:
+        """Every draw of the pool, in draw order."""
+        return list(self.iter_draws(pool, page_size=page_size, timeout=timeout))
+
+    def get_estimate_trace(
+        self,
+        pool: str,
+        *,
+        confidence: float = 0.0,
+        mode: str | int | None = None,
+        max_points: int = 0,
+        segment: str = "",
+        timeout: float | None = None,
+    ) -> list[leadline_pb2.Estimate]:
+        """Estimates after the first k labeled draws for up to ``max_points`` values of k."""
+        request = leadline_pb2.GetEstimateTraceRequest(
+            pool=pool_name(pool),
+            confidence=confidence,
+            mode=parse_enum("EstimatorMode", mode, field="mode"),
+            max_points=max_points,
+            segment=segment,
+        )
+        trace = self._call(
+            "GetEstimateTrace", self._estimates.GetEstimateTrace, request, timeout=timeout
+        )
+        return list(trace.points)
+
+
+def _submission(assignment_id: str, outcome: Outcome) -> leadline_pb2.LabelSubmission:
+    if isinstance(outcome, Skip):
+        return leadline_pb2.LabelSubmission(assignment_id=assignment_id, skip_reason=outcome.reason)
+    if isinstance(outcome, bool):
+        raise ValueError(
+            f"label for assignment {assignment_id!r} is {outcome!r}; give an int class "
+            "label, a float value or Skip(reason)."
+        )
+    if isinstance(outcome, int | np.integer):
+        return leadline_pb2.LabelSubmission(assignment_id=assignment_id, class_label=int(outcome))
+    if isinstance(outcome, float | np.floating):
+        return leadline_pb2.LabelSubmission(assignment_id=assignment_id, value=float(outcome))
+    raise ValueError(
+        f"label for assignment {assignment_id!r} is {outcome!r} ({type(outcome).__name__}); "
+        "give an int class label, a float value or Skip(reason)."
+    )
