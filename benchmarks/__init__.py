@@ -1,0 +1,1 @@
+"""Benchmarks of leadline: label efficiency of the estimation core (see ``labels.py``)."""

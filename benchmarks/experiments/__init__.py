@@ -1,0 +1,1 @@
+"""Experiments on leadline's selection rule (usefulness score, floor, refit cadence)."""

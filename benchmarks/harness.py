@@ -1,0 +1,437 @@
+"""One repetition of the label-efficiency benchmark: every method on the same pool.
+
+A repetition makes ``max(budgets)`` sequential draws per method and evaluates every budget
+prefix M: the first M draws of a sequential design are themselves a valid design (each
+draw's probability and control variate were fixed before it), so one run serves all
+budgets.
+
+Methods (all on the same pool, same repetition seed):
+
+- ``iid``: uniform random sampling without replacement, sample mean, 90% t interval with
+  the finite-population correction (Cochran, "Sampling Techniques", 3rd ed., 1977, §2.6).
+- ``lure``: the active-testing baseline; proposal q proportional to the surrogate's expected
+  loss (with the same floor), LURE weights (``lure_weights``), normal interval from the
+  weighted losses' sample variance (common practice, no source).
+- ``unbiased`` / ``balanced`` / ``surrogate``: leadline's selection (``usefulness`` +
+  ``draw_batch``) with its own refit surrogate; the three estimator modes of
+  ``estimate_risk`` on the same draws.
+- ``oracle``: the proposal q proportional to |L - g| from the TRUE losses (unattainable; the
+  limit of what a proposal can do with this surrogate), UNBIASED estimator.
+- ``gate``: leadline's selection with the gate floor (a larger epsilon, DESIGN §3.6) for
+  the anytime bound, UNBIASED estimator.
+
+The surrogate sequence is fitted once per repetition, on leadline's own labels, at the
+refit points; ``lure``, ``oracle`` and ``gate`` reuse that sequence. A surrogate fitted on
+another run's labels is independent of this run's draws, so it is a valid (predictable)
+control variate and proposal for them, and the comparison isolates the proposal.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+
+from benchmarks.scenarios import Scenario
+from leadline.service.estimation import (
+    DRAW_LABELED,
+    DrawTerms,
+    EstimatorMode,
+    PlugInSums,
+    SurrogateScores,
+    SurrogateSettings,
+    anytime_path,
+    cold_start_surrogate,
+    draw_batch,
+    estimate_risk,
+    fit_surrogate,
+    lure_weights,
+    usefulness,
+)
+
+__all__ = [
+    "METHODS",
+    "ANYTIME_METHODS",
+    "HarnessConfig",
+    "RepetitionResult",
+    "UsefulnessRule",
+    "run_repetition",
+]
+
+METHODS: tuple[str, ...] = ("iid", "lure", "surrogate", "unbiased", "balanced", "oracle", "gate")
+# Runs whose anytime path is recorded (time-uniform bound over every peek).
+ANYTIME_METHODS: tuple[str, ...] = ("unbiased", "gate", "iid")
+
+UsefulnessRule = Callable[[SurrogateScores, np.ndarray], np.ndarray]
+"""(scores over the candidates, candidate features) -> usefulness >= 0."""
+
+
+def _core_usefulness(scores: SurrogateScores, features: np.ndarray) -> np.ndarray:
+    del features
+    return np.asarray(usefulness(scores), dtype=float)
+
+
+@dataclass(frozen=True, kw_only=True)
+class HarnessConfig:
+    """Everything a repetition needs besides the scenario. Picklable (sent to workers)."""
+
+    budgets: tuple[int, ...] = (10, 25, 50, 100, 200)
+    batch_size: int = 10
+    refit_at: tuple[int, ...] = (10, 25, 50, 100, 150, 200)
+    floor: float = 0.2
+    gate_floor: float = 0.8
+    confidence: float = 0.9
+    anytime_from: int = 10
+    seed: int = 20261202
+    surrogate_settings: SurrogateSettings = field(default_factory=SurrogateSettings)
+    # Name of a rule in benchmarks.experiments.variants (None = the core's usefulness).
+    usefulness_rule: str | None = None
+    # Which proposals to run besides leadline's (experiments skip the others to save time).
+    with_baselines: bool = True
+
+    def __post_init__(self) -> None:
+        if not self.budgets or list(self.budgets) != sorted(set(self.budgets)):
+            raise ValueError(f"budgets={self.budgets}, must be strictly increasing, non-empty.")
+        if self.budgets[0] < 2:
+            raise ValueError(f"budgets[0]={self.budgets[0]}, must be >= 2 (interval needs 2).")
+        if self.batch_size < 1:
+            raise ValueError(f"batch_size={self.batch_size}, must be >= 1.")
+
+    @property
+    def max_budget(self) -> int:
+        return self.budgets[-1]
+
+
+@dataclass(frozen=True)
+class RepetitionResult:
+    """Per method (rows, ``METHODS`` order) and budget (columns): estimate and 90% interval.
+
+    ``anytime_lower`` / ``anytime_upper``: (len(ANYTIME_METHODS), max_budget) paths;
+    ``seconds``: wall time of the repetition; ``fit_seconds``: time in surrogate fits+scores.
+    """
+
+    scenario: str
+    repetition: int
+    estimate: np.ndarray
+    lower: np.ndarray
+    upper: np.ndarray
+    anytime_lower: np.ndarray
+    anytime_upper: np.ndarray
+    balanced_weight: np.ndarray
+    seconds: float
+    fit_seconds: float
+
+
+@dataclass
+class _Run:
+    """Draw log of one sequential run (one proposal) over the pool."""
+
+    pool_size: int
+    order: list[int] = field(default_factory=list)
+    probability: list[float] = field(default_factory=list)
+    expected_loss: list[float] = field(default_factory=list)
+    remaining_expected_loss: list[float] = field(default_factory=list)
+    correction_low: list[float] = field(default_factory=list)
+    correction_high: list[float] = field(default_factory=list)
+    sums_at: dict[int, PlugInSums] = field(default_factory=dict)
+
+    def terms(self, losses: np.ndarray, count: int) -> DrawTerms:
+        items = np.asarray(self.order[:count], dtype=np.int64)
+        zeros = np.zeros(count)
+        return DrawTerms(
+            probability=np.asarray(self.probability[:count]),
+            expected_loss=np.asarray(self.expected_loss[:count]),
+            remaining_expected_loss=np.asarray(self.remaining_expected_loss[:count]),
+            late_expected_loss=zeros,
+            late_count=np.zeros(count, dtype=np.int64),
+            in_scope=np.ones(count, dtype=bool),
+            status=np.full(count, DRAW_LABELED, dtype=np.int64),
+            loss=losses[items].astype(float),
+            correction_low=np.asarray(self.correction_low[:count]),
+            correction_high=np.asarray(self.correction_high[:count]),
+        )
+
+
+def _batches(config: HarnessConfig) -> list[int]:
+    """Batch sizes: at most ``batch_size``, cut at every refit point and budget."""
+    cuts = sorted({*config.refit_at, *config.budgets} | {config.max_budget})
+    sizes: list[int] = []
+    done = 0
+    for cut in cuts:
+        if cut > config.max_budget:
+            break
+        while done < cut:
+            step = min(config.batch_size, cut - done)
+            sizes.append(step)
+            done += step
+    return sizes
+
+
+def _plug_in_sums(scenario: Scenario, labeled: np.ndarray, scores: SurrogateScores) -> PlugInSums:
+    unlabeled = ~labeled
+    return PlugInSums(
+        scope_size=scenario.pool_size,
+        labeled_loss_sum=float(scenario.losses[labeled].sum()),
+        unlabeled_expected_loss_sum=float(scores.expected_loss[unlabeled].sum()),
+        unlabeled_second_moment_sum=float(scores.residual_second_moment[unlabeled].sum()),
+    )
+
+
+def _subset(scores: SurrogateScores, idx: np.ndarray) -> SurrogateScores:
+    return SurrogateScores(
+        scores.expected_loss[idx], scores.residual_second_moment[idx], scores.spread[idx]
+    )
+
+
+def _sequential_run(
+    scenario: Scenario,
+    config: HarnessConfig,
+    rng: np.random.Generator,
+    *,
+    proposal: Callable[[SurrogateScores, np.ndarray], np.ndarray],
+    floor: float,
+    surrogate_for: Callable[[int, np.ndarray, list[int]], SurrogateScores],
+) -> _Run:
+    """Draw ``max_budget`` items in batches; ``surrogate_for(m, labeled, order)`` gives the
+    pool-wide scores current at draw m (fitted on labels before m only)."""
+    n = scenario.pool_size
+    run = _Run(pool_size=n)
+    labeled = np.zeros(n, dtype=bool)
+    bound = scenario.spec.bound
+    done = 0
+    scores = surrogate_for(0, labeled, run.order)
+    for size in _batches(config):
+        candidates = np.flatnonzero(~labeled)
+        cand_scores = _subset(scores, candidates)
+        u = proposal(cand_scores, candidates)
+        batch = draw_batch(
+            u,
+            cand_scores.expected_loss,
+            size,
+            floor=floor,
+            loss_bound=bound,
+            rng=rng,
+        )
+        items = candidates[batch.positions]
+        run.order.extend(int(i) for i in items)
+        run.probability.extend(batch.probabilities.tolist())
+        run.expected_loss.extend(cand_scores.expected_loss[batch.positions].tolist())
+        run.remaining_expected_loss.extend(batch.remaining_expected_loss.tolist())
+        run.correction_low.extend(batch.correction_low.tolist())
+        run.correction_high.extend(batch.correction_high.tolist())
+        labeled[items] = True
+        done += size
+        scores = surrogate_for(done, labeled, run.order)
+        if done in config.budgets:
+            run.sums_at[done] = _plug_in_sums(scenario, labeled, scores)
+    return run
+
+
+def _iid_row(
+    losses: np.ndarray, pool_size: int, budgets: tuple[int, ...], confidence: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    est, lo, hi = (np.empty(len(budgets)) for _ in range(3))
+    for b, m in enumerate(budgets):
+        sample = losses[:m]
+        mean = float(sample.mean())
+        # t interval with the finite-population correction (sampling without replacement).
+        half = (
+            stats.t.ppf(0.5 + confidence / 2, m - 1)
+            * sample.std(ddof=1)
+            / np.sqrt(m)
+            * np.sqrt(max(0.0, 1.0 - m / pool_size))
+        )
+        est[b], lo[b], hi[b] = mean, mean - half, mean + half
+    return est, lo, hi
+
+
+def _iid_terms(losses: np.ndarray, pool_size: int, bound: float) -> DrawTerms:
+    """Uniform draws without replacement as draw terms with no control variate (h = 0):
+    q_m = 1/|U_m|, so the per-draw range of (L - 0)/q is [0, B |U_m|]."""
+    count = losses.shape[0]
+    remaining = pool_size - np.arange(count)
+    zeros = np.zeros(count)
+    return DrawTerms(
+        probability=1.0 / remaining,
+        expected_loss=zeros,
+        remaining_expected_loss=zeros,
+        late_expected_loss=zeros,
+        late_count=np.zeros(count, dtype=np.int64),
+        in_scope=np.ones(count, dtype=bool),
+        status=np.full(count, DRAW_LABELED, dtype=np.int64),
+        loss=losses.astype(float),
+        correction_low=zeros,
+        correction_high=bound * remaining.astype(float),
+    )
+
+
+def _resolve_rule(name: str | None) -> UsefulnessRule:
+    if name is None:
+        return _core_usefulness
+    from benchmarks.experiments.variants import USEFULNESS_RULES
+
+    if name not in USEFULNESS_RULES:
+        raise ValueError(f"usefulness_rule={name!r} is unknown, known: {sorted(USEFULNESS_RULES)}.")
+    return USEFULNESS_RULES[name]
+
+
+def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -> RepetitionResult:
+    """Run every method once on ``scenario`` with a generator seeded from the repetition."""
+    started = time.perf_counter()
+    scenario_key = sum(ord(c) for c in scenario.name)
+    rng = np.random.default_rng([config.seed, scenario_key, repetition])
+    spec, features, outputs = scenario.spec, scenario.features, scenario.outputs
+    losses, labels, n = scenario.losses, scenario.labels, scenario.pool_size
+    budgets, conf, bound = config.budgets, config.confidence, spec.bound
+    rule = _resolve_rule(config.usefulness_rule)
+    fit_seconds = 0.0
+
+    # --- leadline's run, fitting its own surrogate sequence as labels arrive.
+    snapshots: dict[int, SurrogateScores] = {}
+    current: list[SurrogateScores] = []
+    refit_points = set(config.refit_at)
+    fit_seed = int(rng.integers(2**31 - 1))
+
+    def own_surrogate(m: int, labeled: np.ndarray, order: list[int]) -> SurrogateScores:
+        nonlocal fit_seconds
+        if m == 0 or m in refit_points:
+            t0 = time.perf_counter()
+            if m == 0:
+                model = cold_start_surrogate(spec)
+            else:
+                idx = np.asarray(order, dtype=np.int64)
+                model = fit_surrogate(
+                    spec,
+                    features[idx],
+                    outputs[idx],
+                    labels[idx],
+                    version=len(snapshots),
+                    seed=fit_seed + m,
+                    settings=config.surrogate_settings,
+                )
+            scores = model.score(features, outputs)
+            fit_seconds += time.perf_counter() - t0
+            snapshots[m] = scores
+            current[:] = [scores]
+        return current[0]
+
+    def rule_on_pool(scores: SurrogateScores, candidates: np.ndarray) -> np.ndarray:
+        return rule(scores, features[candidates])
+
+    lead = _sequential_run(
+        scenario,
+        config,
+        rng,
+        proposal=rule_on_pool,
+        floor=config.floor,
+        surrogate_for=own_surrogate,
+    )
+    snapshot_points = sorted(snapshots)
+
+    def shared_surrogate(m: int, labeled: np.ndarray, order: list[int]) -> SurrogateScores:
+        # The latest snapshot fitted at or before m (on leadline's labels, not this run's).
+        return snapshots[max(p for p in snapshot_points if p <= m)]
+
+    runs: dict[str, _Run] = {"leadline": lead}
+    if config.with_baselines:
+        runs["lure"] = _sequential_run(
+            scenario,
+            config,
+            rng,
+            proposal=lambda s, c: s.expected_loss,
+            floor=config.floor,
+            surrogate_for=shared_surrogate,
+        )
+
+        def oracle_proposal(s: SurrogateScores, c: np.ndarray) -> np.ndarray:
+            return np.abs(losses[c] - s.expected_loss)
+
+        runs["oracle"] = _sequential_run(
+            scenario,
+            config,
+            rng,
+            proposal=oracle_proposal,
+            floor=config.floor,
+            surrogate_for=shared_surrogate,
+        )
+        runs["gate"] = _sequential_run(
+            scenario,
+            config,
+            rng,
+            proposal=rule_on_pool,
+            floor=config.gate_floor,
+            surrogate_for=shared_surrogate,
+        )
+
+    shape = (len(METHODS), len(budgets))
+    est, lo, hi = np.full(shape, np.nan), np.full(shape, np.nan), np.full(shape, np.nan)
+    balanced_weight = np.full(len(budgets), np.nan)
+    row = {name: i for i, name in enumerate(METHODS)}
+
+    iid_items = rng.permutation(n)[: config.max_budget]
+    iid_losses = losses[iid_items]
+    est[row["iid"]], lo[row["iid"]], hi[row["iid"]] = _iid_row(iid_losses, n, budgets, conf)
+
+    for b, m in enumerate(budgets):
+        terms = lead.terms(losses, m)
+        sums = lead.sums_at[m]
+        for mode, name in (
+            (EstimatorMode.UNBIASED, "unbiased"),
+            (EstimatorMode.BALANCED, "balanced"),
+            (EstimatorMode.SURROGATE, "surrogate"),
+        ):
+            r = estimate_risk(terms, sums, mode=mode, confidence=conf, loss_bound=bound)
+            est[row[name], b], lo[row[name], b], hi[row[name], b] = r.risk, r.lower, r.upper
+            if name == "balanced":
+                balanced_weight[b] = r.unbiased_weight
+        if not config.with_baselines:
+            continue
+        for name in ("oracle", "gate"):
+            r = estimate_risk(
+                runs[name].terms(losses, m),
+                runs[name].sums_at[m],
+                mode=EstimatorMode.UNBIASED,
+                confidence=conf,
+                loss_bound=bound,
+            )
+            est[row[name], b], lo[row[name], b], hi[row[name], b] = r.risk, r.lower, r.upper
+        lure = runs["lure"]
+        weights = lure_weights(np.asarray(lure.probability[:m]), n)
+        weighted = weights * losses[np.asarray(lure.order[:m], dtype=np.int64)]
+        centre = float(weighted.mean())
+        half = stats.norm.ppf(0.5 + conf / 2) * weighted.std(ddof=1) / np.sqrt(m)
+        est[row["lure"], b], lo[row["lure"], b], hi[row["lure"], b] = (
+            centre,
+            centre - half,
+            centre + half,
+        )
+
+    path_len = config.max_budget
+    any_lo = np.full((len(ANYTIME_METHODS), path_len), np.nan)
+    any_hi = np.full((len(ANYTIME_METHODS), path_len), np.nan)
+    anytime_terms = {
+        "unbiased": lead.terms(losses, path_len),
+        "iid": _iid_terms(iid_losses, n, bound),
+    }
+    if config.with_baselines:
+        anytime_terms["gate"] = runs["gate"].terms(losses, path_len)
+    for k, name in enumerate(ANYTIME_METHODS):
+        if name in anytime_terms:
+            lower, upper = anytime_path(anytime_terms[name], n, confidence=conf, loss_bound=bound)
+            any_lo[k], any_hi[k] = lower, upper
+
+    return RepetitionResult(
+        scenario=scenario.name,
+        repetition=repetition,
+        estimate=est,
+        lower=lo,
+        upper=hi,
+        anytime_lower=any_lo,
+        anytime_upper=any_hi,
+        balanced_weight=balanced_weight,
+        seconds=time.perf_counter() - started,
+        fit_seconds=fit_seconds,
+    )

@@ -1,0 +1,280 @@
+"""Label-efficiency benchmark: leadline's selection and estimators against i.i.d. sampling.
+
+Run from the repository root:
+
+    .venv/bin/python benchmarks/labels.py            # full: 6 scenarios, 300 repetitions
+    .venv/bin/python benchmarks/labels.py --quick    # CI: 3 scenarios, smaller pools, 30 reps
+
+The full run writes BENCHMARKS.md (repository root); the quick run writes
+bench-out/labels-quick.md unless ``--output`` says otherwise. Both print the tables.
+Repetitions run in worker processes (``--workers``, default 2); each repetition seeds its
+own numpy Generator from (seed, scenario, repetition index), so results do not depend on
+the number of workers or the scheduling.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import logging
+import multiprocessing
+import os
+import platform
+import shlex
+import sys
+import time
+from collections import defaultdict
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+
+_ROOT = Path(__file__).resolve().parents[1]
+if str(_ROOT) not in sys.path:  # run as a script: make `benchmarks` importable
+    sys.path.insert(0, str(_ROOT))
+
+from benchmarks.harness import (  # noqa: E402
+    METHODS,
+    HarnessConfig,
+    RepetitionResult,
+    run_repetition,
+)
+from benchmarks.report import (  # noqa: E402
+    ScenarioSummary,
+    Target,
+    evaluate_targets,
+    format_anytime,
+    format_table,
+    summarize,
+)
+from benchmarks.scenarios import (  # noqa: E402
+    QUICK_SCENARIO_NAMES,
+    SCENARIO_NAMES,
+    Scenario,
+    build_scenario,
+)
+from leadline.service.estimation import SurrogateSettings  # noqa: E402
+
+__all__ = ["main", "run_benchmark"]
+
+_LOG = logging.getLogger("benchmarks.labels")
+
+FULL_REPETITIONS = 300
+QUICK_REPETITIONS = 30
+_EXPERIMENTS_RESULTS = _ROOT / "benchmarks" / "experiments" / "RESULTS.md"
+
+# Worker-process state, set once by the pool initializer.
+_WORKER_SCENARIOS: dict[str, Scenario] = {}
+_WORKER_CONFIG: HarnessConfig | None = None
+
+
+def surrogate_settings() -> SurrogateSettings:
+    """The core's default surrogate settings, single-threaded (workers run in parallel)."""
+    return SurrogateSettings(num_threads=1)
+
+
+def _init_worker(scenarios: dict[str, Scenario], config: HarnessConfig) -> None:
+    # One thread per worker: the parallelism is across repetitions.
+    from threadpoolctl import threadpool_limits
+
+    threadpool_limits(1)
+    os.environ["OMP_NUM_THREADS"] = "1"
+    _WORKER_SCENARIOS.update(scenarios)
+    global _WORKER_CONFIG
+    _WORKER_CONFIG = config
+
+
+def _work(task: tuple[str, int]) -> RepetitionResult:
+    name, repetition = task
+    assert _WORKER_CONFIG is not None
+    return run_repetition(_WORKER_SCENARIOS[name], repetition, _WORKER_CONFIG)
+
+
+def _tasks(names: Sequence[str], repetitions: int) -> list[tuple[str, int]]:
+    # Interleave scenarios so slow pools do not all end up at the tail.
+    return [(name, rep) for rep in range(repetitions) for name in names]
+
+
+def run_benchmark(
+    scenarios: Sequence[Scenario],
+    config: HarnessConfig,
+    *,
+    repetitions: int,
+    workers: int,
+    progress: bool = True,
+) -> dict[str, list[RepetitionResult]]:
+    """Run ``repetitions`` of every scenario; returns results per scenario, in rep order."""
+    by_name = {s.name: s for s in scenarios}
+    tasks = _tasks(list(by_name), repetitions)
+    results: dict[str, list[RepetitionResult]] = defaultdict(list)
+
+    def collect(stream: Iterator[RepetitionResult]) -> None:
+        started = time.perf_counter()
+        for done, result in enumerate(stream, start=1):
+            results[result.scenario].append(result)
+            if progress and (done % max(1, len(tasks) // 20) == 0 or done == len(tasks)):
+                elapsed = time.perf_counter() - started
+                print(
+                    f"  {done}/{len(tasks)} repetitions, {elapsed:.0f} s",
+                    file=sys.stderr,
+                    flush=True,
+                )
+
+    if workers <= 1:
+        _init_worker(by_name, config)
+        collect(_work(t) for t in tasks)
+    else:
+        # spawn: LightGBM's OpenMP runtime is not fork-safe once used in the parent.
+        context = multiprocessing.get_context("spawn")
+        with context.Pool(workers, initializer=_init_worker, initargs=(by_name, config)) as pool:
+            collect(pool.imap_unordered(_work, tasks, chunksize=2))
+    return {name: sorted(rs, key=lambda r: r.repetition) for name, rs in results.items()}
+
+
+def _targets_markdown(targets: Sequence[Target]) -> str:
+    lines = ["| target | measured | met |", "|---|---|---|"]
+    lines += [f"| {t.name} | {t.measured} | {'met' if t.met else 'NOT met'} |" for t in targets]
+    return "\n".join(lines)
+
+
+def _markdown(
+    summaries: Sequence[ScenarioSummary],
+    targets: Sequence[Target],
+    config: HarnessConfig,
+    *,
+    command: str,
+    quick: bool,
+    repetitions: int,
+    workers: int,
+    wall_seconds: float,
+) -> str:
+    now = dt.datetime.now(dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
+    cores = os.cpu_count()
+    out = [
+        "# Benchmarks",
+        "",
+        "## Label efficiency",
+        "",
+        f"Generated by `{command}` on {now}; machine: {cores} cores "
+        f"({platform.machine()}, Python {platform.python_version()}), {workers} worker "
+        f"processes; wall time {wall_seconds / 60:.1f} minutes"
+        + (" — QUICK mode: fewer repetitions, 3 scenarios, smaller pools." if quick else "."),
+        "",
+        f"{repetitions} repetitions per scenario; budgets M = {list(config.budgets)}; one "
+        f"sequential run of {config.max_budget} draws per method and repetition, evaluated "
+        f"at every budget prefix (a prefix of a sequential design is a valid design). "
+        f"Batches of at most {config.batch_size} draws; surrogate refits after "
+        f"{list(config.refit_at)} labels; floor epsilon = {config.floor} "
+        f"(gate-floor run: {config.gate_floor}); intervals at {config.confidence:.0%}.",
+        "",
+        "Methods: " + "; ".join(_METHOD_NOTES[m] for m in METHODS) + ".",
+        "",
+        "Relative labeling cost at M = labels i.i.d. sampling needs for the method's RMSE "
+        "/ M, interpolated on the i.i.d. baseline's own RMSE curve (log-log); `*` marks "
+        "values outside the measured i.i.d. range, extrapolated as RMSE ~ 1/sqrt(M) from "
+        f"M = {config.budgets[-1]} (or from M = {config.budgets[0]} below it). Below 1 is "
+        "better. Coverage is over repetitions (Monte-Carlo standard error about "
+        f"{(0.9 * 0.1 / repetitions) ** 0.5:.3f} at 90%).",
+        "",
+        "### Targets",
+        "",
+        _targets_markdown(targets),
+        "",
+    ]
+    for s in summaries:
+        out += [
+            f"### {s.name}",
+            "",
+            f"{s.description}. N = {s.pool_size:,}, true risk {s.true_risk:.4f}, loss bound "
+            f"B = {s.loss_bound:.3g}; {s.repetitions} repetitions, "
+            f"{s.seconds_per_repetition:.2f} s per repetition "
+            f"({s.fit_share:.0%} in surrogate fits and scoring). BALANCED's mean weight on "
+            "the unbiased part: "
+            + ", ".join(f"{w:.2f}@{m}" for m, w in zip(s.budgets, s.balanced_weight, strict=True))
+            + ".",
+            "",
+            format_table(s, markdown=True),
+            "",
+            format_anytime(s, markdown=True),
+            "",
+        ]
+    if _EXPERIMENTS_RESULTS.exists():
+        out += ["## Selection-rule experiments", "", _EXPERIMENTS_RESULTS.read_text().strip(), ""]
+    return "\n".join(out)
+
+
+_METHOD_NOTES = {
+    "iid": "i.i.d. = uniform random sampling without replacement, sample mean, t interval "
+    "with finite-population correction",
+    "lure": "LURE = active-testing baseline, q proportional to the surrogate's expected loss "
+    "(same floor), LURE weights, normal interval",
+    "surrogate": "SURROGATE = plug-in on leadline's draws",
+    "unbiased": "UNBIASED = leadline's usefulness + draw_batch, difference estimator",
+    "balanced": "BALANCED = same draws, data-chosen mix of UNBIASED and SURROGATE",
+    "oracle": "oracle = q proportional to |L - g| from the true losses (unattainable), "
+    "UNBIASED estimator",
+    "gate": "gate floor = leadline's usefulness with the gate floor, UNBIASED estimator "
+    "(for the anytime bound)",
+}
+
+
+def _parse(argv: Sequence[str] | None) -> argparse.Namespace:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="CI mode: ~3 minutes")
+    parser.add_argument("--repetitions", type=int, default=None)
+    parser.add_argument("--scenarios", nargs="+", choices=SCENARIO_NAMES, default=None)
+    parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--seed", type=int, default=HarnessConfig().seed)
+    parser.add_argument("--output", type=Path, default=None, help="markdown file to write")
+    return parser.parse_args(argv)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = _parse(argv)
+    logging.basicConfig(level=logging.WARNING)
+    started = time.perf_counter()
+    quick = bool(args.quick)
+    repetitions = args.repetitions or (QUICK_REPETITIONS if quick else FULL_REPETITIONS)
+    if repetitions < 2:
+        raise SystemExit(f"--repetitions={repetitions}, must be >= 2.")
+    names = args.scenarios or (QUICK_SCENARIO_NAMES if quick else SCENARIO_NAMES)
+    output = args.output or (
+        _ROOT / "bench-out" / "labels-quick.md" if quick else _ROOT / "BENCHMARKS.md"
+    )
+    config = HarnessConfig(seed=args.seed, surrogate_settings=surrogate_settings())
+    print(
+        f"label-efficiency benchmark ({'QUICK: ' if quick else ''}{len(names)} scenarios, "
+        f"{repetitions} repetitions, {args.workers} workers)",
+        flush=True,
+    )
+    scenarios = [build_scenario(n, quick=quick) for n in names]
+    results = run_benchmark(scenarios, config, repetitions=repetitions, workers=args.workers)
+    summaries = [summarize(s, results[s.name], config) for s in scenarios]
+    wall = time.perf_counter() - started
+    targets = evaluate_targets(summaries, wall_seconds=wall, quick=quick)
+    for s in summaries:
+        print(f"\n== {s.name}: N={s.pool_size:,}, risk {s.true_risk:.4f}  ({s.description})")
+        print(format_table(s, markdown=False))
+        print(format_anytime(s, markdown=False))
+    print("\nTargets (* cost extrapolated beyond the measured i.i.d. curve):")
+    for t in targets:
+        print(f"  [{'met' if t.met else 'NOT met'}] {t.name}: {t.measured}")
+    command = "python benchmarks/labels.py " + " ".join(
+        shlex.quote(a) for a in (sys.argv[1:] if argv is None else argv)
+    )
+    text = _markdown(
+        summaries,
+        targets,
+        config,
+        command=command.strip(),
+        quick=quick,
+        repetitions=repetitions,
+        workers=args.workers,
+        wall_seconds=wall,
+    )
+    output.parent.mkdir(parents=True, exist_ok=True)
+    output.write_text(text + "\n")
+    print(f"\nwrote {output} ({wall / 60:.1f} minutes)")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

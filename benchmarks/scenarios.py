@@ -1,0 +1,258 @@
+"""Benchmark scenarios: a main model, a pool it is deployed on, and every label of that pool.
+
+All data ships inside scikit-learn (bundled datasets and synthetic generators); nothing is
+downloaded. Each scenario trains its main model on one part of the data and uses the rest as
+the pool, so the true pool risk (mean loss over the whole pool) is known exactly.
+
+Scenarios are deterministic functions of their name (fixed seeds), so every worker process
+can rebuild the same scenario instead of receiving large arrays.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+from sklearn.datasets import load_breast_cancer, load_digits, make_classification, make_friedman1
+from sklearn.ensemble import HistGradientBoostingClassifier
+from sklearn.linear_model import LogisticRegression, Ridge
+from sklearn.model_selection import train_test_split
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import StandardScaler
+from sklearn.tree import DecisionTreeClassifier
+
+from leadline.service.estimation import LossKind, LossSpec
+
+__all__ = ["SCENARIO_NAMES", "QUICK_SCENARIO_NAMES", "Scenario", "build_scenario"]
+
+_LOG = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True, kw_only=True)
+class Scenario:
+    """One pool with its main model's outputs and all its labels.
+
+    ``features`` are what the surrogate sees besides ``outputs`` (the main model's class
+    probabilities ``(n, K)`` or predictions ``(n,)``); ``losses`` are the true per-item losses
+    and ``true_risk`` their mean, the quantity every method estimates.
+    """
+
+    name: str
+    description: str
+    spec: LossSpec
+    features: np.ndarray
+    outputs: np.ndarray
+    labels: np.ndarray
+    losses: np.ndarray
+    true_risk: float
+    well_fit_classifier: bool
+
+    @property
+    def pool_size(self) -> int:
+        return int(self.features.shape[0])
+
+
+def _finish(
+    *,
+    name: str,
+    description: str,
+    spec: LossSpec,
+    features: np.ndarray,
+    outputs: np.ndarray,
+    labels: np.ndarray,
+    well_fit_classifier: bool = False,
+) -> Scenario:
+    losses = np.asarray(spec.losses(outputs, labels), dtype=float)
+    return Scenario(
+        name=name,
+        description=description,
+        spec=spec,
+        features=np.ascontiguousarray(features, dtype=float),
+        outputs=np.ascontiguousarray(outputs, dtype=float),
+        labels=labels,
+        losses=losses,
+        true_risk=float(losses.mean()),
+        well_fit_classifier=well_fit_classifier,
+    )
+
+
+def _digits_logistic(*, quick: bool) -> Scenario:
+    del quick  # the pool is small already
+    data = load_digits()
+    x_train, x_pool, y_train, y_pool = train_test_split(
+        data.data, data.target, train_size=600, random_state=11, stratify=data.target
+    )
+    model = make_pipeline(StandardScaler(), LogisticRegression(C=0.05, max_iter=3000))
+    model.fit(x_train, y_train)
+    return _finish(
+        name="digits_logistic",
+        description="digits (sklearn), logistic regression on 600 images, pool 1,197, 0-1 loss",
+        spec=LossSpec(kind=LossKind.ZERO_ONE, num_classes=10),
+        features=x_pool,
+        outputs=model.predict_proba(x_pool),
+        labels=y_pool.astype(np.int64),
+        well_fit_classifier=True,
+    )
+
+
+def _digits_shallow_tree(*, quick: bool) -> Scenario:
+    del quick
+    data = load_digits()
+    x_train, x_pool, y_train, y_pool = train_test_split(
+        data.data, data.target, train_size=600, random_state=12, stratify=data.target
+    )
+    # Depth 4 on ten classes: a deliberately weak main model (accuracy well below 80%).
+    model = DecisionTreeClassifier(max_depth=4, random_state=0).fit(x_train, y_train)
+    return _finish(
+        name="digits_weak_tree",
+        description="digits (sklearn), depth-4 decision tree (weak model), pool 1,197, 0-1 loss",
+        spec=LossSpec(kind=LossKind.ZERO_ONE, num_classes=10),
+        features=x_pool,
+        outputs=model.predict_proba(x_pool),
+        labels=y_pool.astype(np.int64),
+    )
+
+
+def _breast_cancer(*, quick: bool) -> Scenario:
+    del quick
+    data = load_breast_cancer()
+    x_train, x_pool, y_train, y_pool = train_test_split(
+        data.data, data.target, train_size=170, random_state=13, stratify=data.target
+    )
+    model = make_pipeline(StandardScaler(), LogisticRegression(C=0.5, max_iter=3000))
+    model.fit(x_train, y_train)
+    return _finish(
+        name="breast_cancer",
+        description="breast cancer (sklearn), logistic regression on 170 rows, pool 399, Brier",
+        spec=LossSpec(kind=LossKind.BRIER, num_classes=2),
+        features=x_pool,
+        outputs=model.predict_proba(x_pool),
+        labels=y_pool.astype(np.int64),
+        well_fit_classifier=True,
+    )
+
+
+def _shifted_synthetic(*, quick: bool) -> Scenario:
+    pool_size = 12_000 if quick else 50_000
+    train_size = 8_000
+    total = 2 * (pool_size + train_size)
+    x, y = make_classification(
+        n_samples=total,
+        n_features=20,
+        n_informative=8,
+        n_redundant=4,
+        n_clusters_per_class=2,
+        flip_y=0.03,
+        class_sep=1.5,
+        random_state=14,
+    )
+    rng = np.random.default_rng(14)
+    # Covariate shift: training rows come mostly from low values of one informative
+    # direction, pool rows mostly from high values.
+    direction = x[:, 0] + x[:, 1]
+    train_weight = 1.0 / (1.0 + np.exp(1.5 * direction))
+    train_idx = rng.choice(
+        total, size=train_size, replace=False, p=train_weight / train_weight.sum()
+    )
+    rest = np.setdiff1d(np.arange(total), train_idx)
+    pool_weight = 1.0 - train_weight[rest]
+    pool_idx = rng.choice(rest, size=pool_size, replace=False, p=pool_weight / pool_weight.sum())
+    # Boosted trees without early stopping: confident everywhere, so the 3% flipped labels
+    # and the shifted region become rare, costly mistakes (the top 1% of items carry
+    # roughly half of the pool's cross-entropy).
+    model = HistGradientBoostingClassifier(max_iter=300, early_stopping=False, random_state=0)
+    model.fit(x[train_idx], y[train_idx])
+    return _finish(
+        name="shifted_synthetic",
+        description=(
+            f"make_classification (sklearn), covariate shift between 8,000 training rows and "
+            f"a pool of {pool_size:,}, overconfident boosted trees, cross-entropy loss"
+        ),
+        spec=LossSpec(kind=LossKind.CROSS_ENTROPY, num_classes=2),
+        features=x[pool_idx],
+        outputs=model.predict_proba(x[pool_idx]),
+        labels=y[pool_idx].astype(np.int64),
+    )
+
+
+def _friedman_regression(*, quick: bool) -> Scenario:
+    pool_size = 4_000 if quick else 9_000
+    x, y = make_friedman1(n_samples=3_000 + pool_size, n_features=10, noise=1.0, random_state=15)
+    x_train, x_pool, y_train, y_pool = train_test_split(x, y, train_size=3_000, random_state=15)
+    # A linear model on a non-linear target: the residuals have structure a surrogate can learn.
+    model = Ridge(alpha=1.0).fit(x_train, y_train)
+    train_error = (model.predict(x_train) - y_train) ** 2
+    # The cap is set from the training part only (no pool labels): its 99th percentile.
+    cap = float(np.quantile(train_error, 0.99))
+    return _finish(
+        name="friedman_regression",
+        description=(
+            f"make_friedman1 (sklearn), ridge regression on 3,000 rows, pool {pool_size:,}, "
+            f"squared error capped at {cap:.1f} (training 99th percentile)"
+        ),
+        spec=LossSpec(kind=LossKind.SQUARED_ERROR, loss_cap=cap),
+        features=x_pool,
+        outputs=model.predict(x_pool),
+        labels=y_pool.astype(float),
+    )
+
+
+# Row = predicted class, column = true class. Invented triage costs: missing the urgent
+# class (2) is expensive, a false alarm for it cheaper.
+_COSTS = np.array([[0.0, 1.0, 6.0], [1.0, 0.0, 4.0], [2.0, 1.0, 0.0]])
+
+
+def _cost_matrix_synthetic(*, quick: bool) -> Scenario:
+    pool_size = 4_000 if quick else 10_000
+    x, y = make_classification(
+        n_samples=3_000 + pool_size,
+        n_features=12,
+        n_informative=6,
+        n_redundant=2,
+        n_classes=3,
+        n_clusters_per_class=2,
+        weights=[0.5, 0.35, 0.15],
+        flip_y=0.02,
+        class_sep=1.2,
+        random_state=16,
+    )
+    x_train, x_pool, y_train, y_pool = train_test_split(
+        x, y, train_size=3_000, random_state=16, stratify=y
+    )
+    model = LogisticRegression(max_iter=3000).fit(x_train, y_train)
+    return _finish(
+        name="cost_matrix_triage",
+        description=(
+            f"make_classification (sklearn), 3 classes, logistic regression, pool {pool_size:,}, "
+            "invented triage cost matrix (max cost 6)"
+        ),
+        spec=LossSpec(kind=LossKind.COST_MATRIX, num_classes=3, cost_matrix=_COSTS.copy()),
+        features=x_pool,
+        outputs=model.predict_proba(x_pool),
+        labels=y_pool.astype(np.int64),
+    )
+
+
+_BUILDERS: dict[str, Callable[..., Scenario]] = {
+    "digits_logistic": _digits_logistic,
+    "digits_weak_tree": _digits_shallow_tree,
+    "breast_cancer": _breast_cancer,
+    "shifted_synthetic": _shifted_synthetic,
+    "friedman_regression": _friedman_regression,
+    "cost_matrix_triage": _cost_matrix_synthetic,
+}
+
+SCENARIO_NAMES: tuple[str, ...] = tuple(_BUILDERS)
+QUICK_SCENARIO_NAMES: tuple[str, ...] = ("digits_logistic", "breast_cancer", "shifted_synthetic")
+
+
+def build_scenario(name: str, *, quick: bool = False) -> Scenario:
+    """Build scenario ``name`` (one of ``SCENARIO_NAMES``); ``quick`` shrinks large pools."""
+    if name not in _BUILDERS:
+        known = ", ".join(SCENARIO_NAMES)
+        raise ValueError(f"scenario {name!r} is unknown, must be one of {known}.")
+    scenario = _BUILDERS[name](quick=quick)
+    _LOG.debug("built %s: N=%d risk=%.4f", name, scenario.pool_size, scenario.true_risk)
+    return scenario
