@@ -1,0 +1,271 @@
+"""One pool's settings and in-memory state (numpy arrays rebuilt from SQLite at start-up).
+
+All mutation happens under ``PoolState.lock``; readers take the lock too while they gather
+arrays, then compute outside it where they can.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections import OrderedDict
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import numpy as np
+
+from leadline.service.engine.columns import Column
+from leadline.service.estimation import (
+    EstimatorMode,
+    LossKind,
+    LossSpec,
+    Surrogate,
+    cold_start_surrogate,
+)
+
+__all__ = [
+    "AVAILABLE",
+    "DRAWN",
+    "ITEM_LABELED",
+    "ITEM_SKIPPED",
+    "ASSIGNED",
+    "LABELED",
+    "SKIPPED",
+    "WAITING",
+    "DrawLog",
+    "PoolSettings",
+    "PoolState",
+]
+
+# Item status codes (PoolState.status).
+AVAILABLE, DRAWN, ITEM_LABELED, ITEM_SKIPPED = 0, 1, 2, 3
+# Draw status codes (DrawLog.status); numerically equal to the proto's DrawStatus values.
+ASSIGNED, LABELED, SKIPPED, WAITING = 1, 2, 3, 4
+
+_REQUEST_MEMORY = 4096
+_CLASSIFICATION_LOSSES = {"zero_one", "cross_entropy", "brier", "cost_matrix"}
+
+
+@dataclass(frozen=True, kw_only=True)
+class PoolSettings:
+    """What CreatePool fixed for the pool (validated by the API layer before)."""
+
+    pool_id: str
+    task: str  # "classification" or "regression"
+    num_classes: int
+    feature_dim: int
+    loss: str  # a LossKind value
+    cost_matrix: tuple[float, ...] = ()
+    loss_cap: float = 0.0
+    default_mode: str = "balanced"  # an EstimatorMode value
+    description: str = ""
+    selection_floor: float = 0.0  # 0 = server default
+    default_lease_seconds: int = 0  # 0 = server default
+    default_confidence: float = 0.0  # 0 = server default
+    refit_every_labels: int = 0  # 0 = server default
+
+    @property
+    def is_classification(self) -> bool:
+        return self.task == "classification"
+
+    @property
+    def output_width(self) -> int:
+        return self.num_classes if self.is_classification else 1
+
+    def loss_spec(self) -> LossSpec:
+        kind = LossKind(self.loss)
+        if self.is_classification:
+            matrix = None
+            if kind is LossKind.COST_MATRIX:
+                matrix = np.asarray(self.cost_matrix, dtype=np.float64).reshape(
+                    self.num_classes, self.num_classes
+                )
+            return LossSpec(kind=kind, num_classes=self.num_classes, cost_matrix=matrix)
+        return LossSpec(kind=kind, loss_cap=self.loss_cap)
+
+    @property
+    def mode(self) -> EstimatorMode:
+        return EstimatorMode(self.default_mode)
+
+    def to_json(self) -> dict[str, Any]:
+        data = asdict(self)
+        data["cost_matrix"] = list(self.cost_matrix)
+        return data
+
+    @classmethod
+    def from_json(cls, data: dict[str, Any]) -> PoolSettings:
+        values = dict(data)
+        values["cost_matrix"] = tuple(float(v) for v in values.get("cost_matrix", ()))
+        return cls(**values)
+
+
+class DrawLog:
+    """The pool's draws in draw order: what was logged at draw time plus the outcome."""
+
+    def __init__(self) -> None:
+        self.row = Column(np.int64)
+        self.probability = Column(np.float64)
+        self.remaining_count = Column(np.int64)
+        self.remaining_expected_loss = Column(np.float64)
+        self.remaining_by_segment: list[np.ndarray] = []
+        self.correction_low = Column(np.float64)
+        self.correction_high = Column(np.float64)
+        self.min_probability = Column(np.float64)
+        self.expected_loss = Column(np.float64)
+        self.second_moment = Column(np.float64)
+        self.surrogate_version = Column(np.int64)
+        self.arrival_mark = Column(np.int64)
+        self.draw_time_ms = Column(np.int64)
+        self.status = Column(np.int8)
+        self.lease_expire_ms = Column(np.int64)
+        self.label = Column(np.float64, fill=np.nan)
+        self.loss = Column(np.float64, fill=np.nan)
+        self.label_time_ms = Column(np.int64)
+        self.labeler: list[str] = []
+        self.holder: list[str] = []
+        self.assignment_id: list[str] = []
+        self.skip_reason: list[str] = []
+
+    def __len__(self) -> int:
+        return self.row.size
+
+    def append(self, records: list[dict[str, Any]]) -> None:
+        """Append draws given as column dicts (the store's row format)."""
+        if not records:
+            return
+
+        def column(name: str) -> np.ndarray:
+            return np.array([r[name] for r in records])
+
+        self.row.extend(column("row"))
+        self.probability.extend(column("probability"))
+        self.remaining_count.extend(column("remaining_count"))
+        self.remaining_expected_loss.extend(column("remaining_expected_loss"))
+        self.remaining_by_segment.extend(
+            np.frombuffer(r["remaining_by_segment"], dtype=np.float64) for r in records
+        )
+        self.correction_low.extend(column("correction_low"))
+        self.correction_high.extend(column("correction_high"))
+        self.min_probability.extend(column("min_probability"))
+        self.expected_loss.extend(column("expected_loss"))
+        self.second_moment.extend(column("second_moment"))
+        self.surrogate_version.extend(column("surrogate_version"))
+        self.arrival_mark.extend(column("arrival_mark"))
+        self.draw_time_ms.extend(column("draw_time_ms"))
+        self.status.extend(column("status"))
+        self.lease_expire_ms.extend(column("lease_expire_ms"))
+        self.label.extend(np.array([np.nan if r["label"] is None else r["label"] for r in records]))
+        self.loss.extend(np.array([np.nan if r["loss"] is None else r["loss"] for r in records]))
+        self.label_time_ms.extend(column("label_time_ms"))
+        self.labeler.extend(r["labeler"] for r in records)
+        self.holder.extend(r["holder"] for r in records)
+        self.assignment_id.extend(r["assignment_id"] for r in records)
+        self.skip_reason.extend(r["skip_reason"] for r in records)
+
+    def outcome_record(self, index: int) -> dict[str, Any]:
+        """The mutable columns of draw ``index`` in the store's format."""
+        label = float(self.label.view[index])
+        loss = float(self.loss.view[index])
+        return {
+            "draw_index": index,
+            "status": int(self.status.view[index]),
+            "labeler": self.labeler[index],
+            "holder": self.holder[index],
+            "assignment_id": self.assignment_id[index],
+            "lease_expire_ms": int(self.lease_expire_ms.view[index]),
+            "label": None if np.isnan(label) else label,
+            "loss": None if np.isnan(loss) else loss,
+            "label_time_ms": int(self.label_time_ms.view[index]),
+            "skip_reason": self.skip_reason[index],
+        }
+
+
+@dataclass
+class PoolState:
+    """Everything the server keeps in memory for one pool."""
+
+    settings: PoolSettings
+    seed: int
+    create_time_ms: int
+    spec: LossSpec = field(init=False)
+    loss_bound: float = field(init=False)
+    cold: Surrogate = field(init=False)
+    surrogate: Surrogate = field(init=False)
+    surrogate_label_count: int = 0
+    last_fit_time: float = 0.0
+    deleted: bool = False
+
+    def __post_init__(self) -> None:
+        self.spec = self.settings.loss_spec()
+        self.loss_bound = float(self.spec.bound)
+        self.cold = cold_start_surrogate(self.spec)
+        self.surrogate = self.cold
+        self.lock = threading.RLock()
+        d = self.settings.feature_dim
+        width = (self.settings.num_classes,) if self.settings.is_classification else ()
+        self.item_ids: list[str] = []
+        self.index: dict[str, int] = {}
+        self.payload_refs: list[str] = []
+        self.features = Column(np.float32, (d,))
+        self.outputs = Column(np.float32, width)
+        self.segment = Column(np.int32)
+        self.event_time_ms = Column(np.int64)
+        self.ingest_time_ms = Column(np.int64)
+        self.g0 = Column(np.float64)  # label-free cold-start expected loss
+        self.expected_loss = Column(np.float64)  # current surrogate g
+        self.second_moment = Column(np.float64)  # current E[(L - g)^2]
+        self.spread = Column(np.float64)
+        self.status = Column(np.int8)
+        self.item_draw = Column(np.int64, fill=-1)
+        self.segment_names: list[str] = []
+        self.segment_codes: dict[str, int] = {}
+        self.draws = DrawLog()
+        self.assignments: dict[str, int] = {}
+        # Bumped on every change that can move an estimate; keys the query cache.
+        self.state_version = 0
+        self.cache: dict[Any, Any] = {}
+        self.requests: OrderedDict[tuple[str, str], Any] = OrderedDict()
+        self.refitting = False
+        # Label count at the last failed refit (-1: none failed).
+        self.failed_fit_labels = -1
+
+    @property
+    def pool_id(self) -> str:
+        return self.settings.pool_id
+
+    @property
+    def item_count(self) -> int:
+        return len(self.item_ids)
+
+    @property
+    def surrogate_version(self) -> int:
+        return int(self.surrogate.version)
+
+    def touch(self) -> None:
+        self.state_version += 1
+        self.cache.clear()
+
+    def remember_request(self, method: str, request_id: str, value: Any) -> None:
+        self.requests[(method, request_id)] = value
+        self.requests.move_to_end((method, request_id))
+        while len(self.requests) > _REQUEST_MEMORY:
+            self.requests.popitem(last=False)
+
+    def draw_counts(self) -> tuple[int, int, int]:
+        """(labeled, pending, skipped) draws."""
+        status = self.draws.status.view
+        labeled = int(np.count_nonzero(status == LABELED))
+        skipped = int(np.count_nonzero(status == SKIPPED))
+        return labeled, len(status) - labeled - skipped, skipped
+
+    def add_segments(self, names: list[str]) -> tuple[list[int], list[str]]:
+        """Codes for new segment names, in first-seen order; returns the new (codes, names)."""
+        new_codes: list[int] = []
+        new_names: list[str] = []
+        for name in names:
+            if name not in self.segment_codes:
+                code = len(self.segment_names)
+                self.segment_codes[name] = code
+                self.segment_names.append(name)
+                new_codes.append(code)
+                new_names.append(name)
+        return new_codes, new_names

@@ -1,0 +1,259 @@
+"""Process wiring: config, auth, store, engine, gRPC server, health, metrics, shutdown.
+
+``main(argv)`` implements ``leadline serve`` (also ``python -m leadline.service serve``);
+``start_server(config)`` starts everything in-process and returns a :class:`RunningServer`
+(tests use it with port 0).
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import logging
+import signal
+import sys
+import threading
+import time
+from concurrent import futures
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import grpc
+from grpc_health.v1 import health, health_pb2, health_pb2_grpc
+
+from leadline.service.api import Authenticator, AuthInterceptor, add_servicers, load_tokens
+from leadline.service.config import ServerConfig, is_loopback_host, load_config, split_host_port
+from leadline.service.engine import Engine, RefitWorker
+from leadline.service.metrics import Metrics, MetricsServer
+from leadline.service.store import Database
+
+__all__ = ["RunningServer", "ServerConfig", "main", "start_server"]
+
+_LOG = logging.getLogger(__name__)
+
+
+@dataclass
+class RunningServer:
+    """A started server. ``stop`` is idempotent."""
+
+    port: int
+    address: str
+    metrics_port: int
+    _server: grpc.Server = field(repr=False)
+    _health: health.HealthServicer = field(repr=False)
+    _engine: Engine = field(repr=False)
+    _worker: RefitWorker = field(repr=False)
+    _database: Database = field(repr=False)
+    _metrics: MetricsServer | None = field(repr=False, default=None)
+    _stopped: bool = field(repr=False, default=False)
+    _lock: threading.Lock = field(repr=False, default_factory=threading.Lock)
+
+    @property
+    def engine(self) -> Engine:
+        return self._engine
+
+    def stop(self, grace: float = 5.0) -> None:
+        """Graceful shutdown: NOT_SERVING, refuse new calls, let in-flight calls finish
+        (up to ``grace`` seconds), stop refits, flush and checkpoint the database."""
+        with self._lock:
+            if self._stopped:
+                return
+            self._stopped = True
+        started = time.monotonic()
+        _LOG.info("shutting down (grace %.1f s)", grace)
+        self._health.enter_graceful_shutdown()
+        self._server.stop(grace).wait()
+        self._engine.close()
+        self._worker.stop(timeout=max(grace, 1.0))
+        if self._metrics is not None:
+            self._metrics.stop()
+        self._database.close()
+        _LOG.info("stopped in %.2f s", time.monotonic() - started)
+
+
+def _authenticator(config: ServerConfig, host: str) -> Authenticator:
+    if config.tokens is not None:
+        tokens = load_tokens(config.tokens)
+        _LOG.info("loaded %d tokens from %s", len(tokens), config.tokens)
+        return Authenticator(tokens)
+    if not config.insecure_no_auth:
+        raise ValueError(
+            "tokens: no token file given; pass --tokens FILE, or --insecure-no-auth on a "
+            "loopback address for local experiments."
+        )
+    if not is_loopback_host(host):
+        raise ValueError(
+            f"insecure_no_auth: refused on non-loopback address {config.listen!r}; "
+            "authentication may be switched off only on 127.0.0.1, ::1 or localhost."
+        )
+    _LOG.warning(
+        "AUTHENTICATION IS OFF (--insecure-no-auth): every caller gets every role. "
+        "Use only for local experiments."
+    )
+    return Authenticator(None)
+
+
+def _credentials(config: ServerConfig) -> grpc.ServerCredentials | None:
+    if config.tls_cert is None or config.tls_key is None:
+        return None
+    try:
+        cert = config.tls_cert.read_bytes()
+        key = config.tls_key.read_bytes()
+        client_ca = config.tls_client_ca.read_bytes() if config.tls_client_ca else None
+    except OSError as error:
+        raise ValueError(f"TLS files: cannot read ({error}).") from None
+    return grpc.ssl_server_credentials(
+        [(key, cert)], root_certificates=client_ca, require_client_auth=client_ca is not None
+    )
+
+
+def start_server(config: ServerConfig) -> RunningServer:
+    """Open the data dir, rebuild the pools, start serving. Raises ValueError on bad config."""
+    host, port = split_host_port(config.listen)
+    auth = _authenticator(config, host)
+    credentials = _credentials(config)
+    database = Database(config.data_dir)
+    try:
+        engine = Engine(database, config)
+        engine.load()
+    except BaseException:
+        database.close()
+        raise
+    metrics = Metrics(engine, database)
+    worker = RefitWorker(engine)
+    server = grpc.server(
+        futures.ThreadPoolExecutor(max_workers=config.max_workers, thread_name_prefix="rpc"),
+        interceptors=[AuthInterceptor(auth, observe=metrics.observe)],
+        options=[
+            ("grpc.max_receive_message_length", config.max_message_bytes),
+            ("grpc.max_send_message_length", config.max_message_bytes),
+            ("grpc.so_reuseport", 0),
+        ],
+        maximum_concurrent_rpcs=config.max_workers * 8,
+    )
+    services = add_servicers(server, engine, config, auth, on_labels=worker.nudge)
+    health_servicer = health.HealthServicer()
+    health_pb2_grpc.add_HealthServicer_to_server(health_servicer, server)
+    if config.enable_reflection:
+        from grpc_reflection.v1alpha import reflection
+
+        reflection.enable_server_reflection(
+            [*services, health.SERVICE_NAME, reflection.SERVICE_NAME], server
+        )
+    bind = f"[{host}]:{port}" if ":" in host else f"{host}:{port}"
+    try:
+        if credentials is None:
+            bound = server.add_insecure_port(bind)
+        else:
+            bound = server.add_secure_port(bind, credentials)
+    except RuntimeError as error:
+        database.close()
+        raise ValueError(f"listen = {config.listen!r}: cannot bind ({error}).") from None
+    if bound == 0:
+        database.close()
+        raise ValueError(f"listen = {config.listen!r}: cannot bind (address in use?).")
+    worker.start()
+    server.start()
+    for name in ["", *services]:
+        health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
+    metrics_server = None
+    metrics_port = 0
+    if config.metrics_listen:
+        metrics_host, wanted = split_host_port(config.metrics_listen, name="metrics_listen")
+        metrics_server = MetricsServer(metrics_host, wanted, metrics.render)
+        metrics_server.start()
+        metrics_port = metrics_server.port
+        _LOG.info("metrics on http://%s:%d/metrics", metrics_host, metrics_port)
+    address = f"[{host}]:{bound}" if ":" in host else f"{host}:{bound}"
+    return RunningServer(
+        port=bound,
+        address=address,
+        metrics_port=metrics_port,
+        _server=server,
+        _health=health_servicer,
+        _engine=engine,
+        _worker=worker,
+        _database=database,
+        _metrics=metrics_server,
+    )
+
+
+class _JsonFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        entry: dict[str, Any] = {
+            "time": self.formatTime(record, "%Y-%m-%dT%H:%M:%S"),
+            "level": record.levelname,
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
+        if record.exc_info:
+            entry["error"] = self.formatException(record.exc_info)
+        return json.dumps(entry)
+
+
+def _setup_logging(config: ServerConfig) -> None:
+    handler = logging.StreamHandler(sys.stderr)
+    if config.log_format == "json":
+        handler.setFormatter(_JsonFormatter())
+    else:
+        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    root = logging.getLogger()
+    root.handlers[:] = [handler]
+    root.setLevel(config.log_level.upper())
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="leadline serve",
+        description="Run the leadline server. Settings come from defaults, then --config, "
+        "then LEADLINE_* environment variables, then these flags.",
+    )
+    parser.add_argument("--config", type=Path, help="TOML config file")
+    for item in dataclasses.fields(ServerConfig):
+        if item.name == "extra":
+            continue
+        flag = "--" + item.name.replace("_", "-")
+        if "bool" in str(item.type):
+            parser.add_argument(flag, dest=item.name, action="store_true", default=None)
+        else:
+            parser.add_argument(flag, dest=item.name, default=None, metavar=item.name.upper())
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """``leadline serve ...``: run until SIGTERM / SIGINT, then shut down gracefully; 0 on a
+    clean stop, 2 on a configuration error."""
+    args = list(sys.argv[1:] if argv is None else argv)
+    if args[:1] == ["serve"]:
+        args = args[1:]
+    namespace = _parser().parse_args(args)
+    overrides = {k: v for k, v in vars(namespace).items() if k != "config"}
+    try:
+        config = load_config(config_file=namespace.config, overrides=overrides)
+    except ValueError as error:
+        print(f"leadline serve: {error}", file=sys.stderr)
+        return 2
+    _setup_logging(config)
+    stop = threading.Event()
+
+    def on_signal(number: int, frame: object) -> None:
+        _LOG.info("received signal %d", number)
+        stop.set()
+
+    previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGTERM, signal.SIGINT)}
+    try:
+        try:
+            running = start_server(config)
+        except ValueError as error:
+            print(f"leadline serve: {error}", file=sys.stderr)
+            return 2
+        print(f"leadline listening on {running.address}", file=sys.stderr, flush=True)
+        while not stop.wait(0.5):
+            pass
+        running.stop(grace=config.shutdown_grace_seconds)
+        return 0
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)

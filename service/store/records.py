@@ -1,0 +1,293 @@
+"""Reads and writes of pools, items, draws, surrogate versions and remembered requests.
+
+Write helpers return a function of a connection, to be queued on
+:meth:`leadline.service.store.Database.submit`; read helpers take a connection (a reader).
+Numeric columns travel as numpy arrays, features and model outputs as float32 blobs.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+__all__ = [
+    "DRAW_COLUMNS",
+    "DRAW_UPDATE_COLUMNS",
+    "ItemChunk",
+    "PoolRow",
+    "delete_pool",
+    "find_request",
+    "insert_draws",
+    "insert_items",
+    "insert_model",
+    "insert_pool",
+    "insert_request",
+    "insert_segments",
+    "load_draws",
+    "load_items",
+    "load_latest_model",
+    "load_pools",
+    "load_segments",
+    "update_draws",
+]
+
+Write = Callable[[sqlite3.Connection], Any]
+
+DRAW_COLUMNS: tuple[str, ...] = (
+    "draw_index",
+    "row",
+    "probability",
+    "remaining_count",
+    "remaining_expected_loss",
+    "remaining_by_segment",
+    "correction_low",
+    "correction_high",
+    "min_probability",
+    "expected_loss",
+    "second_moment",
+    "surrogate_version",
+    "arrival_mark",
+    "draw_time_ms",
+    "status",
+    "labeler",
+    "holder",
+    "assignment_id",
+    "lease_expire_ms",
+    "label",
+    "loss",
+    "label_time_ms",
+    "skip_reason",
+)
+# The columns that change after a draw is made (lease, outcome).
+DRAW_UPDATE_COLUMNS: tuple[str, ...] = (
+    "status",
+    "labeler",
+    "holder",
+    "assignment_id",
+    "lease_expire_ms",
+    "label",
+    "loss",
+    "label_time_ms",
+    "skip_reason",
+)
+
+
+@dataclass(frozen=True)
+class PoolRow:
+    pool_id: str
+    settings: dict[str, Any]
+    seed: int
+    create_time_ms: int
+
+
+@dataclass(frozen=True)
+class ItemChunk:
+    """Rows ``start .. start + len(item_ids)`` of one pool, as stored."""
+
+    start: int
+    item_ids: list[str]
+    features: np.ndarray  # (n, d) float32
+    outputs: np.ndarray  # (n, K) or (n,) float32
+    payload_refs: list[str]
+    segments: np.ndarray  # int32 codes
+    event_time_ms: np.ndarray  # int64
+    ingest_time_ms: np.ndarray  # int64
+
+
+def insert_pool(row: PoolRow) -> Write:
+    def write(connection: sqlite3.Connection) -> None:
+        connection.execute(
+            "INSERT INTO pools (pool_id, settings, seed, create_time_ms) VALUES (?, ?, ?, ?)",
+            (row.pool_id, json.dumps(row.settings, sort_keys=True), row.seed, row.create_time_ms),
+        )
+
+    return write
+
+
+def delete_pool(pool_id: str) -> Write:
+    def write(connection: sqlite3.Connection) -> None:
+        for table in ("items", "draws", "segments", "models", "requests", "pools"):
+            connection.execute(f"DELETE FROM {table} WHERE pool_id = ?", (pool_id,))
+
+    return write
+
+
+def insert_segments(pool_id: str, codes: Sequence[int], names: Sequence[str]) -> Write:
+    rows = [(pool_id, int(code), name) for code, name in zip(codes, names, strict=True)]
+
+    def write(connection: sqlite3.Connection) -> None:
+        connection.executemany("INSERT INTO segments (pool_id, code, name) VALUES (?, ?, ?)", rows)
+
+    return write
+
+
+def insert_items(pool_id: str, chunk: ItemChunk) -> Write:
+    feature_bytes = np.ascontiguousarray(chunk.features, dtype=np.float32)
+    output_bytes = np.ascontiguousarray(chunk.outputs, dtype=np.float32)
+    n = len(chunk.item_ids)
+    feature_rows = feature_bytes.reshape(n, -1)
+    output_rows = output_bytes.reshape(n, -1)
+    rows = [
+        (
+            pool_id,
+            chunk.start + i,
+            chunk.item_ids[i],
+            feature_rows[i].tobytes(),
+            output_rows[i].tobytes(),
+            chunk.payload_refs[i],
+            int(chunk.segments[i]),
+            int(chunk.event_time_ms[i]),
+            int(chunk.ingest_time_ms[i]),
+        )
+        for i in range(n)
+    ]
+
+    def write(connection: sqlite3.Connection) -> None:
+        connection.executemany(
+            "INSERT INTO items (pool_id, row, item_id, features, outputs, payload_ref, segment,"
+            " event_time_ms, ingest_time_ms) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            rows,
+        )
+
+    return write
+
+
+def insert_draws(pool_id: str, draws: Sequence[dict[str, Any]]) -> Write:
+    placeholders = ", ".join("?" for _ in range(len(DRAW_COLUMNS) + 1))
+    sql = f"INSERT INTO draws (pool_id, {', '.join(DRAW_COLUMNS)}) VALUES ({placeholders})"
+    rows = [(pool_id, *(draw[column] for column in DRAW_COLUMNS)) for draw in draws]
+
+    def write(connection: sqlite3.Connection) -> None:
+        connection.executemany(sql, rows)
+
+    return write
+
+
+def update_draws(pool_id: str, draws: Sequence[dict[str, Any]]) -> Write:
+    assignments = ", ".join(f"{column} = ?" for column in DRAW_UPDATE_COLUMNS)
+    sql = f"UPDATE draws SET {assignments} WHERE pool_id = ? AND draw_index = ?"
+    rows = [
+        (*(draw[column] for column in DRAW_UPDATE_COLUMNS), pool_id, draw["draw_index"])
+        for draw in draws
+    ]
+
+    def write(connection: sqlite3.Connection) -> None:
+        connection.executemany(sql, rows)
+
+    return write
+
+
+def insert_model(
+    pool_id: str, version: int, label_count: int, data: bytes, create_time_ms: int
+) -> Write:
+    def write(connection: sqlite3.Connection) -> None:
+        connection.execute(
+            "INSERT INTO models (pool_id, version, label_count, data, create_time_ms)"
+            " VALUES (?, ?, ?, ?, ?)",
+            (pool_id, version, label_count, data, create_time_ms),
+        )
+
+    return write
+
+
+def insert_request(pool_id: str, method: str, request_id: str, response: bytes) -> Write:
+    def write(connection: sqlite3.Connection) -> None:
+        connection.execute(
+            "INSERT OR REPLACE INTO requests (pool_id, method, request_id, response)"
+            " VALUES (?, ?, ?, ?)",
+            (pool_id, method, request_id, response),
+        )
+
+    return write
+
+
+def find_request(
+    connection: sqlite3.Connection, pool_id: str, method: str, request_id: str
+) -> bytes | None:
+    row = connection.execute(
+        "SELECT response FROM requests WHERE pool_id = ? AND method = ? AND request_id = ?",
+        (pool_id, method, request_id),
+    ).fetchone()
+    return None if row is None else bytes(row[0])
+
+
+def load_pools(connection: sqlite3.Connection) -> list[PoolRow]:
+    rows = connection.execute(
+        "SELECT pool_id, settings, seed, create_time_ms FROM pools ORDER BY pool_id"
+    ).fetchall()
+    return [PoolRow(r[0], json.loads(r[1]), int(r[2]), int(r[3])) for r in rows]
+
+
+def load_segments(connection: sqlite3.Connection, pool_id: str) -> list[str]:
+    rows = connection.execute(
+        "SELECT code, name FROM segments WHERE pool_id = ? ORDER BY code", (pool_id,)
+    ).fetchall()
+    names = [name for _, name in rows]
+    if [code for code, _ in rows] != list(range(len(rows))):
+        raise RuntimeError(f"pool {pool_id!r}: segment codes are not 0..n-1")
+    return names
+
+
+def load_items(
+    connection: sqlite3.Connection,
+    pool_id: str,
+    *,
+    feature_dim: int,
+    output_width: int,
+    chunk_rows: int = 100_000,
+) -> Iterator[ItemChunk]:
+    """All items of the pool in row order, ``chunk_rows`` at a time."""
+    cursor = connection.execute(
+        "SELECT row, item_id, features, outputs, payload_ref, segment, event_time_ms,"
+        " ingest_time_ms FROM items WHERE pool_id = ? ORDER BY row",
+        (pool_id,),
+    )
+    expected = 0
+    while True:
+        rows = cursor.fetchmany(chunk_rows)
+        if not rows:
+            return
+        n = len(rows)
+        rows_seen = np.fromiter((r[0] for r in rows), dtype=np.int64, count=n)
+        if rows_seen[0] != expected or not np.array_equal(
+            rows_seen, np.arange(expected, expected + n)
+        ):
+            raise RuntimeError(f"pool {pool_id!r}: item rows are not contiguous near {expected}")
+        features = np.frombuffer(b"".join(r[2] for r in rows), dtype=np.float32)
+        outputs = np.frombuffer(b"".join(r[3] for r in rows), dtype=np.float32)
+        yield ItemChunk(
+            start=expected,
+            item_ids=[r[1] for r in rows],
+            features=features.reshape(n, feature_dim),
+            outputs=outputs.reshape(n, output_width) if output_width > 1 else outputs,
+            payload_refs=[r[4] for r in rows],
+            segments=np.fromiter((r[5] for r in rows), dtype=np.int32, count=n),
+            event_time_ms=np.fromiter((r[6] for r in rows), dtype=np.int64, count=n),
+            ingest_time_ms=np.fromiter((r[7] for r in rows), dtype=np.int64, count=n),
+        )
+        expected += n
+
+
+def load_draws(connection: sqlite3.Connection, pool_id: str) -> list[dict[str, Any]]:
+    cursor = connection.execute(
+        f"SELECT {', '.join(DRAW_COLUMNS)} FROM draws WHERE pool_id = ? ORDER BY draw_index",
+        (pool_id,),
+    )
+    return [dict(zip(DRAW_COLUMNS, row, strict=True)) for row in cursor]
+
+
+def load_latest_model(
+    connection: sqlite3.Connection, pool_id: str
+) -> tuple[int, int, bytes] | None:
+    """(version, label_count, data) of the newest surrogate, or None at cold start."""
+    row = connection.execute(
+        "SELECT version, label_count, data FROM models WHERE pool_id = ?"
+        " ORDER BY version DESC LIMIT 1",
+        (pool_id,),
+    ).fetchone()
+    return None if row is None else (int(row[0]), int(row[1]), bytes(row[2]))
