@@ -5,8 +5,26 @@ random choice takes a ``numpy.random.Generator``. The public surface is document
 docs/core-api.md and the mathematics in docs/estimation.md.
 """
 
+from .bounds import BET_TRUNCATION, BoundKind
+from .estimators import (
+    BALANCED_MIN_LABELS,
+    EstimatorMode,
+    RiskEstimate,
+    anytime_path,
+    empirical_bernstein_path,
+    estimate_risk,
+    lure_weights,
+)
+from .gate import MAX_LABELS_HINT, GateDecision, Verdict, check_gate
 from .losses import CROSS_ENTROPY_CLIP, PROBABILITY_SUM_TOLERANCE, LossKind, LossSpec
 from .normal import normal_cdf, normal_quantile
+from .selection import (
+    DEFAULT_FLOOR,
+    DrawBatch,
+    draw_batch,
+    selection_probabilities,
+    usefulness,
+)
 from .surrogate import (
     Surrogate,
     SurrogateScores,
@@ -14,17 +32,41 @@ from .surrogate import (
     cold_start_surrogate,
     fit_surrogate,
 )
+from .terms import DRAW_LABELED, DRAW_PENDING, DRAW_SKIPPED, DrawTerms, PlugInSums
 
 __all__ = [
+    "BALANCED_MIN_LABELS",
+    "BET_TRUNCATION",
     "CROSS_ENTROPY_CLIP",
+    "DEFAULT_FLOOR",
+    "DRAW_LABELED",
+    "DRAW_PENDING",
+    "DRAW_SKIPPED",
+    "MAX_LABELS_HINT",
     "PROBABILITY_SUM_TOLERANCE",
+    "BoundKind",
+    "DrawBatch",
+    "DrawTerms",
+    "EstimatorMode",
+    "GateDecision",
     "LossKind",
     "LossSpec",
+    "PlugInSums",
+    "RiskEstimate",
     "Surrogate",
     "SurrogateScores",
     "SurrogateSettings",
+    "Verdict",
+    "anytime_path",
+    "check_gate",
     "cold_start_surrogate",
+    "draw_batch",
+    "empirical_bernstein_path",
+    "estimate_risk",
     "fit_surrogate",
+    "lure_weights",
     "normal_cdf",
     "normal_quantile",
+    "selection_probabilities",
+    "usefulness",
 ]

@@ -57,7 +57,7 @@ def check_finite_array(
 ) -> np.ndarray:
     """``value`` as a finite numpy array (NaN and inf rejected) of the given rank."""
     try:
-        array = np.asarray(value, dtype=dtype)
+        array: np.ndarray = np.asarray(value, dtype=dtype)
     except (TypeError, ValueError):
         raise ValueError(f"{name} = {describe(value)}, must be numeric.") from None
     if ndim is not None and array.ndim != ndim:

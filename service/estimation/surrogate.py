@@ -35,6 +35,7 @@ from __future__ import annotations
 import json
 import logging
 from dataclasses import dataclass
+from typing import Any
 
 import lightgbm as lgb
 import numpy as np
@@ -299,7 +300,7 @@ def _train(
     rng: np.random.Generator,
 ) -> lgb.Booster:
     n = x.shape[0]
-    callbacks = []
+    callbacks: list[Any] = []
     valid_sets = []
     rows = np.arange(n)
     if n >= settings.early_stopping_min_labels:
