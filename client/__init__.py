@@ -4,7 +4,7 @@ A monitoring job, a labeling vendor and a release gate each need a few lines::
 
     from leadline.client import Client
 
-    with Client("leadline.internal:7461", token=token) as client:
+    with Client("leadline.internal:50051", token=token) as client:
         client.ingest("fraud-scores", ids, features, probabilities, segments=regions)
         for a in client.acquire("fraud-scores", 20, labeler="vendor-a"):
             ...

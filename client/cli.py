@@ -34,7 +34,7 @@ __all__ = ["DEFAULT_TARGET", "EXIT_ERROR", "EXIT_FAIL", "EXIT_PASS", "EXIT_UNDEC
 
 _LOG = logging.getLogger(__name__)
 
-DEFAULT_TARGET = "localhost:7461"
+DEFAULT_TARGET = "localhost:50051"
 EXIT_PASS = 0
 EXIT_OK = 0
 EXIT_FAIL = 1

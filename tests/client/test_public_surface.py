@@ -1,0 +1,107 @@
+"""The client's public surface is pinned: adding or removing a name is a deliberate act."""
+
+from __future__ import annotations
+
+import grpc
+import pytest
+
+import leadline.client as client_package
+from leadline.client import (
+    AccessDenied,
+    AlreadyExists,
+    Conflict,
+    InvalidRequest,
+    LeadlineError,
+    NotFound,
+    Overloaded,
+    Unavailable,
+)
+
+_PUBLIC = {
+    "AccessDenied",
+    "AlreadyExists",
+    "Client",
+    "Conflict",
+    "IngestResult",
+    "InvalidRequest",
+    "LeadlineError",
+    "LocalServer",
+    "NotFound",
+    "Overloaded",
+    "Skip",
+    "TlsConfig",
+    "Unavailable",
+    "pool_name",
+}
+
+_CLIENT_METHODS = {
+    "acquire",
+    "check_gate",
+    "close",
+    "create_pool",
+    "delete_pool",
+    "get_estimate",
+    "get_estimate_trace",
+    "get_pool",
+    "health",
+    "ingest",
+    "iter_draws",
+    "iter_pools",
+    "list_draws",
+    "list_pools",
+    "release",
+    "submit_labels",
+}
+
+
+def test_all_lists_exactly_the_public_names() -> None:
+    assert set(client_package.__all__) == _PUBLIC
+    for name in _PUBLIC:
+        assert getattr(client_package, name) is not None
+
+
+def test_client_has_a_method_per_rpc_and_nothing_else_public() -> None:
+    public = {name for name in dir(client_package.Client) if not name.startswith("_")}
+    assert public == _CLIENT_METHODS
+
+
+def test_every_rpc_of_the_contract_has_a_client_method() -> None:
+    from leadline.v1 import leadline_pb2
+
+    rpc_to_method = {
+        "CreatePool": "create_pool",
+        "GetPool": "get_pool",
+        "ListPools": "list_pools",
+        "DeletePool": "delete_pool",
+        "IngestItems": "ingest",
+        "AcquireItems": "acquire",
+        "SubmitLabels": "submit_labels",
+        "ReleaseItems": "release",
+        "GetEstimate": "get_estimate",
+        "CheckGate": "check_gate",
+        "ListDraws": "list_draws",
+        "GetEstimateTrace": "get_estimate_trace",
+    }
+    rpcs = {
+        method.name
+        for service in leadline_pb2.DESCRIPTOR.services_by_name.values()
+        for method in service.methods
+    }
+    assert rpcs == set(rpc_to_method)
+    assert set(rpc_to_method.values()) <= _CLIENT_METHODS
+
+
+@pytest.mark.parametrize(
+    "cls",
+    [InvalidRequest, NotFound, AlreadyExists, AccessDenied, Conflict, Overloaded, Unavailable],
+)
+def test_every_exception_is_a_leadline_error_with_a_docstring(cls: type) -> None:
+    assert issubclass(cls, LeadlineError)
+    assert cls.__doc__ and cls.__doc__.strip()
+
+
+def test_error_string_names_code_and_method() -> None:
+    error = NotFound("pool 'pools/x' not found", code=grpc.StatusCode.NOT_FOUND, method="GetPool")
+    assert str(error) == "NOT_FOUND in GetPool: pool 'pools/x' not found"
+    assert error.code is grpc.StatusCode.NOT_FOUND
+    assert error.details == "pool 'pools/x' not found"
