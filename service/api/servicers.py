@@ -29,14 +29,20 @@ __all__ = [
 _LOG = logging.getLogger(__name__)
 
 
+_TOKEN_PREFIX = "leadline:"
+
+
 def _encode_token(value: str) -> str:
-    return base64.urlsafe_b64encode(value.encode()).decode().rstrip("=")
+    return base64.urlsafe_b64encode((_TOKEN_PREFIX + value).encode()).decode().rstrip("=")
 
 
 def _decode_token(token: str, *, field: str = "page_token") -> str:
     try:
         padded = token + "=" * (-len(token) % 4)
-        return base64.urlsafe_b64decode(padded.encode()).decode()
+        text = base64.b64decode(padded.encode(), altchars=b"-_", validate=True).decode()
+        if not text.startswith(_TOKEN_PREFIX):
+            raise ValueError(text)
+        return text[len(_TOKEN_PREFIX) :]
     except (binascii.Error, UnicodeDecodeError, ValueError):
         raise errors.InvalidArgument(
             f"{field} = {token!r}: not a token this server issued; pass next_page_token unchanged.",
