@@ -22,6 +22,7 @@ import json
 import logging
 import math
 import secrets
+import shutil
 import statistics
 import sys
 import tempfile
@@ -73,6 +74,12 @@ class Scenario:
         """Zero-one risk of the model over the whole pool, from the hidden labels."""
         predicted = self.probabilities.argmax(axis=1)
         return float(np.mean(predicted != self.hidden_labels))
+
+    def true_segment_risks(self) -> dict[str, float]:
+        """Zero-one risk per segment, from the hidden labels."""
+        wrong = self.probabilities.argmax(axis=1) != self.hidden_labels
+        segments = np.asarray(self.segments)
+        return {name: float(wrong[segments == name].mean()) for name in sorted(set(self.segments))}
 
 
 @dataclass(frozen=True)
@@ -243,6 +250,9 @@ def run_demo(
         finally:
             code = server.stop()
             _LOG.info("server stopped with exit code %s", code)
+            # Keep the server's log beside the report: the temporary folder goes away.
+            Path(out_dir).mkdir(parents=True, exist_ok=True)
+            shutil.copyfile(server.log_path, Path(out_dir) / "server.log")
     summary = dataclasses.replace(summary, wall_seconds=round(time.perf_counter() - wall_start, 2))
     _print_summary(out, summary)
     summary_path = Path(out_dir) / "summary.json"
@@ -341,6 +351,7 @@ def _run_loop(
             bound="anytime",
             reference_risk=scenario.true_risk,
             reference_label="true risk (hidden labels)",
+            reference_segment_risks=scenario.true_segment_risks(),
         )
         files = write_report(data, out_dir, stem=POOL_ID)
     finally:

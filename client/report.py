@@ -49,6 +49,8 @@ class ReportData:
     # A risk known from outside the estimator (e.g. a demo's hidden labels), drawn as a line.
     reference_risk: float | None = None
     reference_label: str = "true risk"
+    # Per-segment counterparts of reference_risk, drawn as markers on the segment panel.
+    reference_segment_risks: dict[str, float] = field(default_factory=dict)
     generated_at: str = field(
         default_factory=lambda: time.strftime("%Y-%m-%d %H:%M:%S UTC", time.gmtime())
     )
@@ -70,6 +72,7 @@ def collect_report_data(
     max_points: int = 60,
     reference_risk: float | None = None,
     reference_label: str = "true risk",
+    reference_segment_risks: dict[str, float] | None = None,
 ) -> ReportData:
     """Fetch the pool, its estimate, trace, per-segment estimates, draws and (with
     ``max_risk``) a gate result. Needs a token with the reader role."""
@@ -94,6 +97,7 @@ def collect_report_data(
         max_risk=max_risk,
         reference_risk=reference_risk,
         reference_label=reference_label,
+        reference_segment_risks=dict(reference_segment_risks or {}),
     )
 
 
@@ -170,10 +174,24 @@ def _draw_segments(ax: Axes, data: ReportData) -> None:
         )
     ax.set_yticks(y, [name for name, _ in rows], fontsize=8)
     _reference_lines(ax, data, horizontal=False)
+    marked = [
+        (p, data.reference_segment_risks[name])
+        for p, (name, _) in zip(y, rows, strict=True)
+        if name in data.reference_segment_risks
+    ]
+    if marked:
+        ax.plot(
+            [r for _, r in marked],
+            [p for p, _ in marked],
+            "x",
+            color="black",
+            ms=7,
+            label=f"{data.reference_label} per segment",
+        )
     ax.set_xlabel("risk: estimate, fixed-time interval (thick), anytime bound (thin)")
     ax.set_title("Per-segment estimates")
     ax.grid(alpha=0.3, axis="x")
-    if data.max_risk is not None or data.reference_risk is not None:
+    if data.max_risk is not None or data.reference_risk is not None or marked:
         ax.legend(fontsize=7, loc="lower right")
 
 

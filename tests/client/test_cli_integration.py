@@ -1,0 +1,238 @@
+"""The `leadline` command as a CI job runs it: a child process against a real server."""
+
+from __future__ import annotations
+
+import base64
+import json
+import re
+import sys
+from pathlib import Path
+
+import matplotlib.image
+import numpy as np
+import pytest
+
+from leadline.client import Client, LocalServer
+from leadline.client.export import read_draws_csv
+from leadline.v1 import leadline_pb2
+
+from .conftest import ALL_ROLES_TOKEN, TOKENS, Digits, run_cli
+
+
+def _gate(server: LocalServer, pool: str, max_risk: float, *extra: str):
+    return run_cli(
+        "gate",
+        "--pool",
+        pool,
+        "--max-risk",
+        repr(max_risk),
+        "--confidence",
+        "0.95",
+        *extra,
+        token=TOKENS["reader"],
+        target=server.target,
+    )
+
+
+@pytest.mark.parametrize(
+    ("bound", "verdict", "exit_code"),
+    [
+        ("anytime", "FAIL", 1),
+        ("anytime", "PASS", 0),
+        ("anytime", "UNDECIDED", 2),
+        ("fixed-time", "FAIL", 1),
+        ("fixed-time", "PASS", 0),
+        ("fixed-time", "UNDECIDED", 2),
+    ],
+)
+def test_gate_exit_code_tells_the_verdict(
+    server: LocalServer,
+    admin: Client,
+    labeled_digits: Digits,
+    bound: str,
+    verdict: str,
+    exit_code: int,
+) -> None:
+    est = admin.get_estimate(labeled_digits.pool, confidence=0.95)
+    low, high = (
+        (est.anytime_lower, est.anytime_upper) if bound == "anytime" else (est.lower, est.upper)
+    )
+    # Thresholds placed by the server's own interval: below it FAIL, above it PASS, at the
+    # point estimate (inside it) UNDECIDED.
+    max_risk = {"FAIL": low / 2, "PASS": (high + 1) / 2, "UNDECIDED": est.risk}[verdict]
+    assert 0 < low < est.risk < high < 1
+    done = _gate(server, labeled_digits.pool, max_risk, "--bound", bound)
+    assert done.returncode == exit_code, done.stderr
+    assert done.stdout.startswith(f"{verdict}: pools/digits, risk below {max_risk:g}?")
+
+
+def test_gate_json_output_and_error_exit(server: LocalServer, labeled_digits: Digits) -> None:
+    done = _gate(server, labeled_digits.pool, 0.999, "--json")
+    assert done.returncode == 0
+    result = json.loads(done.stdout)
+    assert result["verdict"] == "VERDICT_PASS"
+    assert result["estimate"]["labels_used"] == "200"  # int64 is a JSON string (proto3 JSON)
+    missing = _gate(server, "no-such-pool", 0.5)
+    assert missing.returncode == 3
+    assert "NOT_FOUND" in missing.stderr
+
+
+def test_status_shows_counts_surrogate_and_estimate(
+    server: LocalServer, admin: Client, labeled_digits: Digits
+) -> None:
+    done = run_cli("status", "--pool", "digits", token=TOKENS["reader"], target=server.target)
+    assert done.returncode == 0, done.stderr
+    lines = dict(
+        re.match(r"(\S+)\s+(.*)", line).groups()  # type: ignore[union-attr]
+        for line in done.stdout.splitlines()
+        if line and not line.startswith(("SEGMENT", "scanner"))
+    )
+    pool = admin.get_pool("digits")
+    assert lines["pool"] == "pools/digits"
+    assert lines["items"] == f"{len(labeled_digits.item_ids):,}"
+    assert lines["draws"].startswith(f"{pool.draw_count:,} (labeled 200, pending 0, skipped 0)")
+    assert lines["surrogate"] == f"version {pool.surrogate_version}"
+    est = admin.get_estimate("digits")
+    assert lines["estimate"].startswith(f"{est.risk:.4f} ± {(est.upper - est.lower) / 2:.4f}")
+    assert "scanner-a" in done.stdout and "scanner-b" in done.stdout
+
+
+def test_report_writes_png_and_html_with_the_figures(
+    server: LocalServer, labeled_digits: Digits, tmp_path: Path
+) -> None:
+    done = run_cli(
+        "report",
+        "--pool",
+        "digits",
+        "--out",
+        str(tmp_path),
+        "--max-risk",
+        "0.5",
+        token=TOKENS["reader"],
+        target=server.target,
+    )
+    assert done.returncode == 0, done.stderr
+    png, page = tmp_path / "digits.png", (tmp_path / "digits.html").read_text()
+    assert matplotlib.image.imread(png).shape[0] > 200
+    images = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', page)
+    assert len(images) == 3
+    assert all(base64.b64decode(i).startswith(b"\x89PNG\r\n\x1a\n") for i in images)
+    for scope in ("whole pool", "scanner-a", "scanner-b"):
+        assert f"<tr><td>{scope}</td>" in page
+
+
+def test_export_round_trips_the_draws_and_their_losses(
+    server: LocalServer, admin: Client, labeled_digits: Digits, tmp_path: Path
+) -> None:
+    out = tmp_path / "draws.csv"
+    done = run_cli(
+        "export",
+        "--pool",
+        "digits",
+        "--out",
+        str(out),
+        token=TOKENS["reader"],
+        target=server.target,
+    )
+    assert done.returncode == 0, done.stderr
+    exported = read_draws_csv(out)
+    assert exported == admin.list_draws("digits", page_size=37)  # several pages
+    labeled = [d for d in exported if d.status == leadline_pb2.DRAW_STATUS_LABELED]
+    assert len(labeled) == 200
+    index = {item_id: i for i, item_id in enumerate(labeled_digits.item_ids)}
+    rows = np.array([index[d.item_id] for d in labeled])
+    # Zero-one loss recomputed from the bundled labels (scikit-learn's zero_one_loss
+    # definition, per item): the exported label and loss match the truth.
+    np.testing.assert_array_equal([d.class_label for d in labeled], labeled_digits.labels[rows])
+    predicted = labeled_digits.probabilities[rows].argmax(axis=1)
+    expected_loss = (predicted != labeled_digits.labels[rows]).astype(float)
+    np.testing.assert_array_equal([d.loss for d in labeled], expected_loss)
+
+
+def test_pool_create_list_show_delete(server: LocalServer) -> None:
+    def cli(*args: str):
+        return run_cli("pool", *args, token=TOKENS["admin"], target=server.target)
+
+    created = cli(
+        "create",
+        "cli-pool",
+        "--task",
+        "regression",
+        "--features",
+        "3",
+        "--loss",
+        "squared-error",
+        "--loss-cap",
+        "4",
+        "--description",
+        "made by the CLI",
+    )
+    assert created.returncode == 0, created.stderr
+    assert created.stdout.strip() == "created pools/cli-pool"
+    again = cli(
+        "create",
+        "cli-pool",
+        "--task",
+        "regression",
+        "--features",
+        "3",
+        "--loss",
+        "squared-error",
+        "--loss-cap",
+        "4",
+    )
+    assert again.returncode == 3 and "ALREADY_EXISTS" in again.stderr
+    listing = cli("list")
+    assert re.search(
+        r"^pools/cli-pool\s+regression\s+squared-error\s+0\s+0\s+v0$", listing.stdout, re.MULTILINE
+    ), listing.stdout
+    shown = cli("show", "pools/cli-pool", "--json")
+    assert json.loads(shown.stdout)["loss_cap"] == 4.0
+    deleted = cli("delete", "cli-pool", "--yes")
+    assert deleted.returncode == 0 and deleted.stdout.strip() == "deleted pools/cli-pool"
+    assert cli("show", "cli-pool").returncode == 3
+
+
+@pytest.mark.parametrize(
+    ("token", "code"),
+    [
+        (None, "UNAUTHENTICATED"),
+        ("not-a-token", "UNAUTHENTICATED"),
+        (TOKENS["reader"], "PERMISSION_DENIED"),
+    ],
+)
+def test_tokens_and_roles_are_enforced(server: LocalServer, token: str | None, code: str) -> None:
+    done = run_cli(
+        "pool",
+        "create",
+        "denied",
+        "--task",
+        "classification",
+        "--classes",
+        "2",
+        "--features",
+        "1",
+        "--loss",
+        "zero-one",
+        token=token,
+        target=server.target,
+    )
+    assert done.returncode == 3
+    assert done.stderr.startswith(f"leadline pool: {code} in CreatePool: ")
+
+
+def test_console_script_is_installed_and_forwards_serve_help() -> None:
+    script = Path(sys.executable).parent / "leadline"
+    import subprocess
+
+    done = subprocess.run(
+        [str(script), "serve", "--help"], capture_output=True, text=True, check=False, timeout=60
+    )
+    assert done.returncode == 0
+    assert done.stdout.startswith("usage: leadline serve")
+
+
+def test_all_roles_token_is_accepted(server: LocalServer, labeled_digits: Digits) -> None:
+    done = run_cli("pool", "list", "--json", token=ALL_ROLES_TOKEN, target=server.target)
+    assert done.returncode == 0
+    assert "pools/digits" in [p["name"] for p in json.loads(done.stdout)]
