@@ -327,7 +327,8 @@ def item_batch(batch: pb.ItemBatch, settings: PoolSettings, *, max_items: int) -
                 "model_outputs",
                 f"model_outputs of item {ids[row]!r} (row {row}): probabilities must be in [0, 1].",
             )
-        totals = outputs.astype(np.float64).sum(axis=1)
+        wide = outputs.astype(np.float64)
+        totals = wide.sum(axis=1)
         off = np.abs(totals - 1.0) > PROBABILITY_TOLERANCE
         if off.any():
             row = _first(off)
@@ -336,6 +337,9 @@ def item_batch(batch: pb.ItemBatch, settings: PoolSettings, *, max_items: int) -
                 f"model_outputs of item {ids[row]!r} (row {row}) sum to {totals[row]:.6g}: each "
                 f"row must sum to 1 within {PROBABILITY_TOLERANCE:g}.",
             )
+        # Rows are renormalised to sum to 1 (the core checks sums to a tighter tolerance);
+        # the stored outputs are the renormalised ones.
+        outputs = (wide / totals[:, None]).astype(np.float32)
     else:
         if outputs.shape[0] != n:
             raise _bad(

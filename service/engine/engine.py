@@ -612,7 +612,9 @@ class Engine:
                 {
                     "draw_index": index,
                     "row": int(rows[j]),
-                    "probability": float(batch.probabilities[j]),
+                    # The last remaining item's probability can exceed 1 by rounding
+                    # (1 + 1e-14); the core's term check wants (0, 1].
+                    "probability": min(float(batch.probabilities[j]), 1.0),
                     "remaining_count": int(batch.remaining_counts[j]),
                     "remaining_expected_loss": float(batch.remaining_expected_loss[j]),
                     "remaining_by_segment": (
@@ -620,7 +622,7 @@ class Engine:
                     ),
                     "correction_low": float(batch.correction_low[j]),
                     "correction_high": float(batch.correction_high[j]),
-                    "min_probability": float(batch.min_probability[j]),
+                    "min_probability": min(float(batch.min_probability[j]), 1.0),
                     "expected_loss": float(g[batch.positions[j]]),
                     "second_moment": float(scores.residual_second_moment[batch.positions[j]]),
                     "surrogate_version": version,
