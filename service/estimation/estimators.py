@@ -41,7 +41,7 @@ import numpy as np
 
 from ._checks import check_confidence, check_finite_array
 from .bounds import betting_lower_bound, betting_lower_path, empirical_bernstein_lower_path
-from .normal import normal_quantile
+from .normal import normal_quantile, student_t_quantile
 from .terms import (
     DRAW_PENDING,
     DRAW_SKIPPED,
@@ -254,13 +254,30 @@ class _Design:
     late_up: float  # ... or above it by this much
 
 
+def _calibration(ts: TermSums) -> float:
+    """How much larger the realised squared residuals are than the surrogate predicted.
+
+    Ratio of the importance-weighted sums sum (L - h)^2 / q and sum s / q over labeled
+    in-scope draws (each estimates its pool total), at least 1; it corrects an
+    overconfident surrogate's model-based variance.
+    """
+    use = ts.labeled & ts.in_scope
+    if not np.any(use):
+        return 1.0
+    realised = float(np.sum((ts.loss[use] - ts.expected_loss[use]) ** 2 / ts.probability[use]))
+    predicted = float(np.sum(ts.second_moment[use] / ts.probability[use]))
+    if predicted <= 0.0:
+        return 1.0
+    return max(1.0, realised / predicted)
+
+
 def _design(ts: TermSums, scope_size: int, bound: float) -> _Design:
     m = ts.count
     n = scope_size
     known, correction = term_sums(ts, ts.expected_loss, late=ts.late_expected)
     a = (known + correction) / n
     model = np.where(ts.in_scope, ts.second_moment / (n * ts.probability) ** 2, 0.0)
-    model_variance = float(model.sum()) / m**2
+    model_variance = float(model.sum()) / m**2 * _calibration(ts)
     empirical = float(np.var(a, ddof=1)) / m if m >= 2 else 0.0
     unresolved = ts.in_scope & ((ts.status == DRAW_PENDING) | (ts.status == DRAW_SKIPPED))
     t = np.arange(m)
@@ -326,11 +343,14 @@ def _estimate(
     bound = float(loss_bound)
     n = int(sums.scope_size)
     z = normal_quantile(1.0 - alpha_side)
+    # Design-based margins use Student's t with M - 1 degrees of freedom: the common
+    # small-sample choice; it widens M = 50 intervals by ~2%, where skewed importance
+    # weighted terms make the normal approximation optimistic.
+    t = student_t_quantile(1.0 - alpha_side, max(ts.count - 1, 1)) if ts.count else z
     labeled_in_scope = int(np.sum(ts.labeled & ts.in_scope))
     pending = int(np.sum((ts.status == DRAW_PENDING) & ts.in_scope))
     skipped = int(np.sum((ts.status == DRAW_SKIPPED) & ts.in_scope))
     plug_in = (sums.labeled_loss_sum + sums.unlabeled_expected_loss_sum) / n
-    plug_in = min(max(plug_in, 0.0), bound)
     plug_in_se = math.sqrt(max(sums.unlabeled_second_moment_sum, 0.0)) / n
 
     if ts.count == 0:
@@ -358,12 +378,12 @@ def _estimate(
     late_bias = max(design.late_down, design.late_up)
     contrast = design.risk - plug_in
     # Upper confidence bound on |bias of the plug-in|.
-    plug_in_bias = abs(contrast) + z * unbiased_se + design.allowance + late_bias
+    plug_in_bias = abs(contrast) + t * unbiased_se + design.allowance + late_bias
 
     if mode is EstimatorMode.UNBIASED:
         weight, risk, se = 1.0, design.risk, unbiased_se
-        margin_down = z * se + design.allowance + design.late_down
-        margin_up = z * se + design.allowance + design.late_up
+        margin_down = t * se + design.allowance + design.late_down
+        margin_up = t * se + design.allowance + design.late_up
         bias_bound = late_bias
         allowance = design.allowance
     elif mode is EstimatorMode.SURROGATE:
@@ -375,15 +395,17 @@ def _estimate(
         if labeled_in_scope < BALANCED_MIN_LABELS:
             weight = 1.0
         else:
-            b = abs(contrast) + z * unbiased_se
+            b = abs(contrast) + t * unbiased_se
             weight = b**2 / (b**2 + design.variance) if b > 0 else 0.0
         risk = plug_in + weight * contrast
         se = math.sqrt(weight**2 * design.variance + (1.0 - weight) ** 2 * plug_in_se**2)
         allowance = weight * design.allowance
-        kept = (1.0 - weight) * abs(contrast)
-        margin_down = z * se + kept + allowance + design.late_down
-        margin_up = z * se + kept + allowance + design.late_up
-        bias_bound = (1.0 - weight) * (abs(contrast) + z * unbiased_se) + late_bias
+        # The whole bias bound left, (1 - lambda) b, goes into the interval: carrying only
+        # (1 - lambda) |C| under-covered at M = 25-50 on digits (0.86-0.87 at 90%).
+        kept_bias = (1.0 - weight) * (abs(contrast) + t * unbiased_se)
+        margin_down = t * se + kept_bias + allowance + design.late_down
+        margin_up = t * se + kept_bias + allowance + design.late_up
+        bias_bound = kept_bias + late_bias
 
     if anytime:
         low_path, high_path = _path(
@@ -392,7 +414,6 @@ def _estimate(
         anytime_lower, anytime_upper = float(low_path[-1]), float(high_path[-1])
     else:
         anytime_lower, anytime_upper = 0.0, bound
-    risk = min(max(risk, 0.0), bound)
     return RiskEstimate(
         risk=risk,
         std_error=se,

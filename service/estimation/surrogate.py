@@ -10,7 +10,8 @@ Cold start (version 0, no labels):
 With labels (``fit_surrogate``): LightGBM boosting that starts from the model's own output
 (``init_score``) and learns corrections, strongly regularised for tiny label sets, fitted
 ``ensemble_size`` times on bootstrap resamples for an epistemic spread:
-- classification: multiclass boosting with init_score = log(clipped f); the ensemble's
+- classification: a temperature T fitted to the labels (penalised towards 1), then
+  multiclass boosting with init_score = log softmax(log(clipped f) / T); the ensemble's
   mean class probabilities give g and E[L^2]. Classes never seen among the labels keep the
   model's own probability (the seen classes share the rest), so a class absent from a tiny
   label set is not pushed towards zero.
@@ -119,6 +120,7 @@ class Surrogate:
         variance_boosters: tuple[lgb.Booster, ...] = (),
         seen_classes: tuple[int, ...] = (),
         feature_dim: int = -1,
+        temperature: float = 1.0,
     ) -> None:
         self.spec = spec
         self.version = int(version)
@@ -127,6 +129,7 @@ class Surrogate:
         self._variance_boosters = variance_boosters
         self._seen_classes = seen_classes
         self._feature_dim = feature_dim
+        self.temperature = float(temperature)
 
     def __repr__(self) -> str:
         return (
@@ -152,7 +155,7 @@ class Surrogate:
         firsts, seconds = [], []
         for index, booster in enumerate(self._boosters):
             if self.spec.is_classification:
-                pi = _class_probabilities(booster, x, out, self._seen_classes)
+                pi = _class_probabilities(booster, x, out, self._seen_classes, self.temperature)
                 first, second = self.spec.expected_losses(out, pi)
             else:
                 mean = out + booster.predict(x)
@@ -185,6 +188,7 @@ class Surrogate:
             "label_count": self.label_count,
             "feature_dim": self._feature_dim,
             "seen_classes": list(self._seen_classes),
+            "temperature": self.temperature,
             "boosters": [b.model_to_string() for b in self._boosters],
             "variance_boosters": [b.model_to_string() for b in self._variance_boosters],
         }
@@ -218,6 +222,7 @@ class Surrogate:
             ),
             seen_classes=tuple(int(c) for c in envelope["seen_classes"]),
             feature_dim=int(envelope["feature_dim"]),
+            temperature=float(envelope["temperature"]),
         )
 
 
@@ -247,14 +252,44 @@ def _design(features: object, outputs: np.ndarray, feature_dim: int) -> np.ndarr
     return np.hstack([x, columns])
 
 
-def _log_init(outputs: np.ndarray) -> np.ndarray:
-    return np.log(np.clip(outputs, CROSS_ENTROPY_CLIP, 1.0))
+def _log_init(outputs: np.ndarray, temperature: float = 1.0) -> np.ndarray:
+    """Log of the temperature-scaled model probabilities (the boosting start)."""
+    logits = np.log(np.clip(outputs, CROSS_ENTROPY_CLIP, 1.0)) / temperature
+    logits = logits - logits.max(axis=1, keepdims=True)
+    return logits - np.log(np.exp(logits).sum(axis=1, keepdims=True))
+
+
+def _fit_temperature(outputs: np.ndarray, labels: np.ndarray) -> float:
+    """One temperature T for softmax(log p / T), by penalised likelihood on a grid.
+
+    Temperature scaling ("On Calibration of Modern Neural Networks", ICML 2017) needs one
+    parameter, so it corrects an over- or under-confident model from a handful of labels.
+    The penalty (log T)^2 / (2 * 0.5^2) (a log-normal prior around T = 1, our choice) keeps
+    T near 1 until the labels insist.
+    """
+    grid = np.exp(np.linspace(np.log(0.25), np.log(20.0), 97))
+    logs = np.log(np.clip(outputs, CROSS_ENTROPY_CLIP, 1.0))
+    rows = np.arange(labels.shape[0])
+    best, best_value = 1.0, np.inf
+    for temperature in grid:
+        scaled = logs / temperature
+        scaled = scaled - scaled.max(axis=1, keepdims=True)
+        log_norm = np.log(np.exp(scaled).sum(axis=1))
+        nll = float(np.sum(log_norm - scaled[rows, labels]))
+        value = nll + np.log(temperature) ** 2 / (2 * 0.5**2)
+        if value < best_value:
+            best, best_value = float(temperature), value
+    return best
 
 
 def _class_probabilities(
-    booster: lgb.Booster, x: np.ndarray, outputs: np.ndarray, seen: tuple[int, ...]
+    booster: lgb.Booster,
+    x: np.ndarray,
+    outputs: np.ndarray,
+    seen: tuple[int, ...],
+    temperature: float,
 ) -> np.ndarray:
-    raw = booster.predict(x, raw_score=True) + _log_init(outputs)
+    raw = booster.predict(x, raw_score=True) + _log_init(outputs, temperature)
     raw = raw - raw.max(axis=1, keepdims=True)
     learned = np.exp(raw)
     k = outputs.shape[1]
@@ -367,7 +402,8 @@ def fit_surrogate(
     variance_boosters = []
     if spec.is_classification:
         k = spec.num_classes
-        init = _log_init(out)
+        temperature = _fit_temperature(out, y)
+        init = _log_init(out, temperature)
         params = _params(settings, "multiclass", seed, num_class=k)
         for member in range(settings.ensemble_size):
             params["seed"] = seed + member
@@ -390,6 +426,7 @@ def fit_surrogate(
             # No init_score: LightGBM starts from the mean squared error by itself.
             variance_boosters.append(_train(params, x, squared, None, settings=settings, rng=rng))
         seen = ()
+        temperature = 1.0
     _LOG.debug("fitted surrogate version %s on %s labels", version, n)
     return Surrogate(
         spec,
@@ -399,4 +436,5 @@ def fit_surrogate(
         variance_boosters=tuple(variance_boosters),
         seen_classes=seen,
         feature_dim=feature_dim,
+        temperature=temperature,
     )
