@@ -241,7 +241,7 @@ def pool_settings(pool_id: str, pool: pb.Pool) -> PoolSettings:
     )
 
 
-def _first(mask: np.ndarray) -> int:
+def _first(mask: Any) -> int:
     return int(np.flatnonzero(mask)[0])
 
 

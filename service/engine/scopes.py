@@ -123,7 +123,8 @@ def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
         cum_count = np.cumsum(mask)
         present_g0 = cum_g0[marks - 1] if m_count else np.zeros(0)
         late_g0 = (cum_g0[-1] if n else 0.0) - present_g0
-        late_count = (scope_size - (cum_count[marks - 1] if m_count else 0)).astype(np.float64)
+        present_count = cum_count[marks - 1] if m_count else np.zeros(0, dtype=np.int64)
+        late_count = (scope_size - present_count).astype(np.float64)
         unlabeled = mask & (pool.status.view != ITEM_LABELED)
     if scope_size == 0:
         raise FailedPrecondition(

@@ -127,3 +127,19 @@ def test_window_terms_follow_the_definition(scoped: Harness, cancer_pool: Datase
         assert bool(inputs.terms.in_scope[m]) == bool(in_scope[rows[m]])
     assert inputs.items_in_scope == int(in_scope.sum())
     assert inputs.items_unreached == 0
+
+
+@pytest.mark.parametrize(
+    "scope", [s for s, _ in _SCOPES], ids=["pool", "segment", "window", "both"]
+)
+def test_scope_estimate_before_any_draw_is_surrogate_only(scoped: Harness, scope: dict) -> None:
+    with scoped.stubs() as stubs:
+        estimate = stubs.call(
+            stubs.estimates.GetEstimate, pb.GetEstimateRequest(pool=_POOL, **scope)
+        )
+        gate = stubs.call(
+            stubs.estimates.CheckGate, pb.CheckGateRequest(pool=_POOL, max_risk=0.5, **scope)
+        )
+    assert estimate.labels_used == 0
+    assert estimate.items_unreached == estimate.items_in_scope > 0
+    assert gate.verdict == pb.VERDICT_UNDECIDED
