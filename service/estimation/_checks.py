@@ -22,6 +22,8 @@ __all__ = [
 
 def describe(value: object) -> str:
     """Short printable form of a value for an error message."""
+    if isinstance(value, np.generic):
+        return repr(value.item())
     if isinstance(value, np.ndarray):
         if value.size <= 6:
             return np.array2string(value, precision=6, separator=", ")
@@ -64,7 +66,9 @@ def check_finite_array(
         raise ValueError(f"{name} has shape {array.shape}, must have {ndim} dimension(s).")
     if array.dtype.kind == "f" and not np.all(np.isfinite(array)):
         bad = int(np.flatnonzero(~np.isfinite(array.ravel()))[0])
-        raise ValueError(f"{name}[{bad}] = {array.ravel()[bad]!r}, must be finite (no NaN or inf).")
+        raise ValueError(
+            f"{name}[{bad}] = {describe(array.ravel()[bad])}, must be finite (no NaN or inf)."
+        )
     return array
 
 

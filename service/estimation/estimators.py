@@ -39,7 +39,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._checks import check_confidence, check_finite_array
+from ._checks import check_confidence, check_finite_array, describe
 from .bounds import betting_lower_bound, betting_lower_path, empirical_bernstein_lower_path
 from .normal import normal_quantile, student_t_quantile
 from .terms import (
@@ -112,12 +112,14 @@ def lure_weights(probabilities: np.ndarray, pool_size: int) -> np.ndarray:
     """
     q = check_finite_array("probabilities", probabilities, ndim=1)
     if int(pool_size) != pool_size or pool_size < 1:
-        raise ValueError(f"pool_size = {pool_size!r}, must be an integer >= 1.")
+        raise ValueError(f"pool_size = {describe(pool_size)}, must be an integer >= 1.")
     n, m = int(pool_size), q.shape[0]
     if m > n:
         raise ValueError(f"len(probabilities) = {m}, must be <= pool_size ({n}).")
     if m and (q.min() <= 0.0 or q.max() > 1.0):
-        raise ValueError(f"probabilities range [{q.min()!r}, {q.max()!r}], must be in (0, 1].")
+        raise ValueError(
+            f"probabilities range [{describe(q.min())}, {describe(q.max())}], must be in (0, 1]."
+        )
     index = np.arange(1, m + 1, dtype=np.float64)
     left = n - index
     coefficient = np.where(left > 0, (n - m) / np.where(left > 0, left, 1.0), 0.0)
@@ -185,7 +187,7 @@ def _path(
 
 def _check_scope(scope_size: int) -> int:
     if isinstance(scope_size, bool) or int(scope_size) != scope_size or scope_size < 1:
-        raise ValueError(f"scope_size = {scope_size!r}, must be an integer >= 1.")
+        raise ValueError(f"scope_size = {describe(scope_size)}, must be an integer >= 1.")
     return int(scope_size)
 
 
@@ -302,7 +304,7 @@ def _check_sums(sums: PlugInSums) -> None:
             and math.isfinite(value)
             and value >= -1e-9
         ):
-            raise ValueError(f"{name} = {value!r}, must be a finite number >= 0.")
+            raise ValueError(f"{name} = {describe(value)}, must be a finite number >= 0.")
 
 
 def estimate_risk(
@@ -337,7 +339,7 @@ def _estimate(
     anytime: bool = True,
 ) -> RiskEstimate:
     if not isinstance(mode, EstimatorMode):
-        raise ValueError(f"mode = {mode!r}, must be an EstimatorMode member.")
+        raise ValueError(f"mode = {describe(mode)}, must be an EstimatorMode member.")
     _check_sums(sums)
     ts = check_terms(terms, loss_bound=loss_bound)
     bound = float(loss_bound)

@@ -16,7 +16,7 @@ import enum
 import math
 from dataclasses import dataclass
 
-from ._checks import check_confidence
+from ._checks import check_confidence, describe
 from .bounds import BoundKind
 from .estimators import EstimatorMode, RiskEstimate, _estimate
 from .terms import DrawTerms, PlugInSums
@@ -55,9 +55,9 @@ def check_gate(
     """Decide the gate; the estimate's bounds are one-sided at ``confidence`` each."""
     confidence = check_confidence(confidence)
     if not isinstance(bound, BoundKind):
-        raise ValueError(f"bound = {bound!r}, must be a BoundKind member.")
+        raise ValueError(f"bound = {describe(bound)}, must be a BoundKind member.")
     if not (isinstance(max_risk, (int, float)) and math.isfinite(max_risk) and max_risk >= 0):
-        raise ValueError(f"max_risk = {max_risk!r}, must be a finite number >= 0.")
+        raise ValueError(f"max_risk = {describe(max_risk)}, must be a finite number >= 0.")
     estimate = _estimate(
         terms,
         sums,

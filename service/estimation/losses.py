@@ -82,7 +82,7 @@ class LossSpec:
         if self.kind in _CLASSIFICATION:
             if int(self.num_classes) != self.num_classes or self.num_classes < 2:
                 raise ValueError(
-                    f"num_classes = {self.num_classes!r}, must be an integer >= 2 "
+                    f"num_classes = {describe(self.num_classes)}, must be an integer >= 2 "
                     f"for {self.kind.name}."
                 )
             object.__setattr__(self, "num_classes", int(self.num_classes))
@@ -90,7 +90,7 @@ class LossSpec:
             cap = float(self.loss_cap)
             if not (math.isfinite(cap) and cap > 0.0):
                 raise ValueError(
-                    f"loss_cap = {self.loss_cap!r}, must be finite and > 0 for "
+                    f"loss_cap = {describe(self.loss_cap)}, must be finite and > 0 for "
                     f"{self.kind.name} (bounds need a finite cap)."
                 )
             object.__setattr__(self, "loss_cap", cap)
@@ -152,7 +152,7 @@ class LossSpec:
                 )
             if probs.size and (probs.min() < 0.0 or probs.max() > 1.0):
                 raise ValueError(
-                    f"{name} min = {probs.min()!r}, max = {probs.max()!r}, "
+                    f"{name} min = {describe(probs.min())}, max = {describe(probs.max())}, "
                     "probabilities must lie in [0, 1]."
                 )
             sums = probs.sum(axis=1)
@@ -160,7 +160,7 @@ class LossSpec:
             if np.any(off):
                 row = int(np.flatnonzero(off)[0])
                 raise ValueError(
-                    f"{name}[{row}] sums to {sums[row]!r}, probabilities must sum to 1 "
+                    f"{name}[{row}] sums to {describe(sums[row])}, probabilities must sum to 1 "
                     f"within {PROBABILITY_SUM_TOLERANCE}."
                 )
             return probs
@@ -179,7 +179,8 @@ class LossSpec:
         if bad.size:
             i = int(bad[0])
             raise ValueError(
-                f"{name}[{i}] = {values[i]!r}, must be a class index in [0, {self.num_classes})."
+                f"{name}[{i}] = {describe(values[i])},"
+                f" must be a class index in [0, {self.num_classes})."
             )
         return values.astype(np.int64)
 
@@ -255,7 +256,7 @@ class LossSpec:
                 f"must match outputs {out.shape}."
             )
         if np.any(variance < 0):
-            raise ValueError(f"predictive variance min = {variance.min()!r}, must be >= 0.")
+            raise ValueError(f"predictive variance min = {describe(variance.min())}, must be >= 0.")
         return _clipped_error_moments(self.kind, mean - out, variance, self.loss_cap)
 
 

@@ -14,7 +14,7 @@ from statistics import NormalDist
 
 import numpy as np
 
-from ._checks import check_fraction
+from ._checks import check_fraction, describe
 
 __all__ = ["normal_cdf", "normal_pdf", "normal_quantile", "student_t_quantile"]
 
@@ -94,7 +94,7 @@ def student_t_quantile(probability: float, df: int) -> float:
     """
     p = check_fraction("probability", probability, low_open=True, high_open=True)
     if isinstance(df, bool) or int(df) != df or df < 1:
-        raise ValueError(f"df = {df!r}, must be an integer >= 1.")
+        raise ValueError(f"df = {describe(df)}, must be an integer >= 1.")
     df = int(df)
     if p == 0.5:
         return 0.0

@@ -94,7 +94,7 @@ def _check_usefulness(value: object) -> np.ndarray:
     u = check_finite_array("usefulness", value, ndim=1)
     if u.size and u.min() < 0.0:
         i = int(np.argmin(u))
-        raise ValueError(f"usefulness[{i}] = {u[i]!r}, must be >= 0.")
+        raise ValueError(f"usefulness[{i}] = {describe(u[i])}, must be >= 0.")
     return u
 
 
@@ -124,16 +124,17 @@ def draw_batch(
     floor = check_fraction("floor", floor, low_open=True, high_open=False)
     bound = float(loss_bound)
     if not (np.isfinite(bound) and bound > 0.0):
-        raise ValueError(f"loss_bound = {loss_bound!r}, must be finite and > 0.")
+        raise ValueError(f"loss_bound = {describe(loss_bound)}, must be finite and > 0.")
     tolerance = 1e-9 * bound
     if n and (g.min() < -tolerance or g.max() > bound + tolerance):
         raise ValueError(
-            f"expected_loss range [{g.min()!r}, {g.max()!r}], must lie in [0, {bound!r}] "
+            f"expected_loss range [{describe(g.min())}, {describe(g.max())}],"
+            f" must lie in [0, {describe(bound)}] "
             "(loss_bound)."
         )
     g = np.clip(g, 0.0, bound)
     if isinstance(count, bool) or int(count) != count or count < 0:
-        raise ValueError(f"count = {count!r}, must be an integer >= 0.")
+        raise ValueError(f"count = {describe(count)}, must be an integer >= 0.")
     count = int(count)
     if count > n:
         raise ValueError(f"count = {count}, must be <= the number of candidates ({n}).")
@@ -145,10 +146,13 @@ def draw_batch(
         if codes.shape[0] != n:
             raise ValueError(f"groups has {codes.shape[0]} entries, must match usefulness ({n}).")
         if int(num_groups) != num_groups or num_groups < 1:
-            raise ValueError(f"num_groups = {num_groups!r}, must be an integer >= 1 with groups.")
+            raise ValueError(
+                f"num_groups = {describe(num_groups)}, must be an integer >= 1 with groups."
+            )
         if n and (np.any(codes != np.round(codes)) or codes.min() < 0 or codes.max() >= num_groups):
             raise ValueError(
-                f"groups range [{codes.min()!r}, {codes.max()!r}], must be integer codes "
+                f"groups range [{describe(codes.min())}, {describe(codes.max())}],"
+                f" must be integer codes "
                 f"in [0, {num_groups})."
             )
         codes = codes.astype(np.int64)

@@ -41,7 +41,7 @@ from typing import Any
 import lightgbm as lgb
 import numpy as np
 
-from ._checks import check_finite_array
+from ._checks import check_finite_array, describe
 from .losses import CROSS_ENTROPY_CLIP, LossKind, LossSpec
 
 __all__ = [
@@ -95,15 +95,15 @@ class SurrogateSettings:
         ):
             value = getattr(self, name)
             if not isinstance(value, int) or value < 1:
-                raise ValueError(f"{name} = {value!r}, must be an integer >= 1.")
+                raise ValueError(f"{name} = {describe(value)}, must be an integer >= 1.")
         if self.num_leaves < 2:
-            raise ValueError(f"num_leaves = {self.num_leaves!r}, must be >= 2.")
+            raise ValueError(f"num_leaves = {describe(self.num_leaves)}, must be >= 2.")
         if self.num_threads > 2:
-            raise ValueError(f"num_threads = {self.num_threads!r}, must be 1 or 2.")
+            raise ValueError(f"num_threads = {describe(self.num_threads)}, must be 1 or 2.")
         if not (0.0 < self.learning_rate <= 1.0):
-            raise ValueError(f"learning_rate = {self.learning_rate!r}, must be in (0, 1].")
+            raise ValueError(f"learning_rate = {describe(self.learning_rate)}, must be in (0, 1].")
         if not (self.lambda_l2 >= 0.0):
-            raise ValueError(f"lambda_l2 = {self.lambda_l2!r}, must be >= 0.")
+            raise ValueError(f"lambda_l2 = {describe(self.lambda_l2)}, must be >= 0.")
 
 
 class Surrogate:
@@ -134,7 +134,7 @@ class Surrogate:
     def __repr__(self) -> str:
         return (
             f"Surrogate(version={self.version}, label_count={self.label_count}, "
-            f"members={len(self._boosters)}, spec={self.spec!r})"
+            f"members={len(self._boosters)}, spec={describe(self.spec)})"
         )
 
     @property
@@ -205,12 +205,13 @@ class Surrogate:
             raise ValueError("data format is not 'leadline-surrogate'.")
         if envelope.get("format_version") != _FORMAT_VERSION:
             raise ValueError(
-                f"format_version = {envelope.get('format_version')!r}, must be {_FORMAT_VERSION}."
+                f"format_version = {describe(envelope.get('format_version'))},"
+                f" must be {_FORMAT_VERSION}."
             )
         if envelope["loss_kind"] != spec.kind.value or envelope["num_classes"] != spec.num_classes:
             raise ValueError(
-                f"surrogate was fitted for loss {envelope['loss_kind']!r} with "
-                f"{envelope['num_classes']} classes, spec is {spec!r}."
+                f"surrogate was fitted for loss {describe(envelope['loss_kind'])} with "
+                f"{envelope['num_classes']} classes, spec is {describe(spec)}."
             )
         return cls(
             spec,
@@ -384,7 +385,7 @@ def fit_surrogate(
     labels). With no labels it returns the cold start under ``version``."""
     settings = settings or SurrogateSettings()
     if int(version) != version or version < 0:
-        raise ValueError(f"version = {version!r}, must be an integer >= 0.")
+        raise ValueError(f"version = {describe(version)}, must be an integer >= 0.")
     out = spec.check_outputs(outputs)
     y = spec.check_labels(labels, out.shape[0])
     x = _design(features, out, -1)

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._checks import check_finite_array
+from ._checks import check_finite_array, describe
 
 __all__ = [
     "DRAW_LABELED",
@@ -109,7 +109,7 @@ def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:
     """Validate a ``DrawTerms`` (ValueError naming field, value and rule)."""
     bound = float(loss_bound)
     if not (np.isfinite(bound) and bound > 0.0):
-        raise ValueError(f"loss_bound = {loss_bound!r}, must be finite and > 0.")
+        raise ValueError(f"loss_bound = {describe(loss_bound)}, must be finite and > 0.")
     probability = check_finite_array("probability", terms.probability, ndim=1)
     m = probability.shape[0]
     fields = {}
@@ -133,11 +133,11 @@ def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:
             raise ValueError(f"{name} has shape {array.shape}, must be ({m},) like probability.")
     if m and (probability.min() <= 0.0 or probability.max() > 1.0):
         i = int(np.argmin(probability) if probability.min() <= 0.0 else np.argmax(probability))
-        raise ValueError(f"probability[{i}] = {probability[i]!r}, must be in (0, 1].")
+        raise ValueError(f"probability[{i}] = {describe(probability[i])}, must be in (0, 1].")
     if not np.all(np.isin(status, (DRAW_LABELED, DRAW_PENDING, DRAW_SKIPPED))):
         i = int(np.flatnonzero(~np.isin(status, (DRAW_LABELED, DRAW_PENDING, DRAW_SKIPPED)))[0])
         raise ValueError(
-            f"status[{i}] = {status[i]!r}, must be DRAW_LABELED (0), DRAW_PENDING (1) or "
+            f"status[{i}] = {describe(status[i])}, must be DRAW_LABELED (0), DRAW_PENDING (1) or "
             "DRAW_SKIPPED (2)."
         )
     status = status.astype(np.int64)
@@ -150,25 +150,28 @@ def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:
     if np.any(bad_loss):
         i = int(np.flatnonzero(bad_loss)[0])
         raise ValueError(
-            f"loss[{i}] = {loss[i]!r}, must be finite and in [0, {bound!r}] for a LABELED draw."
+            f"loss[{i}] = {describe(loss[i])},"
+            f" must be finite and in [0, {describe(bound)}] for a LABELED draw."
         )
     h = fields["expected_loss"]
     if m and (h.min() < -tolerance or h.max() > bound + tolerance):
         i = int(np.argmax((h < -tolerance) | (h > bound + tolerance)))
-        raise ValueError(f"expected_loss[{i}] = {h[i]!r}, must be in [0, {bound!r}].")
+        raise ValueError(
+            f"expected_loss[{i}] = {describe(h[i])}, must be in [0, {describe(bound)}]."
+        )
     late_count = fields["late_count"]
     if m and (late_count.min() < 0 or np.any(late_count != np.round(late_count))):
         i = int(np.argmax((late_count < 0) | (late_count != np.round(late_count))))
-        raise ValueError(f"late_count[{i}] = {late_count[i]!r}, must be an integer >= 0.")
+        raise ValueError(f"late_count[{i}] = {describe(late_count[i])}, must be an integer >= 0.")
     for name in ("remaining_expected_loss", "late_expected_loss"):
         if m and fields[name].min() < -tolerance * max(1.0, float(np.abs(fields[name]).max())):
             i = int(np.argmin(fields[name]))
-            raise ValueError(f"{name}[{i}] = {fields[name][i]!r}, must be >= 0.")
+            raise ValueError(f"{name}[{i}] = {describe(fields[name][i])}, must be >= 0.")
     if m and (fields["correction_low"].max() > 0.0 or fields["correction_high"].min() < 0.0):
         raise ValueError(
             "correction_low must be <= 0 and correction_high >= 0 for every draw "
-            f"(got max low {fields['correction_low'].max()!r}, min high "
-            f"{fields['correction_high'].min()!r})."
+            f"(got max low {describe(fields['correction_low'].max())}, min high "
+            f"{describe(fields['correction_high'].min())})."
         )
     h = np.clip(h, 0.0, bound)
     if terms.residual_second_moment is not None:

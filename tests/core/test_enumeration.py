@@ -1,0 +1,243 @@
+"""Exact properties checked by enumerating every ordered draw sequence on tiny pools.
+
+Outside source: the design-unbiasedness of the difference estimator under sequential
+sampling (E[a_m | past] = pool risk for any adaptive proposal and predictable control
+variate; "Model Assisted Survey Sampling", 1992, ch. 6, and "On Statistical Bias in Active
+Learning: How and When to Fix It", ICLR 2021, Theorem 1 for g = 0) and the LURE weights'
+mean of 1 (same ICLR 2021 paper, Lemma 1 / Theorem 2). Enumeration makes the check exact,
+so the tolerance is rounding only (1e-12).
+"""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+
+from leadline.service.estimation import (
+    DRAW_LABELED,
+    DRAW_PENDING,
+    DRAW_SKIPPED,
+    DrawTerms,
+    EstimatorMode,
+    PlugInSums,
+    estimate_risk,
+    lure_weights,
+)
+
+_BOUND = 1.0
+_FLOOR = 0.25
+
+
+def _surrogate(step: int, history: list[int], losses: np.ndarray) -> np.ndarray:
+    """A control variate that changes between draws and uses only earlier labels."""
+    n = losses.shape[0]
+    base = 0.15 + 0.6 * np.arange(n) / n
+    if history:
+        seen = float(np.mean(losses[history]))
+        base = 0.5 * base + 0.5 * seen
+    return np.clip(base + 0.05 * step, 0.0, _BOUND)
+
+
+def _proposal(h: np.ndarray, remaining: list[int], history: list[int]) -> np.ndarray:
+    """Adaptive defensive-mixture proposal over the remaining items (uses the past draws)."""
+    u = np.sqrt(h[remaining] * (_BOUND - h[remaining])) + 0.1 * (len(history) % 2)
+    if history:
+        u = u * (1.0 + np.array([abs(j - history[-1]) for j in remaining]))
+    return (1.0 - _FLOOR) * u / u.sum() + _FLOOR / len(remaining)
+
+
+def _enumerate(losses: np.ndarray, draws: int, scope: np.ndarray):
+    """Yield (probability, DrawTerms, sequence) for every ordered sequence of ``draws``."""
+    n = losses.shape[0]
+    for sequence in itertools.permutations(range(n), draws):
+        probability = 1.0
+        history: list[int] = []
+        fields: dict[str, list[float]] = {k: [] for k in ("q", "h", "remaining", "low", "high")}
+        for step, item in enumerate(sequence):
+            remaining = [j for j in range(n) if j not in history]
+            h = _surrogate(step, history, losses)
+            q = _proposal(h, remaining, history)
+            q_item = q[remaining.index(item)]
+            probability *= q_item
+            fields["q"].append(q_item)
+            fields["h"].append(h[item])
+            fields["remaining"].append(float(sum(h[j] for j in remaining if scope[j])))
+            fields["low"].append(float(np.min(-h[remaining] / q)))
+            fields["high"].append(float(np.max((_BOUND - h[remaining]) / q)))
+            history.append(item)
+        idx = np.array(sequence)
+        terms = DrawTerms(
+            probability=np.array(fields["q"]),
+            expected_loss=np.array(fields["h"]),
+            remaining_expected_loss=np.array(fields["remaining"]),
+            late_expected_loss=np.zeros(draws),
+            late_count=np.zeros(draws, dtype=np.int64),
+            in_scope=scope[idx],
+            status=np.full(draws, DRAW_LABELED),
+            loss=losses[idx],
+            correction_low=np.array(fields["low"]),
+            correction_high=np.array(fields["high"]),
+        )
+        yield probability, terms, sequence
+
+
+def _sums(losses: np.ndarray, scope: np.ndarray) -> PlugInSums:
+    return PlugInSums(
+        scope_size=int(scope.sum()),
+        labeled_loss_sum=0.0,
+        unlabeled_expected_loss_sum=0.0,
+        unlabeled_second_moment_sum=0.0,
+    )
+
+
+_POOLS = [
+    np.array([0.0, 1.0, 0.0, 0.0, 1.0]),
+    np.array([0.9, 0.1, 0.35, 0.0, 0.7, 1.0]),
+    np.array([0.2, 0.0, 0.0, 1.0, 0.55, 0.05, 0.8]),
+]
+
+
+@pytest.mark.parametrize("losses", _POOLS, ids=["n5", "n6", "n7"])
+@pytest.mark.parametrize("draws", [1, 2, 3])
+def test_unbiased_estimate_is_exactly_unbiased_over_every_draw_sequence(losses, draws):
+    scope = np.ones(losses.shape[0], dtype=bool)
+    total_probability = 0.0
+    expectation = 0.0
+    for probability, terms, _ in _enumerate(losses, draws, scope):
+        estimate = estimate_risk(
+            terms,
+            _sums(losses, scope),
+            mode=EstimatorMode.UNBIASED,
+            confidence=0.9,
+            loss_bound=_BOUND,
+        )
+        total_probability += probability
+        expectation += probability * estimate.risk
+    assert total_probability == pytest.approx(1.0, abs=1e-12)
+    assert abs(expectation - losses.mean()) < 1e-12
+
+
+@pytest.mark.parametrize("draws", [1, 2, 3])
+def test_segment_estimate_is_exactly_unbiased_for_the_segment_risk(draws):
+    losses = _POOLS[2]
+    scope = np.array([True, False, True, True, False, False, True])
+    expectation = 0.0
+    for probability, terms, _ in _enumerate(losses, draws, scope):
+        estimate = estimate_risk(
+            terms,
+            _sums(losses, scope),
+            mode=EstimatorMode.UNBIASED,
+            confidence=0.9,
+            loss_bound=_BOUND,
+        )
+        expectation += probability * estimate.risk
+    assert abs(expectation - losses[scope].mean()) < 1e-12
+
+
+@pytest.mark.parametrize("losses", _POOLS, ids=["n5", "n6", "n7"])
+@pytest.mark.parametrize("draws", [1, 2, 3])
+def test_lure_is_unbiased_and_its_weights_average_one_at_every_step(losses, draws):
+    n = losses.shape[0]
+    scope = np.ones(n, dtype=bool)
+    expectation = 0.0
+    weight_means = np.zeros(draws)
+    for probability, terms, sequence in _enumerate(losses, draws, scope):
+        weights = lure_weights(terms.probability, n)
+        expectation += probability * float(np.mean(weights * losses[list(sequence)]))
+        weight_means += probability * weights
+    assert abs(expectation - losses.mean()) < 1e-12
+    np.testing.assert_allclose(weight_means, np.ones(draws), rtol=0, atol=1e-12)
+
+
+def test_late_items_bias_stays_within_the_reported_bias_bound():
+    """Items 5 and 6 arrive after every draw: they enter through a label-free score."""
+    losses = _POOLS[2]
+    present = np.array([True] * 5 + [False, False])
+    late_score = np.array([0.5, 0.5])
+    present_losses = losses[present]
+    expectation = 0.0
+    bias_bound = None
+    for probability, terms, _ in _enumerate(present_losses, 2, np.ones(5, dtype=bool)):
+        late = DrawTerms(
+            **{
+                **terms.__dict__,
+                "late_expected_loss": np.full(2, late_score.sum()),
+                "late_count": np.full(2, 2),
+            }
+        )
+        sums = PlugInSums(7, 0.0, 0.0, 0.0)
+        estimate = estimate_risk(
+            late, sums, mode=EstimatorMode.UNBIASED, confidence=0.9, loss_bound=_BOUND
+        )
+        expectation += probability * estimate.risk
+        bias_bound = estimate.bias_bound
+    exact_bias = (late_score.sum() - losses[~present].sum()) / 7
+    assert abs(expectation - losses.mean() - exact_bias) < 1e-12
+    assert bias_bound is not None and abs(exact_bias) <= bias_bound + 1e-12
+    assert bias_bound <= 2 * _BOUND / 7 + 1e-12  # mean(late_count) * B / N_D
+
+
+def test_oracle_surrogate_gives_the_exact_risk_from_one_label():
+    """g = L exactly: every correction is 0, so one labeled draw returns the pool risk."""
+    rng = np.random.default_rng(3)
+    losses = rng.uniform(0.0, 1.0, size=50)
+    for first in (0, 17, 49):
+        terms = DrawTerms(
+            probability=np.array([0.02]),
+            expected_loss=losses[[first]],
+            remaining_expected_loss=np.array([losses.sum()]),
+            late_expected_loss=np.zeros(1),
+            late_count=np.zeros(1, dtype=np.int64),
+            in_scope=np.ones(1, dtype=bool),
+            status=np.full(1, DRAW_LABELED),
+            loss=losses[[first]],
+            correction_low=np.array([-50.0]),
+            correction_high=np.array([50.0]),
+            residual_second_moment=np.zeros(1),
+        )
+        estimate = estimate_risk(
+            terms,
+            PlugInSums(50, 0.0, 0.0, 0.0),
+            mode=EstimatorMode.UNBIASED,
+            confidence=0.9,
+            loss_bound=1.0,
+        )
+        assert estimate.risk == pytest.approx(losses.mean(), abs=1e-12)
+        assert estimate.std_error == 0.0
+
+
+@pytest.mark.parametrize("status", [DRAW_PENDING, DRAW_SKIPPED])
+def test_nonresponse_allowance_covers_every_possible_missing_loss(status):
+    """The estimate is linear in an unknown loss; the allowance is its worst-case reach."""
+    losses = _POOLS[1]
+    scope = np.ones(losses.shape[0], dtype=bool)
+    _, terms, _ = next(iter(_enumerate(losses, 3, scope)))
+    sums = _sums(losses, scope)
+    missing = DrawTerms(
+        **{
+            **terms.__dict__,
+            "status": np.array([DRAW_LABELED, status, DRAW_LABELED]),
+            "loss": np.array([terms.loss[0], np.nan, terms.loss[2]]),
+        }
+    )
+    imputed = estimate_risk(
+        missing, sums, mode=EstimatorMode.UNBIASED, confidence=0.9, loss_bound=_BOUND
+    )
+    reach = []
+    for value in (0.0, 0.3, _BOUND):
+        known = DrawTerms(
+            **{**terms.__dict__, "loss": np.array([terms.loss[0], value, terms.loss[2]])}
+        )
+        full = estimate_risk(
+            known, sums, mode=EstimatorMode.UNBIASED, confidence=0.9, loss_bound=_BOUND
+        )
+        reach.append(abs(full.risk - imputed.risk))
+        assert reach[-1] <= imputed.nonresponse_allowance * (1 + 1e-12)
+        # The fixed-time interval includes the allowance on both sides.
+        assert imputed.lower <= max(full.risk - imputed.std_error, 0.0)
+        assert imputed.upper >= min(full.risk + imputed.std_error, _BOUND)
+    # The extreme loss (0 or B, whichever is farther from h) attains the allowance exactly.
+    assert max(reach) == pytest.approx(imputed.nonresponse_allowance, rel=1e-12)
+    assert imputed.labels_pending + imputed.labels_skipped == 1
