@@ -175,6 +175,20 @@ class Surrogate:
             spread=np.sqrt(epistemic),
         )
 
+    def class_probabilities(self, features: np.ndarray, outputs: np.ndarray) -> np.ndarray:
+        """Classification only: the ensemble's mean predictive class distribution (n, K)."""
+        if not self.spec.is_classification:
+            raise ValueError(f"spec = {self.spec!r}, class_probabilities needs classification.")
+        out = self.spec.check_outputs(outputs)
+        if self.is_cold_start:
+            return out.copy()
+        x = _design(features, out, self._feature_dim)
+        members = [
+            _class_probabilities(b, x, out, self._seen_classes, self.temperature)
+            for b in self._boosters
+        ]
+        return np.mean(members, axis=0)
+
     # ----------------------------------------------------------------------------------
 
     def to_bytes(self) -> bytes:

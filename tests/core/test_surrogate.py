@@ -1,0 +1,165 @@
+"""Surrogate: cold start, warm-started LightGBM fits, determinism, persistence."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from sklearn.datasets import load_diabetes, load_digits
+from sklearn.linear_model import LinearRegression, LogisticRegression
+
+from leadline.service.estimation import (
+    LossKind,
+    LossSpec,
+    Surrogate,
+    SurrogateSettings,
+    cold_start_surrogate,
+    fit_surrogate,
+)
+
+_FAST = SurrogateSettings(ensemble_size=3, num_rounds=20)
+
+
+@pytest.fixture(scope="module")
+def digits():
+    features, labels = load_digits(return_X_y=True)
+    model = LogisticRegression(max_iter=500).fit(features[:200], labels[:200])
+    return features[200:], model.predict_proba(features[200:]), labels[200:]
+
+
+@pytest.fixture(scope="module")
+def diabetes():
+    features, target = load_diabetes(return_X_y=True)
+    predictions = LinearRegression().fit(features[:150], target[:150]).predict(features)
+    return features[150:], predictions[150:], target[150:]
+
+
+def test_cold_start_is_the_models_own_expected_loss(digits):
+    features, outputs, _ = digits
+    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=10)
+    scores = cold_start_surrogate(spec).score(features, outputs)
+    # Under its own distribution the model errs with probability 1 - max_k p_k; the 0-1
+    # loss is Bernoulli, so E[(L - g)^2] = g (1 - g) (textbook Bernoulli variance).
+    g = 1.0 - outputs.max(axis=1)
+    np.testing.assert_allclose(scores.expected_loss, g, atol=1e-12)
+    np.testing.assert_allclose(scores.residual_second_moment, g * (1 - g), atol=1e-12)
+    assert np.all(scores.spread == 0)
+
+
+def test_regression_cold_start_is_the_documented_constant_prior(diabetes):
+    features, predictions, _ = diabetes
+    spec = LossSpec(kind=LossKind.ABSOLUTE_ERROR, loss_cap=80.0)
+    scores = cold_start_surrogate(spec).score(features, predictions)
+    np.testing.assert_allclose(scores.expected_loss, 40.0)
+    np.testing.assert_allclose(scores.residual_second_moment, 1600.0)
+
+
+def test_fit_is_deterministic_given_the_seed_and_survives_a_byte_round_trip(digits):
+    features, outputs, labels = digits
+    spec = LossSpec(kind=LossKind.CROSS_ENTROPY, num_classes=10)
+    first = fit_surrogate(
+        spec, features[:80], outputs[:80], labels[:80], version=3, seed=7, settings=_FAST
+    )
+    second = fit_surrogate(
+        spec, features[:80], outputs[:80], labels[:80], version=3, seed=7, settings=_FAST
+    )
+    a = first.score(features, outputs)
+    b = second.score(features, outputs)
+    np.testing.assert_array_equal(a.expected_loss, b.expected_loss)
+    restored = Surrogate.from_bytes(spec, first.to_bytes())
+    c = restored.score(features, outputs)
+    np.testing.assert_array_equal(a.expected_loss, c.expected_loss)
+    np.testing.assert_array_equal(a.residual_second_moment, c.residual_second_moment)
+    assert (restored.version, restored.label_count) == (3, 80)
+    assert b"pickle" not in first.to_bytes()[:200]
+
+
+def test_labels_make_the_surrogate_predict_losses_better_than_the_cold_start(digits):
+    features, outputs, labels = digits
+    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=10)
+    losses = spec.losses(outputs, labels)
+    fitted = fit_surrogate(
+        spec, features[:400], outputs[:400], labels[:400], version=1, seed=0, settings=_FAST
+    )
+    held = slice(400, None)
+    cold = cold_start_surrogate(spec).score(features[held], outputs[held]).expected_loss
+    warm = fitted.score(features[held], outputs[held])
+    # Held-out mean squared error of the loss prediction (Brier score of the error event).
+    assert np.mean((warm.expected_loss - losses[held]) ** 2) < np.mean((cold - losses[held]) ** 2)
+    assert np.all(warm.residual_second_moment >= 0)
+    assert np.all((warm.expected_loss >= 0) & (warm.expected_loss <= 1))
+    assert warm.spread.max() > 0  # the bootstrap members disagree somewhere
+
+
+def test_classes_never_labeled_keep_the_models_own_probabilities(digits):
+    features, outputs, labels = digits
+    spec = LossSpec(kind=LossKind.BRIER, num_classes=10)
+    keep = np.isin(labels, [0, 1, 2])
+    fitted = fit_surrogate(
+        spec,
+        features[keep][:60],
+        outputs[keep][:60],
+        labels[keep][:60],
+        version=1,
+        seed=1,
+        settings=_FAST,
+    )
+    pi = fitted.class_probabilities(features, outputs)
+    np.testing.assert_allclose(pi[:, 3:], outputs[:, 3:], atol=1e-12)
+    np.testing.assert_allclose(pi.sum(axis=1), 1.0, atol=1e-12)
+
+
+@pytest.mark.parametrize("kind", [LossKind.SQUARED_ERROR, LossKind.ABSOLUTE_ERROR])
+def test_regression_fit_scores_every_item_within_the_cap(diabetes, kind):
+    features, predictions, target = diabetes
+    cap = 6000.0 if kind is LossKind.SQUARED_ERROR else 120.0
+    spec = LossSpec(kind=kind, loss_cap=cap)
+    fitted = fit_surrogate(
+        spec, features[:120], predictions[:120], target[:120], version=1, seed=0, settings=_FAST
+    )
+    scores = fitted.score(features, predictions)
+    assert np.all((scores.expected_loss >= 0) & (scores.expected_loss <= cap))
+    assert np.all(scores.residual_second_moment >= 0)
+    losses = spec.losses(predictions, target)
+    # The fitted surrogate's mean loss lands nearer the truth than the constant cap / 2 prior.
+    assert abs(scores.expected_loss.mean() - losses.mean()) < abs(cap / 2 - losses.mean())
+    restored = Surrogate.from_bytes(spec, fitted.to_bytes()).score(features, predictions)
+    np.testing.assert_array_equal(restored.expected_loss, scores.expected_loss)
+
+
+def test_no_labels_gives_the_cold_start_under_the_new_version(digits):
+    features, outputs, _ = digits
+    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=10)
+    fitted = fit_surrogate(spec, features[:0], outputs[:0], np.zeros(0), version=2, seed=0)
+    assert fitted.is_cold_start and fitted.version == 2
+    cold = cold_start_surrogate(spec).score(features, outputs)
+    np.testing.assert_array_equal(fitted.score(features, outputs).expected_loss, cold.expected_loss)
+
+
+@pytest.mark.parametrize(
+    ("build", "message"),
+    [
+        (lambda: SurrogateSettings(ensemble_size=0), "ensemble_size = 0, must be an integer >= 1"),
+        (lambda: SurrogateSettings(num_threads=4), "num_threads = 4, must be 1 or 2"),
+        (lambda: SurrogateSettings(learning_rate=0.0), "learning_rate = 0.0, must be in (0, 1]"),
+    ],
+)
+def test_bad_settings_raise_value_error(build, message):
+    with pytest.raises(ValueError) as info:
+        build()
+    assert message in str(info.value)
+
+
+def test_bad_surrogate_inputs_raise_value_error(digits):
+    features, outputs, labels = digits
+    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=10)
+    fitted = fit_surrogate(
+        spec, features[:40], outputs[:40], labels[:40], version=1, seed=0, settings=_FAST
+    )
+    with pytest.raises(ValueError, match=r"features has 3 columns, surrogate was fitted on 64"):
+        fitted.score(features[:, :3], outputs)
+    with pytest.raises(ValueError, match=r"version = -1, must be an integer >= 0"):
+        fit_surrogate(spec, features[:4], outputs[:4], labels[:4], version=-1, seed=0)
+    with pytest.raises(ValueError, match=r"surrogate was fitted for loss 'zero_one'"):
+        Surrogate.from_bytes(LossSpec(kind=LossKind.BRIER, num_classes=10), fitted.to_bytes())
+    with pytest.raises(ValueError, match=r"data is not a surrogate envelope"):
+        Surrogate.from_bytes(spec, b"\x80not json")
