@@ -66,6 +66,13 @@ def _status_codes(status: np.ndarray) -> np.ndarray:
     return codes
 
 
+def _suffix_at(values: np.ndarray, marks: np.ndarray) -> np.ndarray:
+    """sum(values[mark:]) for each mark (0 at mark == len(values))."""
+    suffix = np.zeros(values.shape[0] + 1, dtype=np.float64)
+    suffix[:-1] = np.cumsum(values[::-1])[::-1]
+    return suffix[marks]
+
+
 def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
     """The core's inputs for ``scope``; call with ``pool.lock`` held.
 
@@ -110,22 +117,18 @@ def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
     if mask is None:
         scope_size = n
         in_scope = np.ones(m_count, dtype=bool)
-        total_g0 = float(g0.sum())
-        present_g0 = np.cumsum(g0)[marks - 1] if m_count else np.zeros(0)
+        weighted = g0
         late_count = (n - marks).astype(np.float64)
-        late_g0 = total_g0 - present_g0
         unlabeled = pool.status.view != ITEM_LABELED
     else:
         scope_size = int(np.count_nonzero(mask))
         in_scope = mask[rows]
         weighted = np.where(mask, g0, 0.0)
-        cum_g0 = np.cumsum(weighted)
-        cum_count = np.cumsum(mask)
-        present_g0 = cum_g0[marks - 1] if m_count else np.zeros(0)
-        late_g0 = (cum_g0[-1] if n else 0.0) - present_g0
-        present_count = cum_count[marks - 1] if m_count else np.zeros(0, dtype=np.int64)
-        late_count = (scope_size - present_count).astype(np.float64)
+        late_count = _suffix_at(mask.astype(np.float64), marks)
         unlabeled = mask & (pool.status.view != ITEM_LABELED)
+    # Suffix sums give exactly 0 where no item came later and never go negative (a total
+    # minus a prefix can, by rounding, and the core refuses negative sums).
+    late_g0 = _suffix_at(weighted, marks)
     if scope_size == 0:
         raise FailedPrecondition(
             f"pool {pool.pool_id!r} has no items in scope (segment = {scope.segment!r}, "
@@ -137,7 +140,8 @@ def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
         expected = g0[rows]
         drawn_in_scope = np.where(in_scope, expected, 0.0)
         drawn_before = np.cumsum(drawn_in_scope) - drawn_in_scope
-        remaining = present_g0 - drawn_before
+        present_g0 = np.cumsum(weighted)[marks - 1] if m_count else np.zeros(0)
+        remaining = np.maximum(present_g0 - drawn_before, 0.0)
         bound = pool.loss_bound
         min_q = draws.min_probability.view
         correction_low = -bound / min_q
