@@ -1,0 +1,67 @@
+"""The SQLite store: migrations, group commit with per-write isolation, durability."""
+
+from __future__ import annotations
+
+import sqlite3
+import threading
+from pathlib import Path
+
+import pytest
+
+from leadline.service.store import DATABASE_FILE, SCHEMA_VERSION, Database
+
+
+def test_new_data_dir_gets_current_schema_and_reopens(tmp_path: Path) -> None:
+    database = Database(tmp_path)
+    database.close()
+    database = Database(tmp_path)
+    database.close()
+    with sqlite3.connect(tmp_path / DATABASE_FILE) as connection:
+        (version,) = connection.execute("SELECT version FROM schema_version").fetchone()
+        mode = connection.execute("PRAGMA journal_mode").fetchone()[0]
+    assert version == SCHEMA_VERSION
+    assert mode == "wal"
+
+
+def test_newer_schema_is_refused(tmp_path: Path) -> None:
+    Database(tmp_path).close()
+    with sqlite3.connect(tmp_path / DATABASE_FILE) as connection:
+        connection.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION + 1,))
+    with pytest.raises(RuntimeError, match="newer than this server"):
+        Database(tmp_path)
+
+
+def test_failing_write_does_not_undo_its_group(tmp_path: Path) -> None:
+    database = Database(tmp_path)
+    try:
+        database.write(
+            lambda c: c.execute("CREATE TABLE notes (id INTEGER PRIMARY KEY, text TEXT)")
+        )
+        barrier = threading.Event()
+        # Hold the writer so the next three writes share one group commit.
+        blocker = database.submit(lambda c: barrier.wait(5))
+        good = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (1, 'kept')"))
+        bad = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (1, 'duplicate')"))
+        also = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (2, 'kept too')"))
+        barrier.set()
+        blocker.result(10)
+        good.result(10)
+        also.result(10)
+        with pytest.raises(sqlite3.IntegrityError):
+            bad.result(10)
+        rows = database.reader().execute("SELECT id, text FROM notes ORDER BY id").fetchall()
+        assert rows == [(1, "kept"), (2, "kept too")]
+    finally:
+        database.close()
+
+
+def test_committed_write_is_visible_to_a_fresh_connection(tmp_path: Path) -> None:
+    database = Database(tmp_path)
+    database.write(lambda c: c.execute("CREATE TABLE t (x INTEGER)"))
+    database.write(lambda c: c.execute("INSERT INTO t VALUES (42)"))
+    # Acknowledged = committed: another connection sees it before the server closes.
+    with sqlite3.connect(tmp_path / DATABASE_FILE) as other:
+        assert other.execute("SELECT x FROM t").fetchall() == [(42,)]
+    database.close()
+    with pytest.raises(RuntimeError, match="closed"):
+        database.submit(lambda c: None)
