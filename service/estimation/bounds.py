@@ -41,8 +41,10 @@ __all__ = [
     "empirical_bernstein_lower_path",
 ]
 
-#: Largest share of capital a single bet may risk (the paper's truncation c, 1/2 or 3/4).
-BET_TRUNCATION: float = 0.5
+#: Largest share of capital a single bet may risk (the paper's truncation c; it suggests
+#: 1/2 or 3/4). 3/4 measured tighter upper bounds on importance-weighted terms, whose
+#: ranges are wide (digits, 0-1 loss, M = 100: 0.18 vs 0.26 above the risk at floor 0.2).
+BET_TRUNCATION: float = 0.75
 
 _GRID_UNIFORM = 257
 _GRID_LOG_POINTS = 240
@@ -54,14 +56,28 @@ class BoundKind(enum.Enum):
     ANYTIME = "anytime"
 
 
-def _base_bets(x: np.ndarray, lo: np.ndarray, hi: np.ndarray, alpha: float) -> np.ndarray:
-    """Predictable plug-in bet sizes lambda_t (before truncation), using x_0..x_{t-1} only."""
+Prior = tuple[float, float] | None
+
+
+def _prior(lo: np.ndarray, hi: np.ndarray, prior: Prior) -> tuple[float, float]:
+    if prior is not None:
+        return prior
+    return 0.5 * (lo[0] + hi[0]), (0.5 * (hi[0] - lo[0])) ** 2
+
+
+def _base_bets(
+    x: np.ndarray, lo: np.ndarray, hi: np.ndarray, alpha: float, prior: Prior
+) -> np.ndarray:
+    """Predictable plug-in bet sizes lambda_t (before truncation), using x_0..x_{t-1} only.
+
+    ``prior`` = (mean, variance) enters as one pseudo-observation; without it the first
+    range's midpoint and half-width are used (the paper's choice for [0, 1] data).
+    """
     m = x.shape[0]
     if m == 0:
         return np.zeros(0)
     t = np.arange(1, m + 1, dtype=np.float64)
-    prior_mean = 0.5 * (lo[0] + hi[0])
-    prior_var = (0.5 * (hi[0] - lo[0])) ** 2
+    prior_mean, prior_var = _prior(lo, hi, prior)
     # running mean before each x_i (including the prior as one pseudo-observation)
     csum = np.concatenate([[0.0], np.cumsum(x)])
     mean_before = (prior_mean + csum[:-1]) / t  # mu_{i-1}, i = 0..m-1
@@ -99,6 +115,7 @@ def betting_lower_path(
     alpha: float,
     support: tuple[float, float],
     center: float,
+    prior: Prior = None,
 ) -> np.ndarray:
     """Lower confidence sequence after each term (length M), on a grid over ``support``.
 
@@ -108,11 +125,11 @@ def betting_lower_path(
     m = x.shape[0]
     if m == 0:
         return np.zeros(0)
-    bets = _base_bets(x, lo, hi, alpha)
+    bets = _base_bets(x, lo, hi, alpha, prior)
     grid = _grid(support[0], support[1], center)
     threshold = math.log(1.0 / alpha)
     size = grid.shape[0]
-    lower = np.full(m, support[0])
+    lower = np.full(m, float(support[0]))
     total = np.zeros(size)
     best = np.full(size, -np.inf)
     chunk = max(1, 2_000_000 // size)
@@ -139,13 +156,14 @@ def betting_lower_bound(
     alpha: float,
     support: tuple[float, float],
     center: float,
+    prior: Prior = None,
 ) -> float:
     """Final value of the lower confidence sequence, refined by bisection."""
     m = x.shape[0]
     if m == 0:
         return support[0]
-    path = betting_lower_path(x, lo, hi, alpha=alpha, support=support, center=center)
-    bets = _base_bets(x, lo, hi, alpha)
+    path = betting_lower_path(x, lo, hi, alpha=alpha, support=support, center=center, prior=prior)
+    bets = _base_bets(x, lo, hi, alpha, prior)
     threshold = math.log(1.0 / alpha)
 
     def crossed(r: float) -> bool:
@@ -170,7 +188,7 @@ def betting_lower_bound(
 
 
 def empirical_bernstein_lower_path(
-    x: np.ndarray, lo: np.ndarray, hi: np.ndarray, *, alpha: float
+    x: np.ndarray, lo: np.ndarray, hi: np.ndarray, *, alpha: float, prior: Prior = None
 ) -> np.ndarray:
     """Predictable-plug-in empirical-Bernstein lower confidence sequence (length M).
 
@@ -183,11 +201,11 @@ def empirical_bernstein_lower_path(
     m = x.shape[0]
     if m == 0:
         return np.zeros(0)
-    bets = _base_bets(x, lo, hi, alpha)
+    bets = _base_bets(x, lo, hi, alpha, prior)
     t = np.arange(1, m + 1, dtype=np.float64)
-    prior = 0.5 * (lo[0] + hi[0])
+    prior_mean, _ = _prior(lo, hi, prior)
     csum = np.concatenate([[0.0], np.cumsum(x)])
-    mean_before = np.clip((prior + csum[:-1]) / t, lo, hi)
+    mean_before = np.clip((prior_mean + csum[:-1]) / t, lo, hi)
     room = np.maximum(mean_before - lo, 1e-12 * np.maximum(hi - lo, 1e-300))
     lam = np.minimum(bets, BET_TRUNCATION / room)
     u = lam * room

@@ -132,7 +132,7 @@ def lure_weights(probabilities: np.ndarray, pool_size: int) -> np.ndarray:
 
 def _anytime_side(
     ts: TermSums, scope_size: int, bound: float, *, upper: bool
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
     """Terms and their predictable ranges for one side: unknown and late losses at their
     worst case (0 for the lower side, B for the upper side)."""
     fill = np.full(ts.count, bound if upper else 0.0)
@@ -150,7 +150,9 @@ def _anytime_side(
     x = (known + correction) / scope_size
     lo = (known + low) / scope_size
     hi = (known + high) / scope_size
-    return x, lo, hi
+    # The first term's value without its correction (the surrogate's guess) is known
+    # before any draw: the bets' prior mean.
+    return x, lo, hi, float(known[0] / scope_size)
 
 
 def _path(
@@ -165,22 +167,31 @@ def _path(
 ) -> tuple[np.ndarray, np.ndarray]:
     lows: list[np.ndarray] = []
     highs: list[np.ndarray] = []
+    # Bet sizing prior: variance (B/2)^2, the largest variance of one i.i.d. loss, so early
+    # bets are scaled like those of plain sampling rather than by the (much wider) range.
+    prior_var = (bound / 2.0) ** 2
     for upper in (False, True):
-        x, lo, hi = _anytime_side(ts, scope_size, bound, upper=upper)
+        x, lo, hi, first_guess = _anytime_side(ts, scope_size, bound, upper=upper)
         if upper:  # mirror: an upper bound on r is a lower bound on -r
             x, lo, hi = -x, -hi, -lo
-            support, middle = (-bound, 0.0), -center
+            support, middle, prior = (-bound, 0.0), -center, (-first_guess, prior_var)
         else:
-            support, middle = (0.0, bound), center
+            support, middle, prior = (0.0, bound), center, (first_guess, prior_var)
         if method == "empirical_bernstein":
-            path = empirical_bernstein_lower_path(x, lo, hi, alpha=alpha_side)
+            path = empirical_bernstein_lower_path(x, lo, hi, alpha=alpha_side, prior=prior)
             values = path[-1:] if final_only else path
         elif final_only:
             values = np.array(
-                [betting_lower_bound(x, lo, hi, alpha=alpha_side, support=support, center=middle)]
+                [
+                    betting_lower_bound(
+                        x, lo, hi, alpha=alpha_side, support=support, center=middle, prior=prior
+                    )
+                ]
             )
         else:
-            values = betting_lower_path(x, lo, hi, alpha=alpha_side, support=support, center=middle)
+            values = betting_lower_path(
+                x, lo, hi, alpha=alpha_side, support=support, center=middle, prior=prior
+            )
         (highs if upper else lows).append(-values if upper else values)
     return np.clip(lows[0], 0.0, bound), np.clip(highs[0], 0.0, bound)
 
