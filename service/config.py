@@ -51,6 +51,9 @@ class ServerConfig:
     log_level: str = "INFO"
     log_format: str = "text"
     surrogate_threads: int = 1
+    # 0: every new pool gets a random seed. Otherwise pool seeds derive from this value and
+    # the pool id, so the same calls replay the same draws (audits, benchmarks, tests).
+    draw_seed: int = 0
     extra: Mapping[str, Any] = field(default_factory=dict, repr=False)
 
     def __post_init__(self) -> None:
@@ -88,6 +91,8 @@ def _check(config: ServerConfig) -> None:
         raise bad("shutdown_grace_seconds", "must be >= 0")
     if config.log_format not in ("text", "json"):
         raise bad("log_format", "must be 'text' or 'json'")
+    if config.draw_seed < 0:
+        raise bad("draw_seed", "must be >= 0 (0 = random seeds)")
     if not 1 <= config.surrogate_threads <= 2:
         raise bad("surrogate_threads", "must be 1 or 2")
 

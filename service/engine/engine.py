@@ -11,6 +11,7 @@ retry is answered from the first result (also after a restart).
 
 from __future__ import annotations
 
+import hashlib
 import logging
 import secrets
 import sqlite3
@@ -67,6 +68,7 @@ from leadline.service.estimation import (
     EstimatorMode,
     Surrogate,
     SurrogateScores,
+    SurrogateSettings,
     check_gate,
     draw_batch,
     estimate_risk,
@@ -203,7 +205,12 @@ class Engine:
     def create_pool(self, settings: PoolSettings) -> PoolInfo:
         self._check_open()
         created = now_ms()
-        pool = PoolState(settings=settings, seed=secrets.randbits(62), create_time_ms=created)
+        if self._config.draw_seed:
+            digest = hashlib.sha256(f"{self._config.draw_seed}:{settings.pool_id}".encode())
+            seed = int.from_bytes(digest.digest()[:8], "big") >> 2
+        else:
+            seed = secrets.randbits(62)
+        pool = PoolState(settings=settings, seed=seed, create_time_ms=created)
         with self._pools_lock:
             if settings.pool_id in self._pools:
                 raise AlreadyExists(
@@ -1081,6 +1088,7 @@ class Engine:
                 typed,
                 version=version,
                 seed=seed,
+                settings=SurrogateSettings(num_threads=self._config.surrogate_threads),
             )
             scores = _score_rows(surrogate, features[:n0], outputs[:n0])
             data = surrogate.to_bytes()

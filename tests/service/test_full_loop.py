@@ -15,8 +15,10 @@ from tests.service.helpers import (
 )
 
 
-def test_full_loop_estimate_tracks_true_risk(harness: Harness, digits_pool: Dataset) -> None:
+def test_full_loop_estimate_tracks_true_risk(harness_factory, digits_pool: Dataset) -> None:
     data = digits_pool
+    # A fixed draw seed makes the draws, and so this statistical check, reproducible.
+    harness: Harness = harness_factory(draw_seed=20261202)
     # True pool risk of the deployed model, from scikit-learn's zero_one_loss.
     true_risk = zero_one_loss(data.labels, data.outputs.argmax(axis=1))
     with harness.stubs() as stubs:
@@ -31,6 +33,12 @@ def test_full_loop_estimate_tracks_true_risk(harness: Harness, digits_pool: Data
         labeled = 0
         for _ in range(10):
             labeled += label_round(stubs, "digits", data, 20)
+            # The anytime bound is valid at every look (confidence sequence).
+            look = stubs.call(
+                stubs.estimates.GetEstimate,
+                pb.GetEstimateRequest(pool="pools/digits", confidence=0.95),
+            )
+            assert look.anytime_lower <= true_risk <= look.anytime_upper, (look, true_risk)
         assert labeled == 200
         estimate = stubs.call(
             stubs.estimates.GetEstimate, pb.GetEstimateRequest(pool="pools/digits", confidence=0.99)

@@ -168,3 +168,16 @@ def test_ingest_retry_with_request_id_is_answered_from_first_result(
         retry = stubs.call(stubs.ingest.IngestItems, batch)
         assert first == retry
         assert (first.accepted, first.item_count) == (20, 220)
+
+
+def test_same_draw_seed_replays_the_same_draws(harness_factory, cancer_pool: Dataset) -> None:
+    picked = []
+    for _ in range(2):
+        harness = harness_factory(draw_seed=99)
+        with harness.stubs() as stubs:
+            stubs.call(stubs.pools.CreatePool, classification_pool("lab", cancer_pool))
+            stubs.call(stubs.ingest.IngestItems, item_batch("lab", cancer_pool, range(200)))
+            held = _acquire(stubs, 6) + _acquire(stubs, 4)
+        picked.append([(a.item_id, a.selection_probability, a.draw_index) for a in held])
+    assert picked[0] == picked[1]
+    assert len({item for item, _, _ in picked[0]}) == 10
