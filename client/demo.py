@@ -115,6 +115,7 @@ def build_scenario(*, seed: int, items: int) -> Scenario:
     """
     from sklearn.datasets import make_classification
     from sklearn.ensemble import HistGradientBoostingClassifier
+    from threadpoolctl import threadpool_limits  # installed with scikit-learn
 
     if items < 100:
         raise ValueError(f"items == {items}, must be >= 100.")
@@ -140,8 +141,11 @@ def build_scenario(*, seed: int, items: int) -> Scenario:
         raise ValueError(f"scenario produced {len(pool)} pool rows, fewer than items={items}.")
     started = time.perf_counter()
     model = HistGradientBoostingClassifier(max_iter=60, random_state=seed)
-    model.fit(x[train], y[train])
-    probabilities = model.predict_proba(x[pool]).astype(np.float32)
+    # One OpenMP thread: on a busy 2-core machine more threads spin against each other
+    # (measured: 56 s instead of 1 s while a server and tests shared the cores).
+    with threadpool_limits(limits=1):
+        model.fit(x[train], y[train])
+        probabilities = model.predict_proba(x[pool]).astype(np.float32)
     # float32 rounding can leave a row summing to 1 +- 1e-7: renormalise in float64 first.
     probabilities = (probabilities / probabilities.sum(axis=1, keepdims=True)).astype(np.float32)
     train_seconds = time.perf_counter() - started
