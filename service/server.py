@@ -66,6 +66,8 @@ class RunningServer:
         self._health.enter_graceful_shutdown()
         self._server.stop(grace).wait()
         self._engine.close()
+        # A refit still fitting after this is dropped (it cannot write any more) and is
+        # redone after the next start.
         self._worker.stop(timeout=max(grace, 1.0))
         if self._metrics is not None:
             self._metrics.stop()
@@ -154,17 +156,24 @@ def start_server(config: ServerConfig) -> RunningServer:
     if bound == 0:
         database.close()
         raise ValueError(f"listen = {config.listen!r}: cannot bind (address in use?).")
-    worker.start()
-    server.start()
-    for name in ["", *services]:
-        health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
     metrics_server = None
     metrics_port = 0
     if config.metrics_listen:
         metrics_host, wanted = split_host_port(config.metrics_listen, name="metrics_listen")
-        metrics_server = MetricsServer(metrics_host, wanted, metrics.render)
-        metrics_server.start()
+        try:
+            metrics_server = MetricsServer(metrics_host, wanted, metrics.render)
+        except OSError as error:
+            database.close()
+            raise ValueError(
+                f"metrics_listen = {config.metrics_listen!r}: cannot bind ({error})."
+            ) from None
         metrics_port = metrics_server.port
+    worker.start()
+    server.start()
+    for name in ["", *services]:
+        health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
+    if metrics_server is not None:
+        metrics_server.start()
         _LOG.info("metrics on http://%s:%d/metrics", metrics_host, metrics_port)
     address = f"[{host}]:{bound}" if ":" in host else f"{host}:{bound}"
     return RunningServer(

@@ -1093,7 +1093,8 @@ class Engine:
             scores = _score_rows(surrogate, features[:n0], outputs[:n0])
             data = surrogate.to_bytes()
             with pool.lock:
-                if pool.deleted:
+                if pool.deleted or self._closed:
+                    # Shutting down: the fit is dropped and redone after the next start.
                     return False
                 future = self._db.submit(
                     store.insert_model(pool.pool_id, version, int(labels.shape[0]), data, now_ms())
