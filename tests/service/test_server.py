@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import os
 import signal
 import subprocess
@@ -46,7 +47,16 @@ def _listening_line(process: subprocess.Popen[str]) -> str:
 def test_serve_logs_real_port_and_exits_zero_on_sigterm(tmp_path: Path) -> None:
     tokens = write_tokens(tmp_path / "tokens.toml")
     process = _serve(
-        ["--data-dir", str(tmp_path / "data"), "--listen", "127.0.0.1:0", "--tokens", str(tokens)]
+        [
+            "--data-dir",
+            str(tmp_path / "data"),
+            "--listen",
+            "127.0.0.1:0",
+            "--tokens",
+            str(tokens),
+            "--log-format",
+            "json",
+        ]
     )
     try:
         line = _listening_line(process)
@@ -70,6 +80,10 @@ def test_serve_logs_real_port_and_exits_zero_on_sigterm(tmp_path: Path) -> None:
             assert created.name == "pools/proc"
         process.send_signal(signal.SIGTERM)
         assert process.wait(timeout=30) == 0
+        assert process.stderr is not None
+        # Structured logs: every other stderr line is one JSON object.
+        records = [json.loads(line) for line in process.stderr.read().splitlines() if line]
+        assert any(r["message"].startswith("stopped in") for r in records), records
     finally:
         if process.poll() is None:
             process.kill()
