@@ -7,6 +7,7 @@ import os
 import signal
 import subprocess
 import sys
+import threading
 import time
 import urllib.request
 from pathlib import Path
@@ -281,4 +282,28 @@ def test_mutual_tls(tmp_path: Path) -> None:
                 pb_grpc.PoolServiceStub(channel).ListPools(pb.ListPoolsRequest(), timeout=5)
             assert caught.value.code() == grpc.StatusCode.UNAVAILABLE
     finally:
+        running.stop()
+
+
+def test_health_turns_not_serving_when_shutdown_starts(tmp_path: Path) -> None:
+    running = start_server(
+        ServerConfig(
+            data_dir=tmp_path / "data",
+            listen="127.0.0.1:0",
+            tokens=write_tokens(tmp_path / "tokens.toml"),
+        )
+    )
+    channel = grpc.insecure_channel(f"127.0.0.1:{running.port}")
+    try:
+        watch = health_pb2_grpc.HealthStub(channel).Watch(
+            health_pb2.HealthCheckRequest(service=""), timeout=20
+        )
+        assert next(watch).status == health_pb2.HealthCheckResponse.SERVING
+        stopper = threading.Thread(target=running.stop, kwargs={"grace": 2.0})
+        stopper.start()
+        assert next(watch).status == health_pb2.HealthCheckResponse.NOT_SERVING
+        stopper.join(30)
+        assert not stopper.is_alive()
+    finally:
+        channel.close()
         running.stop()
