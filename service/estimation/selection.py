@@ -49,10 +49,12 @@ __all__ = [
 
 _LOG = logging.getLogger(__name__)
 
-#: Default defensive floor: share of each draw's probability spread uniformly. 0.2 keeps
-#: the worst case close to uniform sampling while leaving 80% to the usefulness score
-#: (prototype measurements; the benchmark tunes it).
-DEFAULT_FLOOR: float = 0.2
+#: Default defensive floor: share of each draw's probability spread uniformly. 0.3 (the
+#: top of the agreed [0.1, 0.3] range): on digits (0-1 loss, 1 000 repetitions) it lifted
+#: the 90% fixed-time coverage of UNBIASED from 0.873 (floor 0.2) to 0.891 at M = 50 and
+#: narrowed the anytime bound, because it caps the rare large importance weights; the
+#: design notes measured it costs little RMSE. The benchmark tunes it.
+DEFAULT_FLOOR: float = 0.3
 
 _REJECTION_LIMIT = 64  # rejected tries before the cumulative sum is rebuilt without drawn items
 
