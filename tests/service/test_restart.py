@@ -74,17 +74,15 @@ def test_restart_restores_everything_and_estimates_are_identical(
         stubs.call(stubs.pools.CreatePool, classification_pool("tumours", data))
         stubs.call(stubs.pools.CreatePool, classification_pool("spare", data))
         rows = range(len(data.ids))
-        stubs.call(
-            stubs.ingest.IngestItems,
-            item_batch(
-                "tumours",
-                data,
-                rows,
-                segments=segments,
-                event_time_ms=times,
-                payload_refs=[f"s3://scans/{i}" for i in rows],
-            ),
+        everything = item_batch(
+            "tumours",
+            data,
+            rows,
+            segments=segments,
+            event_time_ms=times,
+            payload_refs=[f"s3://scans/{i}" for i in rows],
         )
+        stubs.call(stubs.ingest.IngestItems, everything)
         labeled = sum(label_round(stubs, "tumours", data, 10) for _ in range(3))
         assert labeled == 30
         # One skipped, one released (waiting), two assigned under a live lease.
@@ -123,6 +121,9 @@ def test_restart_restores_everything_and_estimates_are_identical(
     with harness.stubs() as stubs:
         after = _snapshot(stubs)
         assert after == before
+        # Every item came back bit for bit: re-sending them all finds only duplicates.
+        resent = stubs.call(stubs.ingest.IngestItems, everything)
+        assert (resent.accepted, resent.duplicates, resent.rejected) == (0, len(data.ids), 0)
         # The live lease is still held: vendor-a can label it after the restart.
         index = {item_id: i for i, item_id in enumerate(data.ids)}
         result = stubs.call(
