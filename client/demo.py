@@ -192,16 +192,17 @@ class _Progress:
     def update(
         self, labels: int, estimate: leadline_pb2.Estimate, verdict: str, *, final: bool = False
     ) -> None:
-        filled = int(24 * min(labels, self.budget) / self.budget)
-        bar = "#" * filled + "." * (24 - filled)
+        filled = int(16 * min(labels, self.budget) / self.budget)
+        bar = "#" * filled + "." * (16 - filled)
         half = (estimate.anytime_upper - estimate.anytime_lower) / 2
+        # Short enough for an 80-column terminal: a wrapped line cannot be rewritten.
         line = (
             f"[{bar}] {labels:4d}/{self.budget} labels | estimate {estimate.risk:.4f} "
-            f"(anytime [{estimate.anytime_lower:.4f}, {estimate.anytime_upper:.4f}], "
-            f"± {half:.4f}) | surrogate v{estimate.surrogate_version} | gate {verdict}"
+            f"± {half:.4f} | gate {verdict}"
         )
         if self.live:
-            self.stream.write("\r" + line + ("\n" if final else ""))
+            # \r returns to the line start, ESC[K clears what a longer line left behind.
+            self.stream.write("\r\x1b[K" + line + ("\n" if final else ""))
             self.stream.flush()
         elif final or time.monotonic() - self.last_print > 2.0:
             self.stream.write(line + "\n")
@@ -239,7 +240,13 @@ def run_demo(
     )
     tokens = {name: secrets.token_urlsafe(24) for name in ("admin", "ingest", "labeler", "reader")}
     with tempfile.TemporaryDirectory(prefix="leadline-demo-") as workdir:
-        server = LocalServer(workdir, tokens={token: [role] for role, token in tokens.items()})
+        server = LocalServer(
+            workdir,
+            tokens={token: [role] for role, token in tokens.items()},
+            # Same seed, same draws (refits run in the background, so their timing can
+            # still change which surrogate a draw used).
+            extra_args=["--draw-seed", str(seed)],
+        )
         started = time.perf_counter()
         target = server.start()
         try:
@@ -313,6 +320,7 @@ def _run_loop(
             f"  labeling vendor works in rounds of {_ROUND_LABELS}; the release gate "
             "is polled after every round (anytime bound: safe to poll)",
         )
+        _say(out, "  live: labels spent | estimate ± anytime half-width | gate verdict")
         index = {item_id: i for i, item_id in enumerate(scenario.item_ids)}
         rng = np.random.default_rng(seed + 1)
         progress = _Progress(out, budget)
