@@ -4,8 +4,11 @@ from __future__ import annotations
 
 import base64
 import json
+import os
 import re
+import subprocess
 import sys
+import time
 from pathlib import Path
 
 import matplotlib.image
@@ -16,7 +19,7 @@ from leadline.client import Client, LocalServer
 from leadline.client.export import read_draws_csv
 from leadline.v1 import leadline_pb2
 
-from .conftest import ALL_ROLES_TOKEN, TOKENS, Digits, run_cli
+from .conftest import ALL_ROLES_TOKEN, TOKENS, Digits, digits_pool, label_rounds, run_cli
 
 
 def _gate(server: LocalServer, pool: str, max_risk: float, *extra: str):
@@ -223,8 +226,6 @@ def test_tokens_and_roles_are_enforced(server: LocalServer, token: str | None, c
 
 def test_console_script_is_installed_and_forwards_serve_help() -> None:
     script = Path(sys.executable).parent / "leadline"
-    import subprocess
-
     done = subprocess.run(
         [str(script), "serve", "--help"], capture_output=True, text=True, check=False, timeout=60
     )
@@ -236,3 +237,49 @@ def test_all_roles_token_is_accepted(server: LocalServer, labeled_digits: Digits
     done = run_cli("pool", "list", "--json", token=ALL_ROLES_TOKEN, target=server.target)
     assert done.returncode == 0
     assert "pools/digits" in [p["name"] for p in json.loads(done.stdout)]
+
+
+def test_gate_wait_polls_until_labels_decide_it(server: LocalServer, admin: Client) -> None:
+    data = digits_pool("waiting-gate")
+    admin.create_pool(
+        data.pool, task="classification", num_classes=10, feature_dim=64, loss="zero-one"
+    )
+    admin.ingest(data.pool, data.item_ids, data.features, data.probabilities)
+    env = {k: v for k, v in os.environ.items() if not k.startswith("LEADLINE_")}
+    env |= {"LEADLINE_TOKEN": TOKENS["reader"], "LEADLINE_TARGET": server.target}
+    gate = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "leadline.client.cli",
+            "gate",
+            "--pool",
+            data.pool,
+            "--max-risk",
+            "0.9",
+            "--wait",
+            "90",
+            "--interval",
+            "0.3",
+            "-v",
+        ],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=env,
+    )
+    try:
+        time.sleep(1.5)  # the gate starts UNDECIDED: no labels yet
+        assert gate.poll() is None, gate.communicate()
+        for _ in range(16):  # labels arrive while the gate keeps polling
+            label_rounds(admin, data, rounds=1, per_round=25)
+            if gate.poll() is not None:
+                break
+            time.sleep(0.3)
+        out, err = gate.communicate(timeout=90)
+    finally:
+        gate.kill()
+    assert gate.returncode == 0, out + err
+    assert out.startswith("PASS: pools/waiting-gate, risk below 0.9?")
+    assert "gate undecided" in err  # it polled at least once more after an UNDECIDED
+    admin.delete_pool(data.pool)
