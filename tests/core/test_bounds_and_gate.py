@@ -344,3 +344,22 @@ def test_other_bad_arguments_are_rejected():
         estimate_risk(_one_draw(), sums, mode="unbiased", confidence=0.9, loss_bound=1.0)
     with pytest.raises(ValueError, match=r"len\(probabilities\) = 3, must be <= pool_size \(2\)"):
         lure_weights(np.full(3, 0.5), 2)
+
+
+def test_a_scope_no_draw_has_reached_gets_the_whole_range():
+    losses, g, s = _pool(9)
+    rng = np.random.default_rng(9)
+    picked, logs = run_draws(losses, g, s, draws=40, batch=40, floor=0.3, loss_bound=1.0, rng=rng)
+    terms, _ = pool_terms(losses, g, s, picked, logs)
+    outside = DrawTerms(
+        **{
+            **terms.__dict__,
+            "in_scope": np.zeros(40, dtype=bool),
+            "remaining_expected_loss": np.full(40, 10.0),
+        }
+    )
+    sums = PlugInSums(100, 0.0, 10.0, 5.0)
+    for mode in EstimatorMode:
+        estimate = estimate_risk(outside, sums, mode=mode, confidence=0.9, loss_bound=1.0)
+        assert (estimate.lower, estimate.upper) == (0.0, 1.0), mode
+        assert estimate.labels_used == 0
