@@ -24,6 +24,7 @@ from pathlib import Path
 import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
+from matplotlib.ticker import NullFormatter
 
 from leadline.client._client import Client
 from leadline.client._enums import enum_name
@@ -217,6 +218,14 @@ def _draw_selection(ax: Axes, data: ReportData) -> None:
         ax.axhline(1.0, color="gray", lw=1, ls="--", label="uniform random sampling")
         if relative.min() > 0:
             ax.set_yscale("log")
+            # Plain 1-2-5 ticks (0.5, 1, 2) read better than 5x10^-1 for ratios near 1.
+            low, high = relative.min() / 1.2, relative.max() * 1.2
+            ticks = [
+                m * 10.0**e for e in range(-4, 4) for m in (1, 2, 5) if low <= m * 10.0**e <= high
+            ]
+            ax.set_ylim(low, high)
+            ax.set_yticks(ticks, [f"{t:g}" for t in ticks])
+            ax.yaxis.set_minor_formatter(NullFormatter())
         ax.legend(fontsize=7)
     ax.set_xlabel("surrogate's expected loss of the drawn item")
     ax.set_ylabel("selection probability x remaining items")

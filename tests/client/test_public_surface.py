@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import subprocess
+import sys
+
 import grpc
 import pytest
 
@@ -105,3 +108,17 @@ def test_error_string_names_code_and_method() -> None:
     assert str(error) == "NOT_FOUND in GetPool: pool 'pools/x' not found"
     assert error.code is grpc.StatusCode.NOT_FOUND
     assert error.details == "pool 'pools/x' not found"
+
+
+def test_client_modules_never_import_the_service() -> None:
+    # Architecture rule: only `leadline serve` reaches into leadline.service, lazily.
+    code = (
+        "import sys\n"
+        "import leadline.client, leadline.client.cli, leadline.client.report\n"
+        "import leadline.client.export, leadline.client.demo\n"
+        "print(sorted(m for m in sys.modules if m.startswith('leadline.service')))\n"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=60
+    )
+    assert done.stdout.strip() == "[]"

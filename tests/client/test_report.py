@@ -67,6 +67,7 @@ def _data(*, draws: int = 40, segments: bool = True) -> ReportData:
         ),
         max_risk=0.22,
         reference_risk=0.205,
+        reference_segment_risks={"north": 0.16, "south": 0.24},
     )
 
 
