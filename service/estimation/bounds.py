@@ -48,7 +48,7 @@ BET_TRUNCATION: float = 0.75
 
 _GRID_UNIFORM = 257
 _GRID_LOG_POINTS = 240
-_BISECTION_STEPS = 48
+_BISECTION_STEPS = 60
 
 
 class BoundKind(enum.Enum):
@@ -158,11 +158,15 @@ def betting_lower_bound(
     center: float,
     prior: Prior = None,
 ) -> float:
-    """Final value of the lower confidence sequence, refined by bisection."""
+    """Final value of the lower confidence sequence, by bisection on the candidate risk.
+
+    The excluded set is a half-line (capital decreases in r), so bisection over ``support``
+    finds its edge in O(M) per step; the value returned is itself excluded (conservative).
+    ``center`` is unused here (kept for symmetry with the path).
+    """
     m = x.shape[0]
     if m == 0:
-        return support[0]
-    path = betting_lower_path(x, lo, hi, alpha=alpha, support=support, center=center, prior=prior)
+        return float(support[0])
     bets = _base_bets(x, lo, hi, alpha, prior)
     threshold = math.log(1.0 / alpha)
 
@@ -170,12 +174,9 @@ def betting_lower_bound(
         logs = _log_capital(x, lo, bets, np.array([r]))[:, 0]
         return bool(np.max(np.cumsum(logs)) >= threshold)
 
-    rejected = path[-1]
-    if rejected <= support[0] and not crossed(support[0]):
-        return support[0]
-    grid = _grid(support[0], support[1], center)
-    above = grid[grid > rejected]
-    accepted = float(above[0]) if above.size else support[1]
+    rejected, accepted = float(support[0]), float(support[1])
+    if not crossed(rejected):
+        return rejected
     if crossed(accepted):
         return accepted
     for _ in range(_BISECTION_STEPS):
