@@ -10,6 +10,7 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
+import time
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -79,6 +80,26 @@ def label_rounds(
     return labeled
 
 
+def wait_for_quiet_surrogate(
+    client: Client, pool: str, *, quiet: float = 1.5, timeout: float = 60.0
+) -> int:
+    """Wait until background refits stop (the surrogate version holds for ``quiet`` s).
+
+    Tests that compare two reads of an estimate need the surrogate not to change between
+    them; refits start after every few labels and finish on their own time.
+    """
+    deadline = time.monotonic() + timeout
+    version, since = client.get_pool(pool).surrogate_version, time.monotonic()
+    while time.monotonic() < deadline:
+        time.sleep(0.25)
+        current = client.get_pool(pool).surrogate_version
+        if current != version:
+            version, since = current, time.monotonic()
+        elif time.monotonic() - since >= quiet:
+            return version
+    raise AssertionError(f"surrogate of {pool} still changing after {timeout} s")
+
+
 @pytest.fixture(scope="session")
 def server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[LocalServer]:
     tokens = {token: [role] for role, token in TOKENS.items()}
@@ -118,6 +139,7 @@ def labeled_digits(admin: Client) -> Digits:
         data.pool, data.item_ids, data.features, data.probabilities, segments=data.segments
     )
     label_rounds(admin, data, rounds=8, per_round=25)
+    wait_for_quiet_surrogate(admin, data.pool)
     return data
 
 
