@@ -153,9 +153,11 @@ class Surrogate:
         if x.shape[0] != n:
             raise ValueError(f"features has {x.shape[0]} rows, must match outputs ({n}).")
         firsts, seconds = [], []
+        # The boosting start is shared by every member: compute it once.
+        init = _log_init(out, self.temperature) if self.spec.is_classification else None
         for index, booster in enumerate(self._boosters):
-            if self.spec.is_classification:
-                pi = _class_probabilities(booster, x, out, self._seen_classes, self.temperature)
+            if init is not None:
+                pi = _class_probabilities(booster, x, out, self._seen_classes, init)
                 first, second = self.spec.expected_losses(out, pi)
             else:
                 mean = out + booster.predict(x)
@@ -183,9 +185,9 @@ class Surrogate:
         if self.is_cold_start:
             return out.copy()
         x = _design(features, out, self._feature_dim)
+        init = _log_init(out, self.temperature)
         members = [
-            _class_probabilities(b, x, out, self._seen_classes, self.temperature)
-            for b in self._boosters
+            _class_probabilities(b, x, out, self._seen_classes, init) for b in self._boosters
         ]
         return np.mean(members, axis=0)
 
@@ -302,9 +304,9 @@ def _class_probabilities(
     x: np.ndarray,
     outputs: np.ndarray,
     seen: tuple[int, ...],
-    temperature: float,
+    init: np.ndarray,
 ) -> np.ndarray:
-    raw = booster.predict(x, raw_score=True) + _log_init(outputs, temperature)
+    raw = booster.predict(x, raw_score=True) + init
     raw = raw - raw.max(axis=1, keepdims=True)
     learned = np.exp(raw)
     k = outputs.shape[1]
