@@ -324,35 +324,44 @@ def _run_pool(args: argparse.Namespace) -> int:
 def _run_status(args: argparse.Namespace) -> int:
     with _client(args) as client:
         pool = client.get_pool(args.pool)
-        est = client.get_estimate(args.pool, confidence=args.confidence, mode=args.mode)
-        segments = {
-            s: client.get_estimate(args.pool, confidence=args.confidence, mode=args.mode, segment=s)
-            for s in pool.segments
-        }
+        if pool.item_count == 0:
+            # The server has no estimate for an empty pool (FAILED_PRECONDITION).
+            est, segments = None, {}
+        else:
+            est = client.get_estimate(args.pool, confidence=args.confidence, mode=args.mode)
+            segments = {
+                s: client.get_estimate(
+                    args.pool, confidence=args.confidence, mode=args.mode, segment=s
+                )
+                for s in pool.segments
+            }
     if args.json:
         payload = {
             "pool": json.loads(_as_json(pool)),
-            "estimate": json.loads(_as_json(est)),
+            "estimate": json.loads(_as_json(est)) if est is not None else None,
             "segments": {s: json.loads(_as_json(e)) for s, e in segments.items()},
         }
         print(json.dumps(payload, indent=2))
         return EXIT_OK
     rows = _pool_rows(pool)
-    rows += [
-        ("estimate", describe_estimate(est)),
-        (
-            "mode",
-            f"{enum_name('EstimatorMode', est.mode)} (unbiased weight "
-            f"{est.unbiased_weight:.2f}, bias bound {est.bias_bound:.4f})",
-        ),
-        (
-            "labels",
-            f"{est.labels_used:,} used, {est.labels_pending:,} pending, "
-            f"{est.labels_skipped:,} skipped",
-        ),
-    ]
-    if est.items_unreached:
-        rows.append(("unreached", f"{est.items_unreached:,} items arrived after the last draw"))
+    if est is None:
+        rows.append(("estimate", "none yet: the pool has no items"))
+    else:
+        rows += [
+            ("estimate", describe_estimate(est)),
+            (
+                "mode",
+                f"{enum_name('EstimatorMode', est.mode)} (unbiased weight "
+                f"{est.unbiased_weight:.2f}, bias bound {est.bias_bound:.4f})",
+            ),
+            (
+                "labels",
+                f"{est.labels_used:,} used, {est.labels_pending:,} pending, "
+                f"{est.labels_skipped:,} skipped",
+            ),
+        ]
+        if est.items_unreached:
+            rows.append(("unreached", f"{est.items_unreached:,} items arrived after the last draw"))
     print(_table(rows))
     if segments:
         header = ("SEGMENT", "ITEMS", "LABELS", "ESTIMATE", "FIXED-TIME", "ANYTIME")

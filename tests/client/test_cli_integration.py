@@ -189,6 +189,9 @@ def test_pool_create_list_show_delete(server: LocalServer) -> None:
     assert re.search(
         r"^pools/cli-pool\s+regression\s+squared-error\s+0\s+0\s+v0$", listing.stdout, re.MULTILINE
     ), listing.stdout
+    empty = run_cli("status", "--pool", "cli-pool", token=TOKENS["reader"], target=server.target)
+    assert empty.returncode == 0, empty.stderr
+    assert re.search(r"^estimate\s+none yet: the pool has no items$", empty.stdout, re.MULTILINE)
     shown = cli("show", "pools/cli-pool", "--json")
     assert json.loads(shown.stdout)["loss_cap"] == 4.0
     deleted = cli("delete", "cli-pool", "--yes")
