@@ -15,6 +15,8 @@ from typing import Any
 import pytest
 import yaml
 
+from leadline.client import LocalServer
+
 from .conftest import ROOT
 
 DEPLOY = ROOT / "deploy"
@@ -187,3 +189,14 @@ def test_systemd_unit_stops_with_sigterm_and_restarts_on_failure() -> None:
     assert _flag(shlex.split(service["ExecStart"]), "--data-dir") == "/var/lib/leadline"
     assert service["StateDirectory"] == "leadline"
     assert _systemd_unit()["Install"]["WantedBy"] == "multi-user.target"
+
+
+def test_compose_health_check_command_works_against_a_real_server(server: LocalServer) -> None:
+    check = _yaml(DEPLOY / "compose.yaml")[0]["services"]["leadline"]["healthcheck"]["test"]
+    assert check[:3] == ["CMD", "python", "-c"]
+    code = check[3].replace("127.0.0.1:50051", server.target)
+    assert code != check[3]
+    done = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, timeout=60, check=False
+    )
+    assert done.returncode == 0, done.stderr
