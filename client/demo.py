@@ -171,7 +171,7 @@ def iid_labels_for_half_width(
 
     n0 = z^2 p (1 - p) / h^2 with z the two-sided normal quantile, then the finite
     population correction n = n0 / (1 + (n0 - 1) / N) (the standard sample-size formula
-    for a proportion; W. G. Cochran, Sampling Techniques, 3rd ed., Wiley 1977).
+    for a proportion, as in the textbook "Sampling Techniques", 3rd ed., 1977).
     """
     if not 0 < half_width:
         raise ValueError(f"half_width == {half_width}, must be > 0.")
@@ -423,7 +423,7 @@ def _print_summary(out: TextIO, s: DemoSummary) -> None:
         _say(
             out,
             "    (n0 = z^2 p(1-p) / h^2 with p the true risk, h that half-width, z the normal "
-            "quantile; n = n0 / (1 + (n0-1)/N): Cochran's sample-size formula)",
+            "quantile; n = n0 / (1 + (n0-1)/N): the textbook sample-size formula for a proportion)",
         )
     _say(
         out,

@@ -48,7 +48,7 @@ def test_demo_runs_through_and_prints_the_true_risk_of_the_hidden_labels(tmp_pat
     assert summary["lower"] <= summary["estimate"] <= summary["upper"]
     assert f"labels used: {summary['labels_used']} (plus" in done.stdout
     assert "random sampling would need about" in done.stdout
-    assert "Cochran's sample-size formula" in done.stdout
+    assert "the textbook sample-size formula for a proportion" in done.stdout
     assert "[" in done.stdout and "labels | estimate" in done.stdout  # progress line
     png, page = Path(summary["report_png"]), Path(summary["report_html"])
     assert png.parent == page.parent == tmp_path

@@ -14,7 +14,7 @@ from leadline.client.demo import iid_labels_for_half_width
     [
         # The textbook sample size for a proportion at 95% and +-5 points with p = 0.5 is
         # 385 for a large population and 278 for a population of 1,000 (tables in survey
-        # sampling texts, e.g. Cochran, Sampling Techniques, 1977; values from memory,
+        # sampling texts, e.g. the textbook "Sampling Techniques", 1977; values from memory,
         # recomputed below with scipy's normal quantile).
         (0.5, 0.05, 10**9, 385),
         (0.5, 0.05, 1000, 278),
