@@ -257,6 +257,16 @@ class PoolState:
         skipped = int(np.count_nonzero(status == SKIPPED))
         return labeled, len(status) - labeled - skipped, skipped
 
+    def mark_drawn_items(self, start: int) -> None:
+        """Set the item status of the items drawn from draw ``start`` on."""
+        rows = self.draws.row.view[start:]
+        status = self.draws.status.view[start:]
+        item_status = np.full(rows.shape, DRAWN, dtype=np.int8)
+        item_status[status == LABELED] = ITEM_LABELED
+        item_status[status == SKIPPED] = ITEM_SKIPPED
+        self.status.view[rows] = item_status
+        self.item_draw.view[rows] = np.arange(start, start + rows.shape[0])
+
     def add_segments(self, names: list[str]) -> tuple[list[int], list[str]]:
         """Codes for new segment names, in first-seen order; returns the new (codes, names)."""
         new_codes: list[int] = []

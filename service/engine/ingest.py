@@ -1,0 +1,191 @@
+"""Ingest: append a validated batch to a pool's arrays; duplicates and conflicts.
+
+Work here runs under the pool lock and only touches memory; it returns the store writes
+for the caller to queue (see :mod:`leadline.service.engine.engine`).
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from leadline.service.engine.pool import AVAILABLE, PoolState
+from leadline.service.engine.results import IngestResult, ItemBatch, ItemProblem
+from leadline.service.estimation import Surrogate, SurrogateScores
+from leadline.service.store import records as store
+from leadline.service.store.records import Write
+
+__all__ = ["MAX_ITEM_ERRORS", "append_items", "apply_batch", "compare_duplicates", "now_ms"]
+
+# At most this many per-item problems travel back in one reply.
+MAX_ITEM_ERRORS = 20
+
+
+def now_ms() -> int:
+    return int(time.time() * 1000)
+
+
+def append_items(
+    pool: PoolState,
+    item_ids: list[str],
+    features: np.ndarray,
+    outputs: np.ndarray,
+    payload_refs: list[str],
+    segments: np.ndarray,
+    event_time_ms: np.ndarray,
+    ingest_time_ms: np.ndarray,
+    *,
+    cold: SurrogateScores,
+    current: SurrogateScores,
+) -> None:
+    start = pool.item_count
+    pool.item_ids.extend(item_ids)
+    pool.index.update(zip(item_ids, range(start, start + len(item_ids)), strict=True))
+    pool.payload_refs.extend(payload_refs)
+    pool.features.extend(features)
+    pool.outputs.extend(outputs)
+    pool.segment.extend(segments)
+    pool.event_time_ms.extend(event_time_ms)
+    pool.ingest_time_ms.extend(ingest_time_ms)
+    pool.g0.extend(cold.expected_loss)
+    pool.expected_loss.extend(current.expected_loss)
+    pool.second_moment.extend(current.residual_second_moment)
+    pool.spread.extend(current.spread)
+    pool.status.extend(np.full(len(item_ids), AVAILABLE, dtype=np.int8))
+    pool.item_draw.extend(np.full(len(item_ids), -1, dtype=np.int64))
+
+
+def apply_batch(
+    pool: PoolState,
+    batch: ItemBatch,
+    *,
+    scored_with: Surrogate,
+    cold: SurrogateScores,
+    current: SurrogateScores,
+) -> tuple[IngestResult, list[Write]]:
+    """Add the batch's new items to the pool (call with ``pool.lock`` held).
+
+    ``current`` are the batch's scores under ``scored_with``; rescored here if a refit
+    swapped the surrogate since. Returns the result and the durable writes to queue.
+    """
+    known = [pool.index.get(item_id) for item_id in batch.item_ids]
+    existing = np.array([-1 if k is None else k for k in known], dtype=np.int64)
+    is_new = existing < 0
+    problems: list[ItemProblem] = []
+    duplicates = 0
+    if not is_new.all():
+        duplicates, problems = compare_duplicates(pool, batch, existing)
+    new_positions = np.flatnonzero(is_new)
+    accepted = int(new_positions.shape[0])
+    writes: list[Write] = []
+    if accepted:
+        if pool.surrogate is not scored_with:
+            current = pool.surrogate.score(batch.features, batch.outputs)
+        received = now_ms()
+        names = [batch.segments[i] for i in new_positions] if batch.segments else [""] * accepted
+        new_codes, new_names = pool.add_segments(names)
+        if new_codes:
+            writes.append(store.insert_segments(pool.pool_id, new_codes, new_names))
+        codes = np.fromiter(
+            (pool.segment_codes[name] for name in names), dtype=np.int32, count=accepted
+        )
+        ingest_times = np.full(accepted, received, dtype=np.int64)
+        event_times = (
+            batch.event_time_ms[new_positions] if batch.event_time_ms is not None else ingest_times
+        )
+        payloads = (
+            [batch.payload_refs[i] for i in new_positions]
+            if batch.payload_refs
+            else [""] * accepted
+        )
+        ids = [batch.item_ids[i] for i in new_positions]
+        chunk = store.ItemChunk(
+            start=pool.item_count,
+            item_ids=ids,
+            features=batch.features[new_positions],
+            outputs=batch.outputs[new_positions],
+            payload_refs=payloads,
+            segments=codes,
+            event_time_ms=event_times,
+            ingest_time_ms=ingest_times,
+        )
+        writes.append(store.insert_items(pool.pool_id, chunk))
+
+        def take(scores: SurrogateScores) -> SurrogateScores:
+            return SurrogateScores(
+                expected_loss=scores.expected_loss[new_positions],
+                residual_second_moment=scores.residual_second_moment[new_positions],
+                spread=scores.spread[new_positions],
+            )
+
+        append_items(
+            pool,
+            ids,
+            chunk.features,
+            chunk.outputs,
+            payloads,
+            codes,
+            event_times,
+            ingest_times,
+            cold=take(cold),
+            current=take(current),
+        )
+        pool.touch()
+    result = IngestResult(
+        accepted=accepted,
+        duplicates=duplicates,
+        rejected=len(problems),
+        errors=tuple(problems[:MAX_ITEM_ERRORS]),
+        item_count=pool.item_count,
+    )
+    return result, writes
+
+
+def compare_duplicates(
+    pool: PoolState, batch: ItemBatch, existing: np.ndarray
+) -> tuple[int, list[ItemProblem]]:
+    """Count identical re-sent items; list the conflicting ones (vectorised compare)."""
+    positions = np.flatnonzero(existing >= 0)
+    rows = existing[positions]
+    same_features = np.all(pool.features.view[rows] == batch.features[positions], axis=1)
+    outputs_stored = pool.outputs.view[rows]
+    outputs_sent = batch.outputs[positions]
+    if outputs_stored.ndim == 2:
+        same_outputs = np.all(outputs_stored == outputs_sent, axis=1)
+    else:
+        same_outputs = outputs_stored == outputs_sent
+    checks: list[tuple[str, np.ndarray]] = [
+        ("features", same_features),
+        ("model_outputs", same_outputs),
+    ]
+    if batch.payload_refs is not None:
+        stored = [pool.payload_refs[r] for r in rows]
+        sent = [batch.payload_refs[p] for p in positions]
+        same = [a == b for a, b in zip(stored, sent, strict=True)]
+        checks.append(("payload_refs", np.array(same, dtype=bool)))
+    if batch.segments is not None:
+        stored_codes = pool.segment.view[rows]
+        sent_codes = np.array([pool.segment_codes.get(batch.segments[p], -1) for p in positions])
+        checks.append(("segments", stored_codes == sent_codes))
+    if batch.event_time_ms is not None:
+        checks.append(
+            ("event_time_ms", pool.event_time_ms.view[rows] == batch.event_time_ms[positions])
+        )
+    conflict_field = np.full(positions.shape, "", dtype=object)
+    for name, same in reversed(checks):
+        conflict_field[~same] = name
+    problems = [
+        ItemProblem(
+            item_id=batch.item_ids[p],
+            reason=(
+                f"item_ids[{p}] = {batch.item_ids[p]!r}: already in the pool with a different "
+                f"{name}; an item id may not change content (use a new id)."
+            ),
+            field=name,
+            kind="InvalidArgument",
+        )
+        for p, name in zip(positions, conflict_field, strict=True)
+        if name
+    ]
+    return int(positions.shape[0]) - len(problems), problems
