@@ -213,6 +213,32 @@ def _setup_logging(config: ServerConfig) -> None:
     root.setLevel(config.log_level.upper())
 
 
+_HELP = {
+    "data_dir": "directory of the database (created if missing)",
+    "listen": "gRPC address HOST:PORT; port 0 picks a free port",
+    "tokens": "TOML token file: [tokens] token = [roles]",
+    "insecure_no_auth": "no authentication (loopback addresses only)",
+    "tls_cert": "PEM certificate chain: serve TLS",
+    "tls_key": "PEM private key of --tls-cert",
+    "tls_client_ca": "PEM CA bundle: require client certificates (mutual TLS)",
+    "metrics_listen": "loopback HOST:PORT for Prometheus metrics at /metrics",
+    "enable_reflection": "turn on gRPC server reflection",
+    "refit_every_labels": "refit the surrogate after this many new labels (default 10)",
+    "refit_interval_seconds": "... or after this many seconds with new labels (default 300)",
+    "default_lease_seconds": "lease when neither request nor pool sets one (default 3600)",
+    "selection_floor": "defensive floor of the selection when the pool sets none (0.3)",
+    "default_confidence": "confidence when neither request nor pool sets one (0.95)",
+    "max_batch_items": "items per IngestItems call (default 10000)",
+    "max_message_bytes": "gRPC message size limit (default 64 MiB)",
+    "max_workers": "gRPC worker threads (default 16)",
+    "shutdown_grace_seconds": "time in-flight calls get after SIGTERM (default 10)",
+    "log_level": "DEBUG, INFO, WARNING or ERROR",
+    "log_format": "text or json",
+    "surrogate_threads": "LightGBM threads of a refit (1 or 2)",
+    "draw_seed": "0 = random pool seeds; else seeds derive from it (reproducible draws)",
+}
+
+
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="leadline serve",
@@ -225,9 +251,17 @@ def _parser() -> argparse.ArgumentParser:
             continue
         flag = "--" + item.name.replace("_", "-")
         if "bool" in str(item.type):
-            parser.add_argument(flag, dest=item.name, action="store_true", default=None)
+            parser.add_argument(
+                flag, dest=item.name, action="store_true", default=None, help=_HELP[item.name]
+            )
         else:
-            parser.add_argument(flag, dest=item.name, default=None, metavar=item.name.upper())
+            parser.add_argument(
+                flag,
+                dest=item.name,
+                default=None,
+                metavar=item.name.split("_")[-1].upper(),
+                help=_HELP[item.name],
+            )
     return parser
 
 
