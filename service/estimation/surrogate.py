@@ -1,6 +1,6 @@
 """Loss-predicting surrogate: expected loss g and residual second moment E[(L - g)^2].
 
-Cold start (version 0, no labels):
+Cold start (version 0, no labels; regression keeps it below MIN_REGRESSION_LABELS labels):
 - classification: the model's own predictive distribution pi = f, so
   g = sum_y f(y) loss(f, y) and E[L^2] likewise;
 - regression: the model's outputs carry no spread, so a constant prior from the cap:
@@ -13,8 +13,8 @@ With labels (``fit_surrogate``): LightGBM boosting that starts from the model's 
 - classification: a temperature T fitted to the labels (penalised towards 1), then
   multiclass boosting with init_score = log softmax(log(clipped f) / T); the ensemble's
   mean class probabilities give g and E[L^2]. Classes never seen among the labels keep the
-  model's own probability (the seen classes share the rest), so a class absent from a tiny
-  label set is not pushed towards zero.
+  start probability (the model's own, temperature-scaled; the seen classes share the rest),
+  so a class absent from a tiny label set is not pushed towards zero.
 - regression: one booster for the target mean (init_score = f) and one for the deployed
   model's raw squared error (y - f)^2; the error d = y - f is modelled as Gaussian with
   mean mu - f and variance max((y - f)^2-fit - (mu - f)^2, 10% of the fit), and the clipped
@@ -47,6 +47,7 @@ from .losses import CROSS_ENTROPY_CLIP, LossKind, LossSpec
 __all__ = [
     "Surrogate",
     "SurrogateScores",
+    "MIN_REGRESSION_LABELS",
     "SurrogateSettings",
     "cold_start_surrogate",
     "fit_surrogate",
@@ -56,6 +57,10 @@ _LOG = logging.getLogger(__name__)
 _FORMAT = "leadline-surrogate"
 _FORMAT_VERSION = 1
 _REGRESSION_SPREAD_FLOOR = 0.1  # share of the squared-error fit kept as variance
+
+#: Regression pools keep the cold start until this many labels exist (our choice: the
+#: squared-error booster needs a few residuals per leaf before its spread means anything).
+MIN_REGRESSION_LABELS: int = 10
 
 
 @dataclass(frozen=True)
@@ -312,12 +317,15 @@ def _class_probabilities(
     k = outputs.shape[1]
     seen_mask = np.zeros(k, dtype=bool)
     seen_mask[list(seen)] = True
-    # Unseen classes keep the model's own probability; seen classes share the rest in the
-    # proportions the boosted model learned.
-    unseen_mass = outputs[:, ~seen_mask].sum(axis=1, keepdims=True)
+    # Unseen classes keep their start probability (the model's own, temperature-scaled):
+    # the boosting saw no example of them, so its push towards 0 is not evidence. Seen
+    # classes share the rest in the proportions the boosted model learned.
+    start = np.exp(init)
+    start = start / start.sum(axis=1, keepdims=True)
+    unseen_mass = start[:, ~seen_mask].sum(axis=1, keepdims=True)
     learned_seen = learned[:, seen_mask]
     learned_seen = learned_seen / learned_seen.sum(axis=1, keepdims=True)
-    pi = outputs.copy()
+    pi = start.copy()
     pi[:, seen_mask] = learned_seen * np.clip(1.0 - unseen_mass, 0.0, 1.0)
     return pi / pi.sum(axis=1, keepdims=True)
 
@@ -409,8 +417,11 @@ def fit_surrogate(
         raise ValueError(f"features has {x.shape[0]} rows, must match outputs ({out.shape[0]}).")
     feature_dim = x.shape[1] - (out.shape[1] if out.ndim == 2 else 1)
     n = out.shape[0]
-    if n == 0:
-        return Surrogate(spec, version=version, label_count=0, feature_dim=feature_dim)
+    if n == 0 or (not spec.is_classification and n < MIN_REGRESSION_LABELS):
+        # Regression has no label-free spread signal: a boosted fit on a handful of labels
+        # would be confidently wrong, so the pessimistic cold start stays until there are
+        # MIN_REGRESSION_LABELS labels.
+        return Surrogate(spec, version=version, label_count=n, feature_dim=feature_dim)
     rng = np.random.default_rng(seed)
     if n > settings.max_training_rows:
         keep = np.sort(rng.choice(n, size=settings.max_training_rows, replace=False))

@@ -104,7 +104,11 @@ def test_classes_never_labeled_keep_the_models_own_probabilities(digits):
         settings=_FAST,
     )
     pi = fitted.class_probabilities(features, outputs)
-    np.testing.assert_allclose(pi[:, 3:], outputs[:, 3:], atol=1e-12)
+    # Unseen classes keep the start distribution softmax(log p / T).
+    logits = np.log(np.clip(outputs, 1e-6, 1.0)) / fitted.temperature
+    start = np.exp(logits - logits.max(axis=1, keepdims=True))
+    start /= start.sum(axis=1, keepdims=True)
+    np.testing.assert_allclose(pi[:, 3:], start[:, 3:], atol=1e-12)
     np.testing.assert_allclose(pi.sum(axis=1), 1.0, atol=1e-12)
 
 
@@ -124,6 +128,17 @@ def test_regression_fit_scores_every_item_within_the_cap(diabetes, kind):
     assert abs(scores.expected_loss.mean() - losses.mean()) < abs(cap / 2 - losses.mean())
     restored = Surrogate.from_bytes(spec, fitted.to_bytes()).score(features, predictions)
     np.testing.assert_array_equal(restored.expected_loss, scores.expected_loss)
+
+
+def test_regression_keeps_the_cold_start_below_the_minimum_label_count(diabetes):
+    features, predictions, target = diabetes
+    spec = LossSpec(kind=LossKind.SQUARED_ERROR, loss_cap=5000.0)
+    few = fit_surrogate(spec, features[:9], predictions[:9], target[:9], version=4, seed=0)
+    assert few.is_cold_start and few.version == 4 and few.label_count == 9
+    enough = fit_surrogate(
+        spec, features[:10], predictions[:10], target[:10], version=5, seed=0, settings=_FAST
+    )
+    assert not enough.is_cold_start
 
 
 def test_no_labels_gives_the_cold_start_under_the_new_version(digits):
