@@ -54,6 +54,11 @@ def check_gate(
 ) -> GateDecision:
     """Decide the gate; the estimate's bounds are one-sided at ``confidence`` each."""
     confidence = check_confidence(confidence)
+    if confidence <= 0.5:
+        raise ValueError(
+            f"confidence = {describe(confidence)}, must be in (0.5, 1) for a gate (its bounds "
+            "are one-sided at this confidence)."
+        )
     if not isinstance(bound, BoundKind):
         raise ValueError(f"bound = {describe(bound)}, must be a BoundKind member.")
     if not (isinstance(max_risk, (int, float)) and math.isfinite(max_risk) and max_risk >= 0):

@@ -330,6 +330,8 @@ def test_confidence_outside_the_open_unit_interval_is_rejected(confidence):
 
 def test_other_bad_arguments_are_rejected():
     sums = PlugInSums(20, 1.0, 2.0, 1.0)
+    with pytest.raises(ValueError, match=r"confidence = 0.5, must be in \(0.5, 1\) for a gate"):
+        check_gate(_one_draw(), sums, max_risk=0.1, confidence=0.5, loss_bound=1.0)
     with pytest.raises(ValueError, match=r"max_risk = nan, must be a finite number >= 0"):
         check_gate(_one_draw(), sums, max_risk=math.nan, confidence=0.9, loss_bound=1.0)
     with pytest.raises(ValueError, match=r"scope_size = 0, must be an integer >= 1"):
