@@ -6,15 +6,20 @@ predictable control variate.
 
 SURROGATE (plug-in): (sum of observed losses + sum of current g over unlabeled items) / N_D.
 Lowest variance, biased by the surrogate's error on the unlabeled items. Its bias is
-bounded by b = |C| + z se(C) (+ nonresponse and late-item allowances), with
-C = UNBIASED - SURROGATE an unbiased estimate of minus its bias.
+bounded by b = |C| + t se(C) (+ nonresponse and late-item allowances), with
+C = UNBIASED - SURROGATE an unbiased estimate of minus its bias; interval
+SURROGATE +- (z se + b).
 
 BALANCED: SURROGATE + lambda C with lambda = b^2 / (b^2 + V) = 1 - V / (b^2 + V), where V is
 UNBIASED's variance: the lambda minimising lambda^2 V + (1 - lambda)^2 b^2 (estimated mean
 squared error) with the bias replaced by its upper confidence bound b. lambda = 1 below
-``BALANCED_MIN_LABELS`` labels. Interval: center +- (z se + (1 - lambda) |C|); the bias
-left, (1 - lambda) b, is reported as ``bias_bound``. Both the rule and its coverage were
-measured in prototypes; the benchmark tunes them.
+``BALANCED_MIN_LABELS`` labels. Interval: center +- (t se + (1 - lambda) b), and the bias
+left, (1 - lambda) b, is reported as ``bias_bound`` (carrying only (1 - lambda) |C| in the
+interval under-covered on digits). The benchmark tunes the rule.
+
+Fixed-time margins use Student's t with (in-scope draws - 1) degrees of freedom and
+se = sqrt(max(empirical variance of the a_m / M, model-based variance)); see
+docs/estimation.md for the model-based part and measured coverage.
 
 Nonresponse: a PENDING or SKIPPED draw's loss is imputed by its draw-time prediction h_t.
 The estimate is linear in that unknown loss with coefficient
