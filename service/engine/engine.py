@@ -446,11 +446,18 @@ class Engine:
         bound: BoundKind = BoundKind.ANYTIME,
         mode: EstimatorMode | None = None,
     ) -> GateOutcome:
+        """Gate verdict for the scope (cached until the pool changes: a polling gate costs
+        one dictionary look-up between changes)."""
         pool = self.pool(pool_id)
         with pool.lock:
             chosen_mode = self._mode(pool, mode)
             level = self._confidence(pool, confidence)
+            key = ("gate", scope, chosen_mode, level, bound, max_risk)
+            cached = pool.cache.get(key)
+            if cached is not None:
+                return cached  # type: ignore[no-any-return]
             inputs = self._inputs(pool, scope)
+            version = pool.state_version
         decision = check_gate(
             inputs.terms,
             inputs.sums,
@@ -460,12 +467,16 @@ class Engine:
             mode=chosen_mode,
             loss_bound=pool.loss_bound,
         )
-        return GateOutcome(
+        outcome = GateOutcome(
             decision=decision,
             items_in_scope=inputs.items_in_scope,
             items_unreached=inputs.items_unreached,
             surrogate_version=inputs.surrogate_version,
         )
+        with pool.lock:
+            if pool.state_version == version:
+                pool.cache[key] = outcome
+        return outcome
 
     def list_draws(self, pool_id: str, *, start: int, limit: int) -> tuple[list[DrawInfo], int]:
         """Draws ``start .. start + limit``; the second value is the next start or 0 at the end."""
