@@ -173,7 +173,7 @@ def draw_batch(
     for m in range(count):
         n_m = n - m
         # Recompute from scratch when subtraction may have lost the sum to rounding.
-        if remaining_u <= 1e-9 * total_u:
+        if total_u > 0.0 and remaining_u <= 1e-9 * total_u:
             mask = np.ones(n, dtype=bool)
             mask[list(drawn)] = False
             remaining_u = float(u[mask].sum())
