@@ -148,6 +148,8 @@ def test_concurrent_ingest_labeling_and_gates_add_up(
     for thread in threads:
         thread.join(60)
     assert not errors, errors
+    # Shown with `pytest -s`: throughput under this mixed load.
+    print(f"mixed load for {_SECONDS:.0f} s: {dict(tally)}")
     with harness.stubs() as stubs:
         pool = stubs.call(stubs.pools.GetPool, pb.GetPoolRequest(name=_POOL))
         estimate = stubs.call(stubs.estimates.GetEstimate, pb.GetEstimateRequest(pool=_POOL))
