@@ -56,6 +56,7 @@ _LOG = logging.getLogger(__name__)
 #: design notes measured it costs little RMSE. The benchmark tunes it.
 DEFAULT_FLOOR: float = 0.3
 
+_EXACT_RANGE_CANDIDATES = 65_536  # beyond this many near-ties the range uses the q_0 bound
 _REJECTION_LIMIT = 64  # rejected tries before the cumulative sum is rebuilt without drawn items
 
 
@@ -257,6 +258,11 @@ def _correction_ranges(
             extremes.append(np.zeros(count))
             continue
         candidates = np.flatnonzero(ratio >= top / kappa)
+        if candidates.size > _EXACT_RANGE_CANDIDATES:
+            # Many near-ties (e.g. constant scores): q_m >= q_0 makes ``top`` a valid bound
+            # for every draw, loose by at most the factor kappa (about 1 + k / n).
+            extremes.append(np.full(count, top))
+            continue
         # Among candidates keep those not dominated (larger value at a smaller u).
         order = candidates[np.argsort(u[candidates], kind="stable")]
         sorted_values = value[order]
