@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+import sqlite3
 import time
 
 from leadline.v1 import leadline_pb2 as pb
@@ -46,16 +48,12 @@ def test_refit_after_interval_with_few_new_labels(harness_factory, cancer_pool: 
         _wait_version(stubs, 2, 30)
         estimate = stubs.call(stubs.estimates.GetEstimate, pb.GetEstimateRequest(pool=_POOL))
         assert estimate.surrogate_version == 2
-    assert harness.server is not None
-    with harness.server.engine.pool("fits").lock:
-        pass
-    stored = (
-        harness.server._database.reader()
-        .execute(  # noqa: SLF001 - checking the store
+    harness.stop()
+    # Every version is stored with the labels it was fitted on.
+    with contextlib.closing(sqlite3.connect(harness.data_dir / "leadline.db")) as connection:
+        stored = connection.execute(
             "SELECT version, label_count FROM models WHERE pool_id = 'fits' ORDER BY version"
-        )
-        .fetchall()
-    )
+        ).fetchall()
     assert stored == [(1, 6), (2, 12)]
 
 

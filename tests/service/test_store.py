@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import sqlite3
 import threading
 from pathlib import Path
@@ -16,7 +17,7 @@ def test_new_data_dir_gets_current_schema_and_reopens(tmp_path: Path) -> None:
     database.close()
     database = Database(tmp_path)
     database.close()
-    with sqlite3.connect(tmp_path / DATABASE_FILE) as connection:
+    with contextlib.closing(sqlite3.connect(tmp_path / DATABASE_FILE)) as connection:
         (version,) = connection.execute("SELECT version FROM schema_version").fetchone()
         mode = connection.execute("PRAGMA journal_mode").fetchone()[0]
     assert version == SCHEMA_VERSION
@@ -25,8 +26,9 @@ def test_new_data_dir_gets_current_schema_and_reopens(tmp_path: Path) -> None:
 
 def test_newer_schema_is_refused(tmp_path: Path) -> None:
     Database(tmp_path).close()
-    with sqlite3.connect(tmp_path / DATABASE_FILE) as connection:
+    with contextlib.closing(sqlite3.connect(tmp_path / DATABASE_FILE)) as connection:
         connection.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION + 1,))
+        connection.commit()
     with pytest.raises(RuntimeError, match="newer than this server"):
         Database(tmp_path)
 
@@ -60,7 +62,7 @@ def test_committed_write_is_visible_to_a_fresh_connection(tmp_path: Path) -> Non
     database.write(lambda c: c.execute("CREATE TABLE t (x INTEGER)"))
     database.write(lambda c: c.execute("INSERT INTO t VALUES (42)"))
     # Acknowledged = committed: another connection sees it before the server closes.
-    with sqlite3.connect(tmp_path / DATABASE_FILE) as other:
+    with contextlib.closing(sqlite3.connect(tmp_path / DATABASE_FILE)) as other:
         assert other.execute("SELECT x FROM t").fetchall() == [(42,)]
     database.close()
     with pytest.raises(RuntimeError, match="closed"):
