@@ -63,6 +63,8 @@ __all__ = ["Engine"]
 _LOG = logging.getLogger(__name__)
 
 _SCORE_CHUNK = 100_000
+# A refit scores at most this many late-arriving items while holding the pool lock.
+_CATCH_UP_UNDER_LOCK = 5_000
 
 
 def _combine(writes: Sequence[Callable[[sqlite3.Connection], Any]]) -> Callable[..., None]:
@@ -555,16 +557,28 @@ class Engine:
                     store.insert_model(pool.pool_id, version, int(labels.shape[0]), data, now_ms())
                 )
             future.result()
+            # Items that arrived while fitting: score them outside the lock until few are
+            # left, so the final swap under the lock stays short even under heavy ingest.
+            parts = [scores]
+            done = n0
+            while True:
+                with pool.lock:
+                    n = pool.item_count
+                    features = pool.features.view
+                    outputs = pool.outputs.view
+                if n - done <= _CATCH_UP_UNDER_LOCK:
+                    break
+                parts.append(_score_rows(surrogate, features[done:n], outputs[done:n]))
+                done = n
             with pool.lock:
                 n = pool.item_count
-                expected = scores.expected_loss
-                second = scores.residual_second_moment
-                spread = scores.spread
-                if n > n0:
-                    late = surrogate.score(pool.features.view[n0:n], pool.outputs.view[n0:n])
-                    expected = np.concatenate([expected, late.expected_loss])
-                    second = np.concatenate([second, late.residual_second_moment])
-                    spread = np.concatenate([spread, late.spread])
+                if n > done:
+                    parts.append(
+                        surrogate.score(pool.features.view[done:n], pool.outputs.view[done:n])
+                    )
+                expected = np.concatenate([p.expected_loss for p in parts])
+                second = np.concatenate([p.residual_second_moment for p in parts])
+                spread = np.concatenate([p.spread for p in parts])
                 pool.expected_loss.replace(expected)
                 pool.second_moment.replace(second)
                 pool.spread.replace(spread)
