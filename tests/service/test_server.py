@@ -20,7 +20,7 @@ from leadline.service.config import ServerConfig, load_config
 from leadline.service.server import main, start_server
 from leadline.v1 import leadline_pb2 as pb
 from leadline.v1 import leadline_pb2_grpc as pb_grpc
-from tests.service.helpers import TOKENS, Harness, metadata, write_tokens
+from tests.service.helpers import TOKENS, Harness, Stubs, metadata, write_tokens
 
 
 def _serve(args: list[str], env: dict[str, str] | None = None) -> subprocess.Popen[str]:
@@ -307,3 +307,47 @@ def test_health_turns_not_serving_when_shutdown_starts(tmp_path: Path) -> None:
     finally:
         channel.close()
         running.stop()
+
+
+def test_acknowledged_writes_survive_a_kill(tmp_path: Path, cancer_pool) -> None:
+    """Acknowledged = committed: after SIGKILL (no shutdown at all) every acknowledged item,
+    draw and label is back."""
+    from tests.service.helpers import classification_pool, item_batch, label_round
+
+    tokens = write_tokens(tmp_path / "tokens.toml")
+    args = [
+        "--data-dir",
+        str(tmp_path / "data"),
+        "--listen",
+        "127.0.0.1:0",
+        "--tokens",
+        str(tokens),
+    ]
+    counts = []
+    for attempt in range(2):
+        process = _serve(args)
+        try:
+            port = _listening_line(process).rsplit(":", 1)[1]
+            with grpc.insecure_channel(f"127.0.0.1:{port}") as channel:
+                stubs = Stubs(channel, "ops")
+                if attempt == 0:
+                    stubs.call(stubs.pools.CreatePool, classification_pool("kill", cancer_pool))
+                    stubs.call(
+                        stubs.ingest.IngestItems, item_batch("kill", cancer_pool, range(300))
+                    )
+                    label_round(stubs, "kill", cancer_pool, 7)
+                pool = stubs.call(stubs.pools.GetPool, pb.GetPoolRequest(name="pools/kill"))
+                counts.append((pool.item_count, pool.draw_count, pool.labeled_count))
+            if attempt == 0:
+                process.kill()
+                process.wait(timeout=30)
+            else:
+                process.send_signal(signal.SIGTERM)
+                assert process.wait(timeout=30) == 0
+        finally:
+            if process.poll() is None:
+                process.kill()
+                process.wait()
+            assert process.stderr is not None
+            process.stderr.close()
+    assert counts == [(300, 7, 7), (300, 7, 7)]
