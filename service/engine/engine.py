@@ -265,6 +265,12 @@ class Engine:
         work: Callable[[PoolState], tuple[Any, list[Callable[[sqlite3.Connection], Any]]]],
         decode: Callable[[bytes], Any],
     ) -> Any:
+        """Run ``work`` under the pool lock, queue its writes, wait for their commit.
+
+        ``work`` returns (result, writes) and must raise before changing anything if the
+        request is refused. With a ``request_id`` seen before, the first result is decoded
+        and returned instead (after its commit, if that is still in flight).
+        """
         self._check_open()
         pool = self.pool(pool_id)
         with pool.lock:
