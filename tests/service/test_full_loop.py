@@ -48,6 +48,13 @@ def test_full_loop_estimate_tracks_true_risk(harness_factory, digits_pool: Datas
         assert estimate.labels_pending == 0
         assert estimate.lower <= true_risk <= estimate.upper, (estimate, true_risk)
         assert estimate.anytime_lower <= true_risk <= estimate.anytime_upper
+        for mode in (pb.ESTIMATOR_MODE_UNBIASED, pb.ESTIMATOR_MODE_SURROGATE):
+            other = stubs.call(
+                stubs.estimates.GetEstimate,
+                pb.GetEstimateRequest(pool="pools/digits", confidence=0.99, mode=mode),
+            )
+            assert other.mode == mode
+            assert other.lower <= true_risk <= other.upper, (other, true_risk)
         gate = stubs.call(
             stubs.estimates.CheckGate,
             pb.CheckGateRequest(pool="pools/digits", max_risk=0.99, confidence=0.95),
