@@ -7,6 +7,8 @@ import time
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import stats
 
 from leadline.service.estimation import (
@@ -158,3 +160,30 @@ def test_bad_draw_arguments_raise_value_error_naming_field_value_and_rule(kwargs
     with pytest.raises(ValueError) as info:
         draw_batch(*positional, **arguments)
     assert message in str(info.value)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    data=st.data(),
+    n=st.integers(min_value=1, max_value=25),
+    floor=st.floats(min_value=0.01, max_value=1.0),
+)
+def test_any_small_pool_logs_exact_probabilities_and_covering_ranges(data, n, floor):
+    u = np.array(data.draw(st.lists(st.floats(0.0, 10.0), min_size=n, max_size=n)))
+    g = np.array(data.draw(st.lists(st.floats(0.0, 2.0), min_size=n, max_size=n)))
+    count = data.draw(st.integers(min_value=0, max_value=n))
+    rng = np.random.default_rng(data.draw(st.integers(0, 2**32 - 1)))
+    batch = draw_batch(u, g, count, floor=floor, loss_bound=2.0, rng=rng)
+    remaining = list(range(n))
+    for m, item in enumerate(batch.positions):
+        weights = u[remaining]
+        if weights.sum() > 0:
+            q = (1 - floor) * weights / weights.sum() + floor / len(remaining)
+        else:
+            q = np.full(len(remaining), 1.0 / len(remaining))
+        assert batch.probabilities[m] == pytest.approx(q[remaining.index(item)], rel=1e-9)
+        # The logged range covers every candidate's correction at this draw.
+        assert batch.correction_high[m] >= np.max((2.0 - g[remaining]) / q) * (1 - 1e-9)
+        assert batch.correction_low[m] <= np.min(-g[remaining] / q) * (1 - 1e-9)
+        remaining.remove(int(item))
+    assert sorted(set(batch.positions.tolist())) == sorted(batch.positions.tolist())
