@@ -43,7 +43,7 @@ from leadline.service.engine.results import (
     encode,
 )
 from leadline.service.engine.scopes import Scope, ScopeInputs, build_scope_inputs
-from leadline.service.errors import AlreadyExists, NotFound, Unavailable
+from leadline.service.errors import AlreadyExists, InvalidArgument, NotFound, Unavailable
 from leadline.service.estimation import (
     BoundKind,
     EstimatorMode,
@@ -460,6 +460,13 @@ class Engine:
         with pool.lock:
             chosen_mode = self._mode(pool, mode)
             level = self._confidence(pool, confidence)
+            if not level > 0.5:
+                # Gates use one-sided bounds on each side: below 0.5 they would cross.
+                raise InvalidArgument(
+                    f"confidence = {level}: a gate needs a confidence in (0.5, 1) (the pool "
+                    "default applies when the request leaves it 0).",
+                    field="confidence",
+                )
             key = ("gate", scope, chosen_mode, level, bound, max_risk)
             cached = pool.cache.get(key)
             if cached is not None:

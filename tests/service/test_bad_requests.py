@@ -384,6 +384,14 @@ CASES = [
         "max_risk",
     ),
     Case(
+        "gate confidence below one half",
+        "estimates",
+        "CheckGate",
+        lambda c: pb.CheckGateRequest(pool=_POOL, max_risk=0.2, confidence=0.3),
+        INVALID,
+        "confidence",
+    ),
+    Case(
         "unknown bound kind",
         "estimates",
         "CheckGate",
