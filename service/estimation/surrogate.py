@@ -77,10 +77,12 @@ class SurrogateSettings:
     """Capacity and cost limits of a surrogate fit (defaults tuned for tiny label sets)."""
 
     ensemble_size: int = 5
-    num_leaves: int = 7
+    # Shallow trees, more rounds: on digits (10 classes, 50-400 labels) 3 leaves x 60
+    # rounds at rate 0.2 predicted held-out losses 5-10% better than 7 x 40 at 0.1.
+    num_leaves: int = 3
     min_data_in_leaf: int = 3
-    num_rounds: int = 40
-    learning_rate: float = 0.1
+    num_rounds: int = 60
+    learning_rate: float = 0.2
     lambda_l2: float = 5.0
     max_bin: int = 63
     max_training_rows: int = 20_000
