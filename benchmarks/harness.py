@@ -37,9 +37,11 @@ from scipy import stats
 
 from benchmarks.scenarios import Scenario
 from leadline.service.estimation import (
+    DEFAULT_FLOOR,
     DRAW_LABELED,
     DrawTerms,
     EstimatorMode,
+    LossSpec,
     PlugInSums,
     SurrogateScores,
     SurrogateSettings,
@@ -54,6 +56,7 @@ from leadline.service.estimation import (
 
 __all__ = [
     "METHODS",
+    "RuleContext",
     "ANYTIME_METHODS",
     "HarnessConfig",
     "RepetitionResult",
@@ -65,12 +68,24 @@ METHODS: tuple[str, ...] = ("iid", "lure", "surrogate", "unbiased", "balanced", 
 # Runs whose anytime path is recorded (time-uniform bound over every peek).
 ANYTIME_METHODS: tuple[str, ...] = ("unbiased", "gate", "iid")
 
-UsefulnessRule = Callable[[SurrogateScores, np.ndarray], np.ndarray]
-"""(scores over the candidates, candidate features) -> usefulness >= 0."""
+
+@dataclass(frozen=True)
+class RuleContext:
+    """What an experimental usefulness rule may look at besides the scores (candidates only):
+    label-free inputs and how many labels the surrogate has seen."""
+
+    features: np.ndarray
+    outputs: np.ndarray
+    spec: LossSpec
+    label_count: int
 
 
-def _core_usefulness(scores: SurrogateScores, features: np.ndarray) -> np.ndarray:
-    del features
+UsefulnessRule = Callable[[SurrogateScores, RuleContext], np.ndarray]
+"""(scores over the candidates, their context) -> usefulness >= 0."""
+
+
+def _core_usefulness(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+    del context
     return np.asarray(usefulness(scores), dtype=float)
 
 
@@ -80,9 +95,9 @@ class HarnessConfig:
 
     budgets: tuple[int, ...] = (10, 25, 50, 100, 200)
     batch_size: int = 10
-    refit_at: tuple[int, ...] = (10, 25, 50, 100, 150, 200)
-    floor: float = 0.2
-    gate_floor: float = 0.8
+    refit_at: tuple[int, ...] = (10, 25, 50, 100)
+    floor: float = DEFAULT_FLOOR
+    gate_floor: float = 0.7
     confidence: float = 0.9
     anytime_from: int = 10
     seed: int = 20261202
@@ -136,6 +151,7 @@ class _Run:
     remaining_expected_loss: list[float] = field(default_factory=list)
     correction_low: list[float] = field(default_factory=list)
     correction_high: list[float] = field(default_factory=list)
+    residual_second_moment: list[float] = field(default_factory=list)
     sums_at: dict[int, PlugInSums] = field(default_factory=dict)
 
     def terms(self, losses: np.ndarray, count: int) -> DrawTerms:
@@ -152,6 +168,7 @@ class _Run:
             loss=losses[items].astype(float),
             correction_low=np.asarray(self.correction_low[:count]),
             correction_high=np.asarray(self.correction_high[:count]),
+            residual_second_moment=np.asarray(self.residual_second_moment[:count]),
         )
 
 
@@ -191,7 +208,7 @@ def _sequential_run(
     config: HarnessConfig,
     rng: np.random.Generator,
     *,
-    proposal: Callable[[SurrogateScores, np.ndarray], np.ndarray],
+    proposal: Callable[[SurrogateScores, np.ndarray, int], np.ndarray],
     floor: float,
     surrogate_for: Callable[[int, np.ndarray, list[int]], SurrogateScores],
 ) -> _Run:
@@ -206,7 +223,7 @@ def _sequential_run(
     for size in _batches(config):
         candidates = np.flatnonzero(~labeled)
         cand_scores = _subset(scores, candidates)
-        u = proposal(cand_scores, candidates)
+        u = proposal(cand_scores, candidates, done)
         batch = draw_batch(
             u,
             cand_scores.expected_loss,
@@ -222,6 +239,9 @@ def _sequential_run(
         run.remaining_expected_loss.extend(batch.remaining_expected_loss.tolist())
         run.correction_low.extend(batch.correction_low.tolist())
         run.correction_high.extend(batch.correction_high.tolist())
+        run.residual_second_moment.extend(
+            cand_scores.residual_second_moment[batch.positions].tolist()
+        )
         labeled[items] = True
         done += size
         scores = surrogate_for(done, labeled, run.order)
@@ -318,8 +338,11 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             current[:] = [scores]
         return current[0]
 
-    def rule_on_pool(scores: SurrogateScores, candidates: np.ndarray) -> np.ndarray:
-        return rule(scores, features[candidates])
+    def rule_on_pool(scores: SurrogateScores, candidates: np.ndarray, done: int) -> np.ndarray:
+        # The surrogate in force was fitted on the labels up to the last refit point.
+        fitted_on = max((p for p in refit_points if p <= done), default=0)
+        context = RuleContext(features[candidates], outputs[candidates], spec, fitted_on)
+        return rule(scores, context)
 
     lead = _sequential_run(
         scenario,
@@ -341,12 +364,12 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             scenario,
             config,
             rng,
-            proposal=lambda s, c: s.expected_loss,
+            proposal=lambda s, c, done: s.expected_loss,
             floor=config.floor,
             surrogate_for=shared_surrogate,
         )
 
-        def oracle_proposal(s: SurrogateScores, c: np.ndarray) -> np.ndarray:
+        def oracle_proposal(s: SurrogateScores, c: np.ndarray, done: int) -> np.ndarray:
             return np.abs(losses[c] - s.expected_loss)
 
         runs["oracle"] = _sequential_run(

@@ -167,8 +167,8 @@ def _markdown(
         "",
         "Methods: " + "; ".join(_METHOD_NOTES[m] for m in METHODS) + ".",
         "",
-        "Relative labeling cost at M = labels i.i.d. sampling needs for the method's RMSE "
-        "/ M, interpolated on the i.i.d. baseline's own RMSE curve (log-log); `*` marks "
+        "Relative labeling cost at M = M / (labels i.i.d. sampling needs for the method's "
+        "RMSE), interpolated on the i.i.d. baseline's own RMSE curve (log-log); `*` marks "
         "values outside the measured i.i.d. range, extrapolated as RMSE ~ 1/sqrt(M) from "
         f"M = {config.budgets[-1]} (or from M = {config.budgets[0]} below it). Below 1 is "
         "better. Coverage is over repetitions (Monte-Carlo standard error about "

@@ -1,10 +1,11 @@
 """Summaries of benchmark repetitions: metrics, relative labeling cost, targets, tables.
 
-Relative labeling cost of a method at budget M = (labels uniform random sampling needs to
-reach the method's RMSE) / M. The labels are read off the i.i.d. baseline's own RMSE curve
-at the benchmark budgets by linear interpolation in log(M)-log(RMSE) (where RMSE ~ 1/sqrt(M)
-is a straight line); beyond the largest budget the curve is extended as 1/sqrt(M) from its
-last point (and below the smallest budget likewise), and such costs are flagged.
+Relative labeling cost of a method at budget M = M / (labels uniform random sampling needs
+to reach the method's RMSE); below 1 the method needs fewer labels. Those labels are read
+off the i.i.d. baseline's own RMSE curve at the benchmark budgets by linear interpolation in
+log(M)-log(RMSE) (where RMSE ~ 1/sqrt(M) is a straight line); beyond the largest budget the
+curve is extended as 1/sqrt(M) from its last point (and below the smallest budget
+likewise), and such costs are flagged.
 """
 
 from __future__ import annotations
@@ -56,11 +57,14 @@ def equivalent_iid_labels(
     if not (np.isfinite(rmse) and rmse > 0):
         # Zero error: no finite i.i.d. budget matches it; NaN/inf: undefined.
         return (float("inf") if rmse == 0 else float("nan")), True
-    if rmse >= r[0]:
-        return float(b[0] * (r[0] / rmse) ** 2), rmse > r[0]
-    if rmse <= r[-1]:
-        return float(b[-1] * (r[-1] / rmse) ** 2), rmse < r[-1]
-    k = int(np.flatnonzero(r <= rmse)[0]) - 1  # r[k] > rmse >= r[k + 1]
+    reached = np.flatnonzero(r <= rmse)
+    if reached.size == 0:  # better than i.i.d. at the largest budget
+        return float(b[-1] * (r[-1] / rmse) ** 2), True
+    k = int(reached[0]) - 1  # first budget whose i.i.d. RMSE is <= rmse is k + 1
+    if k < 0:  # no better than i.i.d. at the smallest budget
+        return float(b[0] * (r[0] / rmse) ** 2), bool(rmse > r[0])
+    if r[k + 1] == rmse:
+        return float(b[k + 1]), False
     lr, lb = np.log(r), np.log(b)
     t = (np.log(rmse) - lr[k]) / (lr[k + 1] - lr[k])
     return float(np.exp(lb[k] + t * (lb[k + 1] - lb[k]))), False
@@ -122,7 +126,8 @@ def summarize(
             if np.isnan(rmse[i, b]):
                 continue
             labels, flag = equivalent_iid_labels(float(rmse[i, b]), budgets, iid)
-            cost[i, b], extrapolated[i, b] = labels / m, flag
+            # labels used / labels i.i.d. needs for the same RMSE (below 1 is better).
+            cost[i, b], extrapolated[i, b] = m / labels, flag
 
     any_lo = np.stack([r.anytime_lower for r in results])  # (R, A, T)
     any_hi = np.stack([r.anytime_upper for r in results])

@@ -35,8 +35,8 @@ from benchmarks.report import ScenarioSummary, summarize  # noqa: E402
 from benchmarks.scenarios import SCENARIO_NAMES, build_scenario  # noqa: E402
 
 _RESULTS = Path(__file__).resolve().parent / "RESULTS.md"
-_DENSE = (10, 20, 30, 40, 50, 60, 70, 85, 100, 125, 150, 175, 200)
-_SPARSE = (10, 50, 100, 200)
+_DENSE = (10, 20, 30, 40, 50, 70, 100)
+_SPARSE = (10, 50, 100)
 
 
 def _arms() -> dict[str, dict[str, Any]]:
@@ -49,9 +49,13 @@ def _arms() -> dict[str, dict[str, Any]]:
         "spread_x10": {"usefulness_rule": "spread_x10"},
         "pow_0.25": {"usefulness_rule": "second_moment_pow_0.25"},
         "pow_0.75": {"usefulness_rule": "second_moment_pow_0.75"},
+        "refit_150": {"refit_at": (10, 25, 50, 100, 150)},
         "root_plus_loss": {"usefulness_rule": "root_plus_loss"},
         "smoothed_0.1": {"usefulness_rule": "smoothed_0.1"},
         "smoothed_1": {"usefulness_rule": "smoothed_1"},
+        "mixture_0.01": {"usefulness_rule": "mixture_0.01"},
+        "mixture_0.03": {"usefulness_rule": "mixture_0.03"},
+        "mixture_succession": {"usefulness_rule": "mixture_succession"},
         "floor_0.1": {"floor": 0.1},
         "floor_0.3": {"floor": 0.3},
         "floor_0.5": {"floor": 0.5},

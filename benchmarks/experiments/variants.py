@@ -1,14 +1,17 @@
 """Candidate usefulness rules, compared by ``benchmarks/experiments/run.py``.
 
-Each rule maps the surrogate's scores over the candidates (and their features) to a
-usefulness u >= 0; ``draw_batch`` mixes it with the floor: q = (1 - eps) u / sum u + eps / n.
+Each rule maps the surrogate's scores over the candidates (and their label-free context)
+to a usefulness u >= 0; ``draw_batch`` mixes it with the floor:
+q = (1 - eps) u / sum u + eps / n.
 
 Background: for the difference estimator with a fixed control variate g, the variance of
 one draw's term is sum_j E[(L_j - g_j)^2] / q_j - (...)^2, minimised by q_j proportional to
-sqrt(E[(L_j - g_j)^2]) (the standard optimal importance-sampling proposal, e.g. Owen,
-"Monte Carlo theory, methods and examples", 2013, §9.1). The other rules trade some of
-that for labels that improve g elsewhere in the pool (epistemic spread) or are flatter /
-sharper versions of it.
+sqrt(E[(L_j - g_j)^2]) (the optimal importance-sampling proposal applied to the residual,
+e.g. "Monte Carlo theory, methods and examples", 2013, §9.1). That needs the surrogate's
+E[(L - g)^2] to be right where it is small: an overconfident surrogate puts little
+probability exactly where rare, costly mistakes hide. The rules below trade some of the
+optimum for robustness to that (mixtures with a worst case, flatter powers) or for labels
+that improve g elsewhere in the pool (epistemic spread).
 """
 
 from __future__ import annotations
@@ -17,66 +20,90 @@ from collections.abc import Callable
 
 import numpy as np
 
+from benchmarks.harness import RuleContext, UsefulnessRule
 from leadline.service.estimation import SurrogateScores, usefulness
 
-__all__ = ["USEFULNESS_RULES"]
+__all__ = ["USEFULNESS_RULES", "worst_case_second_moment"]
 
 
-def _core(scores: SurrogateScores, features: np.ndarray) -> np.ndarray:
+def _core(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
     return np.asarray(usefulness(scores), dtype=float)
 
 
-def _sqrt_second_moment(scores: SurrogateScores, features: np.ndarray) -> np.ndarray:
-    return np.sqrt(np.maximum(scores.residual_second_moment, 0.0))
-
-
-def _expected_loss(scores: SurrogateScores, features: np.ndarray) -> np.ndarray:
+def _expected_loss(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
     return np.maximum(scores.expected_loss, 0.0)
 
 
-def _with_spread(weight: float) -> Callable[[SurrogateScores, np.ndarray], np.ndarray]:
+def _second(scores: SurrogateScores) -> np.ndarray:
+    return np.maximum(scores.residual_second_moment, 0.0)
+
+
+def worst_case_second_moment(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+    """max over possible labels of (L - g)^2: classification from the loss table of each
+    item's output, regression (L in [0, cap]) from the ends of the range."""
+    g = scores.expected_loss
+    spec = context.spec
+    if spec.is_classification:
+        table = np.asarray(spec.loss_table(context.outputs), dtype=float)
+        return np.max((table - g[:, None]) ** 2, axis=1)
+    return np.maximum(g, spec.bound - g) ** 2
+
+
+def _with_spread(weight: float) -> UsefulnessRule:
     # Extra weight on the epistemic part: a label where the ensemble disagrees also
     # improves g for similar items (its value for the rest of the pool).
-    def rule(scores: SurrogateScores, features: np.ndarray) -> np.ndarray:
-        return np.sqrt(np.maximum(scores.residual_second_moment, 0.0) + weight * scores.spread**2)
+    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+        return np.sqrt(_second(scores) + weight * scores.spread**2)
 
     return rule
 
 
-def _power(exponent: float) -> Callable[[SurrogateScores, np.ndarray], np.ndarray]:
-    def rule(scores: SurrogateScores, features: np.ndarray) -> np.ndarray:
-        return np.maximum(scores.residual_second_moment, 0.0) ** exponent
+def _power(exponent: float) -> UsefulnessRule:
+    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+        return _second(scores) ** exponent
 
     return rule
 
 
-def _spread_and_loss(scores: SurrogateScores, features: np.ndarray) -> np.ndarray:
-    # sqrt(E[(L-g)^2]) plus the expected loss: keeps sampling where the losses are
-    # (guards against a surrogate that is confidently wrong about a costly region).
-    root = np.sqrt(np.maximum(scores.residual_second_moment, 0.0))
+def _root_plus_loss(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+    # sqrt(E[(L-g)^2]) plus the expected loss, each normalised to mean 1.
+    root = np.sqrt(_second(scores))
     g = np.maximum(scores.expected_loss, 0.0)
     return root / max(root.mean(), 1e-12) + g / max(g.mean(), 1e-12)
 
 
-def _smoothed(share: float) -> Callable[[SurrogateScores, np.ndarray], np.ndarray]:
-    # sqrt(E[(L-g)^2] + share * mean): items the surrogate calls certain keep a floor in
-    # the square-root scale, a hedge against an overconfident E[(L-g)^2].
-    def rule(scores: SurrogateScores, features: np.ndarray) -> np.ndarray:
-        second = np.maximum(scores.residual_second_moment, 0.0)
+def _smoothed(share: float) -> UsefulnessRule:
+    # sqrt(E[(L-g)^2] + share * mean): a floor in the square-root scale.
+    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+        second = _second(scores)
         return np.sqrt(second + share * second.mean())
 
     return rule
 
 
-USEFULNESS_RULES: dict[str, Callable[[SurrogateScores, np.ndarray], np.ndarray]] = {
+def _mixture(alpha: float | None, *, prior_labels: float = 10.0) -> UsefulnessRule:
+    # The second moment under a mixture of the surrogate (weight 1 - a) and the worst case
+    # (weight a): sqrt(E[(L-g)^2] + a * max (L-g)^2). A fixed a, or (alpha=None) the rule of
+    # succession a = 1 / (labels + prior_labels): the chance of a kind of mistake not seen
+    # among the labels so far.
+    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+        a = alpha if alpha is not None else 1.0 / (context.label_count + prior_labels)
+        return np.sqrt(_second(scores) + a * worst_case_second_moment(scores, context))
+
+    return rule
+
+
+USEFULNESS_RULES: dict[str, Callable[[SurrogateScores, RuleContext], np.ndarray]] = {
     "core": _core,
-    "sqrt_second_moment": _sqrt_second_moment,
     "expected_loss": _expected_loss,
     "spread_x3": _with_spread(3.0),
     "spread_x10": _with_spread(10.0),
     "second_moment_pow_0.25": _power(0.25),
     "second_moment_pow_0.75": _power(0.75),
-    "root_plus_loss": _spread_and_loss,
+    "root_plus_loss": _root_plus_loss,
     "smoothed_0.1": _smoothed(0.1),
     "smoothed_1": _smoothed(1.0),
+    "mixture_0.01": _mixture(0.01),
+    "mixture_0.03": _mixture(0.03),
+    "mixture_succession": _mixture(None),
 }
