@@ -1,11 +1,7 @@
-"""Confidence bounds on the scope risk from the per-draw terms a_m.
+"""Anytime-valid confidence bounds on the scope risk from the per-draw terms a_m.
 
-Fixed-time interval (``fixed_time_half_width``): martingale central limit theorem on the
-a_m (they are martingale differences around the risk), with standard error
-sqrt(max(empirical variance / M, model-based variance)); the model-based part uses the
-surrogate's predicted residual second moment at each drawn item,
-(1/M^2) sum_m 1[i_m in D] s_m / (N_D q_m)^2, which guards against the empirical variance
-missing rare large corrections at small M.
+(The fixed-time interval, a martingale central limit theorem with a model-guarded
+variance, lives with the estimators in ``estimators.py``.)
 
 Anytime-valid bounds (confidence sequences, valid however often they are queried):
 
@@ -17,8 +13,8 @@ Anytime-valid bounds (confidence sequences, valid however often they are queried
   stays nonnegative given the per-draw range [lo_t, hi_t] known before draw t. Under
   r = risk the capital is a nonnegative supermartingale, so by Ville's inequality it ever
   reaches 1/alpha with probability <= alpha; every r whose capital did is excluded. The
-  capital is decreasing in r, so the excluded set is a half-line and its edge is found on a
-  grid, then refined by bisection. The upper side mirrors it.
+  capital is decreasing in r, so the excluded set is a half-line: the path's edge is found
+  on a grid (rounded outwards) and the final value by bisection. The upper side mirrors it.
 - ``empirical_bernstein``: the predictable-plug-in empirical-Bernstein confidence sequence
   (same paper, building on "Time-uniform, nonparametric, nonasymptotic confidence
   sequences", Annals of Statistics 2021), closed form and O(1) per new term.
@@ -54,6 +50,8 @@ _BISECTION_STEPS = 60
 
 
 class BoundKind(enum.Enum):
+    """Which interval a gate compares with max_risk (values: the proto enum's suffixes)."""
+
     FIXED_TIME = "fixed_time"
     ANYTIME = "anytime"
 

@@ -75,6 +75,8 @@ BALANCED_MIN_LABELS: int = 20
 
 
 class EstimatorMode(enum.Enum):
+    """Which risk estimator answers (values: the proto enum's suffixes, lower-case)."""
+
     UNBIASED = "unbiased"
     SURROGATE = "surrogate"
     BALANCED = "balanced"

@@ -28,6 +28,8 @@ MAX_LABELS_HINT: int = 1_000_000
 
 
 class Verdict(enum.Enum):
+    """A gate's answer (values: the proto enum's suffixes, lower-case)."""
+
     PASS = "pass"
     FAIL = "fail"
     UNDECIDED = "undecided"
