@@ -90,6 +90,8 @@ class RiskEstimate:
     side), bias bound and nonresponse allowance included. ``anytime_lower``/``upper``:
     confidence sequence at ``confidence`` (two-sided) on the design-based terms, whatever
     the mode. In a ``GateDecision`` every bound is one-sided at ``confidence`` instead.
+    ``risk`` is clipped to [0, B]; ``unclipped_risk`` is the estimator's own value (the
+    one whose expectation is the scope risk in UNBIASED mode).
     """
 
     risk: float
@@ -107,6 +109,7 @@ class RiskEstimate:
     nonresponse_allowance: float
     unbiased_weight: float
     loss_bound: float
+    unclipped_risk: float = math.nan
 
 
 def lure_weights(probabilities: np.ndarray, pool_size: int) -> np.ndarray:
@@ -440,7 +443,11 @@ def _estimate(
     else:
         anytime_lower, anytime_upper = 0.0, bound
     return RiskEstimate(
-        risk=risk,
+        # The design-based sum can leave [0, B] with few labels (a negative correction
+        # term); no risk lies outside the loss range, so the point estimate is clipped to
+        # it (this only moves it towards the truth) and stays inside its own interval.
+        risk=min(max(risk, 0.0), bound),
+        unclipped_risk=risk,
         std_error=se,
         lower=min(max(risk - margin_down, 0.0), bound),
         upper=min(max(risk + margin_up, 0.0), bound),

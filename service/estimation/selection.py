@@ -120,6 +120,8 @@ def draw_batch(
     mismatch, floor outside (0, 1], count < 0 or count > n, g outside [0, loss_bound].
     """
     u = _check_usefulness(usefulness)
+    # Subnormal scores would overflow 1 / sum(u); they carry no usable weight anyway.
+    u = np.where(u < np.finfo(np.float64).tiny, 0.0, u)
     g = check_finite_array("expected_loss", expected_loss, ndim=1)
     n = u.shape[0]
     if g.shape[0] != n:
@@ -174,10 +176,13 @@ def draw_batch(
     for m in range(count):
         n_m = n - m
         # Recompute from scratch when subtraction may have lost the sum to rounding.
-        if total_u > 0.0 and remaining_u <= 1e-9 * total_u:
+        # Each subtraction adds rounding error of about 1e-16 * total_u; once the rest is
+        # below 1e-4 of the reference its relative error could reach 1e-10, so resum.
+        if total_u > 0.0 and remaining_u <= 1e-4 * total_u:
             mask = np.ones(n, dtype=bool)
             mask[list(drawn)] = False
             remaining_u = float(u[mask].sum())
+            total_u = remaining_u
         usefulness_left[m] = remaining_u
         if remaining_u > 0.0:
             scale_u[m] = (1.0 - floor) / remaining_u
@@ -205,7 +210,9 @@ def draw_batch(
                 tries = 0
         drawn.add(pick)
         positions[m] = pick
-        probabilities[m] = scale_u[m] * u[pick] + scale_flat[m]
+        # A probability is at most 1; the last remaining item's (1 - eps) + eps can round
+        # to 1 + 1e-16, which downstream validation rightly refuses.
+        probabilities[m] = min(scale_u[m] * u[pick] + scale_flat[m], 1.0)
         remaining_u -= u[pick]
 
     drawn_g = g[positions]

@@ -114,7 +114,7 @@ def test_unbiased_estimate_is_exactly_unbiased_over_every_draw_sequence(losses, 
             loss_bound=_BOUND,
         )
         total_probability += probability
-        expectation += probability * estimate.risk
+        expectation += probability * estimate.unclipped_risk
     assert total_probability == pytest.approx(1.0, abs=1e-12)
     assert abs(expectation - losses.mean()) < 1e-12
 
@@ -132,7 +132,7 @@ def test_segment_estimate_is_exactly_unbiased_for_the_segment_risk(draws):
             confidence=0.9,
             loss_bound=_BOUND,
         )
-        expectation += probability * estimate.risk
+        expectation += probability * estimate.unclipped_risk
     assert abs(expectation - losses[scope].mean()) < 1e-12
 
 
@@ -171,7 +171,7 @@ def test_late_items_bias_stays_within_the_reported_bias_bound():
         estimate = estimate_risk(
             late, sums, mode=EstimatorMode.UNBIASED, confidence=0.9, loss_bound=_BOUND
         )
-        expectation += probability * estimate.risk
+        expectation += probability * estimate.unclipped_risk
         bias_bound = estimate.bias_bound
     exact_bias = (late_score.sum() - losses[~present].sum()) / 7
     assert abs(expectation - losses.mean() - exact_bias) < 1e-12

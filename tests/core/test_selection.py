@@ -169,7 +169,10 @@ def test_bad_draw_arguments_raise_value_error_naming_field_value_and_rule(kwargs
     floor=st.floats(min_value=0.01, max_value=1.0),
 )
 def test_any_small_pool_logs_exact_probabilities_and_covering_ranges(data, n, floor):
-    u = np.array(data.draw(st.lists(st.floats(0.0, 10.0), min_size=n, max_size=n)))
+    # Subnormal scores are flushed to 0 by draw_batch (and break this reference formula).
+    u = np.array(
+        data.draw(st.lists(st.floats(0.0, 10.0, allow_subnormal=False), min_size=n, max_size=n))
+    )
     g = np.array(data.draw(st.lists(st.floats(0.0, 2.0), min_size=n, max_size=n)))
     count = data.draw(st.integers(min_value=0, max_value=n))
     rng = np.random.default_rng(data.draw(st.integers(0, 2**32 - 1)))
