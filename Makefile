@@ -7,7 +7,7 @@ PY := $(VENV)/bin/python
 PROTO_DIR := proto
 PROTO_OUT := proto/leadline/v1
 
-.PHONY: demo test lint format proto bench bench-quick clean
+.PHONY: demo test lint format proto bench bench-quick bench-system bench-system-quick clean
 
 $(PY):
 	$(PYTHON) -c 'import sys; assert sys.version_info >= (3, 11), "leadline needs Python >= 3.11, found " + sys.version'
@@ -49,6 +49,14 @@ bench: $(VENV)/.installed-test
 
 bench-quick: $(VENV)/.installed-test
 	$(PY) benchmarks/labels.py --quick
+
+# System benchmark: a real `leadline serve` child beside bare sqlite3 / numpy / core figures.
+# Full: 1,000,000 items, writes its section of BENCHMARKS.md; quick: 100,000 items.
+bench-system: $(VENV)/.installed-test
+	$(PY) benchmarks/system.py
+
+bench-system-quick: $(VENV)/.installed-test
+	$(PY) benchmarks/system.py --quick
 
 clean:
 	rm -rf $(VENV) build dist *.egg-info .pytest_cache .mypy_cache .ruff_cache

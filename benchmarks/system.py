@@ -1,0 +1,1063 @@
+"""System benchmark: the real leadline server beside the bare libraries it is built on.
+
+Run from the repository root:
+
+    .venv/bin/python benchmarks/system.py            # full: 1,000,000 items (~5-10 minutes)
+    .venv/bin/python benchmarks/system.py --quick    # 100,000 items, fewer repetitions
+
+The harness starts ``leadline serve`` as a child process on 127.0.0.1 port 0 with a fresh
+data directory and a token file, reads the port from its ``leadline listening on
+HOST:PORT`` line, and talks to it with the real :class:`leadline.client.Client`. Every
+server figure stands beside a bare-library figure measured in the same run on the same
+data (stdlib sqlite3, numpy, the estimation core called directly); the ratio
+leadline / baseline is the point, absolute times on a shared two-core machine are noisy.
+
+The data is an invented scenario: a parcel-sorting camera's 10-class package-type
+classifier, 32 image-embedding features per parcel, four sorting halls as segments,
+parcels arriving at a steady rate. The model is over-confident: its class probabilities
+are a sharpened, noisy version of the ones the true labels are drawn from.
+
+The full run writes its section of BENCHMARKS.md (between the ``system-benchmark``
+markers, see :mod:`benchmarks.markdown`); the quick run writes bench-out/system-quick.md
+unless ``--output`` says otherwise. Both print the table.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import logging
+import os
+import platform
+import re
+import secrets
+import shlex
+import shutil
+import signal
+import sqlite3
+import subprocess
+import sys
+import tempfile
+import time
+import urllib.request
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+_ROOT = Path(__file__).resolve().parents[1]
+if str(_ROOT) not in sys.path:  # run as a script: make `benchmarks` importable
+    sys.path.insert(0, str(_ROOT))
+
+from benchmarks.markdown import replace_section  # noqa: E402
+from leadline.client import Client  # noqa: E402
+from leadline.service.estimation import (  # noqa: E402
+    DRAW_LABELED,
+    DRAW_PENDING,
+    DrawTerms,
+    EstimatorMode,
+    LossKind,
+    LossSpec,
+    PlugInSums,
+    SurrogateScores,
+    SurrogateSettings,
+    cold_start_surrogate,
+    draw_batch,
+    estimate_risk,
+    fit_surrogate,
+    selection_probabilities,
+    usefulness,
+)
+
+__all__ = [
+    "FULL",
+    "QUICK",
+    "SECTION",
+    "Figure",
+    "Row",
+    "ServerProcess",
+    "SyntheticPool",
+    "SystemConfig",
+    "SystemReport",
+    "format_table",
+    "main",
+    "make_pool_data",
+    "run_system_benchmark",
+]
+
+_LOG = logging.getLogger("benchmarks.system")
+
+SECTION = "system-benchmark"
+POOL_ID = "parcel-sorting"
+LABELER = "bench-vendor"
+SEGMENT_NAMES = ("hall-a", "hall-b", "hall-c", "hall-d")
+# The server's default defensive floor (docs/operations.md); the bare draws use the same.
+SELECTION_FLOOR = 0.3
+CONFIDENCE = 0.95
+_LISTENING = re.compile(r"leadline listening on (\S+:\d+)")
+_METRICS = re.compile(r"metrics on (http://\S+:\d+/metrics)")
+_ARRIVAL_STEP_MS = 50  # one parcel every 50 ms
+_START_TIME_MS = 1_780_000_000_000
+_SCORE_CHUNK = 100_000  # rows per Surrogate.score call in the bare refit (bounded memory)
+_POLL_SECONDS = 0.02
+
+
+@dataclass(frozen=True, kw_only=True)
+class SystemConfig:
+    """Sizes and repetitions of one run."""
+
+    items: int
+    feature_dim: int = 32
+    num_classes: int = 10
+    batch_rows: int = 2_000
+    acquire_counts: tuple[int, ...] = (10, 100)
+    acquire_calls: int = 30  # AcquireItems calls per count (>= 30 for the real runs)
+    estimate_calls: int = 30  # samples of each GetEstimate figure
+    refit_every_labels: int = 500  # the pool's refit trigger: refit k happens at k * this
+    refits: int = 1
+    seed: int = 20_261_202
+    startup_timeout: float = 120.0
+    refit_timeout: float = 900.0
+
+    def __post_init__(self) -> None:
+        if self.items < self.batch_rows or self.batch_rows < 1:
+            raise ValueError(
+                f"items == {self.items}, batch_rows == {self.batch_rows}: need "
+                "1 <= batch_rows <= items."
+            )
+        for name in ("acquire_calls", "estimate_calls", "refit_every_labels", "refits"):
+            if getattr(self, name) < 1:
+                raise ValueError(f"{name} == {getattr(self, name)}, must be >= 1.")
+        drawn = self.acquire_calls * sum(self.acquire_counts) + self.estimate_calls
+        if drawn > self.items:
+            raise ValueError(
+                f"acquire_calls * sum(acquire_counts) + estimate_calls == {drawn} draws, "
+                f"must be <= items == {self.items}."
+            )
+        labels = self.refits * self.refit_every_labels
+        if labels > self.acquire_calls * sum(self.acquire_counts):
+            raise ValueError(
+                f"refits * refit_every_labels == {labels} labels, must be <= the "
+                f"{self.acquire_calls * sum(self.acquire_counts)} items the acquire phase draws."
+            )
+
+    @property
+    def raw_bytes_per_item(self) -> int:
+        """float32 features + float32 class probabilities of one item."""
+        return 4 * (self.feature_dim + self.num_classes)
+
+
+FULL = SystemConfig(
+    items=1_000_000, acquire_calls=100, estimate_calls=60, refit_every_labels=1_000, refits=3
+)
+QUICK = SystemConfig(
+    items=100_000, acquire_calls=30, estimate_calls=30, refit_every_labels=500, refits=2
+)
+
+
+# ---------------------------------------------------------------------------------------
+# results
+# ---------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Figure:
+    """One measured value and how it is shown (``text``: e.g. 'median / p95')."""
+
+    value: float
+    text: str
+
+
+@dataclass(frozen=True)
+class Row:
+    """One line of the table: a leadline figure beside a bare-library figure."""
+
+    measurement: str
+    leadline: Figure
+    baseline_name: str
+    baseline: Figure
+
+    @property
+    def ratio(self) -> float:
+        """leadline / baseline (of the values, e.g. medians)."""
+        return self.leadline.value / self.baseline.value
+
+
+@dataclass
+class SystemReport:
+    config: SystemConfig
+    rows: list[Row] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+    wall_seconds: float = 0.0
+
+
+def _latency(samples: Sequence[float]) -> Figure:
+    """Median / p95 of latencies given in seconds, shown in ms."""
+    values = np.asarray(samples, dtype=np.float64) * 1000.0
+    median = float(np.median(values))
+    p95 = float(np.percentile(values, 95))
+    return Figure(median, f"{_ms(median)} / {_ms(p95)} ms")
+
+
+def _ms(value: float) -> str:
+    return f"{value:.3g}" if value < 100 else f"{value:,.0f}"
+
+
+def _seconds(value: float) -> Figure:
+    return Figure(value, f"{value:.2f} s")
+
+
+def _rate(rows_per_second: float) -> Figure:
+    return Figure(rows_per_second, f"{rows_per_second:,.0f} rows/s")
+
+
+def _bytes_per_item(value: float) -> Figure:
+    return Figure(value, f"{value:,.0f} B/item")
+
+
+def format_table(rows: Sequence[Row]) -> str:
+    """A Markdown table: measurement, leadline, baseline, baseline figure, ratio."""
+    lines = [
+        "| measurement | leadline server | bare-library baseline | baseline | "
+        "ratio (leadline / baseline) |",
+        "|---|---:|---|---:|---:|",
+    ]
+    for row in rows:
+        lines.append(
+            f"| {row.measurement} | {row.leadline.text} | {row.baseline_name} | "
+            f"{row.baseline.text} | {row.ratio:.3g} |"
+        )
+    return "\n".join(lines)
+
+
+# ---------------------------------------------------------------------------------------
+# data
+# ---------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class SyntheticPool:
+    """n parcels: ids, features, the model's probabilities, true classes, segments, times."""
+
+    item_ids: list[str]
+    features: np.ndarray  # (n, d) float32
+    outputs: np.ndarray  # (n, K) float32, rows sum to 1
+    labels: np.ndarray  # (n,) int64, drawn from the true class probabilities
+    segment_codes: np.ndarray  # (n,) int64 into SEGMENT_NAMES
+    event_time_ms: np.ndarray  # (n,) int64, increasing
+
+    @property
+    def segments(self) -> list[str]:
+        return [SEGMENT_NAMES[code] for code in self.segment_codes.tolist()]
+
+    def row_of(self, item_id: str) -> int:
+        return int(item_id.rsplit("-", 1)[1])
+
+
+def _softmax(logits: np.ndarray) -> np.ndarray:
+    shifted = logits - logits.max(axis=1, keepdims=True)
+    exp = np.exp(shifted)
+    return exp / exp.sum(axis=1, keepdims=True)
+
+
+def make_pool_data(n: int, *, feature_dim: int, num_classes: int, seed: int) -> SyntheticPool:
+    """The invented parcel-sorting pool (see the module docstring); deterministic in seed."""
+    rng = np.random.default_rng(seed)
+    features = rng.standard_normal((n, feature_dim), dtype=np.float32)
+    weights = rng.standard_normal((feature_dim, num_classes)) / np.sqrt(feature_dim)
+    outputs = np.empty((n, num_classes), dtype=np.float32)
+    labels = np.empty(n, dtype=np.int64)
+    for start in range(0, n, 200_000):
+        part = slice(start, min(n, start + 200_000))
+        true_logits = 2.0 * (features[part].astype(np.float64) @ weights)
+        true_probs = _softmax(true_logits)
+        noise = rng.normal(0.0, 0.5, size=true_logits.shape)
+        outputs[part] = _softmax(1.6 * true_logits + noise)
+        cdf = np.cumsum(true_probs, axis=1)
+        draws = rng.random(cdf.shape[0])[:, None]
+        labels[part] = np.minimum((cdf < draws).sum(axis=1), num_classes - 1)
+    outputs /= outputs.sum(axis=1, keepdims=True)
+    return SyntheticPool(
+        item_ids=[f"parcel-{i:07d}" for i in range(n)],
+        features=features,
+        outputs=outputs,
+        labels=labels,
+        segment_codes=rng.integers(len(SEGMENT_NAMES), size=n).astype(np.int64),
+        event_time_ms=_START_TIME_MS + _ARRIVAL_STEP_MS * np.arange(n, dtype=np.int64),
+    )
+
+
+# ---------------------------------------------------------------------------------------
+# the server child process
+# ---------------------------------------------------------------------------------------
+def _leadline_command() -> list[str]:
+    """The installed ``leadline`` script beside this interpreter, else the module form."""
+    beside = Path(sys.executable).with_name("leadline")
+    if beside.exists():
+        return [str(beside)]
+    found = shutil.which("leadline")
+    return [found] if found else [sys.executable, "-m", "leadline.client.cli"]
+
+
+class ServerProcess:
+    """``leadline serve`` on 127.0.0.1 port 0 with its data and token file under workdir.
+
+    Its stderr goes to ``workdir/server.log``; :meth:`start` waits for the listening line
+    and returns ``host:port``. The token holds every role, so one client does everything.
+    """
+
+    def __init__(
+        self, workdir: Path, *, extra_args: Sequence[str] = (), startup_timeout: float = 120.0
+    ) -> None:
+        self.workdir = Path(workdir)
+        self.token = "bench-" + secrets.token_hex(16)
+        self.extra_args = list(extra_args)
+        self.startup_timeout = startup_timeout
+        self.log_path = self.workdir / "server.log"
+        self.target = ""
+        self.returncode: int | None = None
+        self._process: subprocess.Popen[bytes] | None = None
+
+    @property
+    def pid(self) -> int:
+        if self._process is None:
+            raise RuntimeError("server not started")
+        return self._process.pid
+
+    def __enter__(self) -> ServerProcess:
+        self.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
+    def start(self) -> str:
+        data_dir = self.workdir / "data"
+        data_dir.mkdir(parents=True, exist_ok=True)
+        tokens = self.workdir / "tokens.toml"
+        roles = '["admin", "ingest", "labeler", "reader"]'
+        tokens.write_text(f'[tokens]\n"{self.token}" = {roles}\n', encoding="utf-8")
+        tokens.chmod(0o600)
+        argv = _leadline_command() + [
+            "serve",
+            "--data-dir",
+            str(data_dir),
+            "--listen",
+            "127.0.0.1:0",
+            "--tokens",
+            str(tokens),
+            # Server-side call times (the request histogram's sums) split transport from work.
+            "--metrics-listen",
+            "127.0.0.1:0",
+            *self.extra_args,
+        ]
+        with self.log_path.open("wb") as log:
+            self._process = subprocess.Popen(
+                argv, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=log
+            )
+        deadline = time.monotonic() + self.startup_timeout
+        while time.monotonic() < deadline:
+            match = _LISTENING.search(self.log())
+            if match:
+                self.target = match.group(1)
+                return self.target
+            if self._process.poll() is not None:
+                raise RuntimeError(
+                    f"leadline serve exited with code {self._process.returncode} before "
+                    f"listening:\n{self.log()[-4000:]}"
+                )
+            time.sleep(0.05)
+        self._process.kill()
+        self._process.wait()
+        raise RuntimeError(f"leadline serve did not listen within {self.startup_timeout} s")
+
+    def log(self) -> str:
+        try:
+            return self.log_path.read_text(encoding="utf-8", errors="replace")
+        except FileNotFoundError:
+            return ""
+
+    def cpu_seconds(self) -> float:
+        """User + system CPU time of the server process so far (/proc/PID/stat)."""
+        stat = Path(f"/proc/{self.pid}/stat").read_text(encoding="ascii")
+        fields = stat.rsplit(")", 1)[1].split()
+        # Fields 14 and 15 of proc(5) (utime, stime); fields[0] here is field 3.
+        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+    def handler_seconds(self) -> dict[str, tuple[float, int]]:
+        """Per gRPC method: (sum of server-side call seconds, calls) from the metrics page.
+
+        Scraping computes the whole-pool estimate for the pool gauges, so call this only
+        between phases, never between a change and the call that should find no cache."""
+        match = _METRICS.search(self.log())
+        if match is None:
+            raise RuntimeError("the server did not log its metrics address")
+        with urllib.request.urlopen(match.group(1), timeout=60) as reply:
+            text = reply.read().decode("utf-8")
+        sums: dict[str, float] = {}
+        counts: dict[str, int] = {}
+        for line in text.splitlines():
+            found = re.match(
+                r'leadline_request_seconds_(sum|count)\{method="([^"]+)"\} (\S+)', line
+            )
+            if found:
+                kind, method, value = found.groups()
+                name = method.rsplit("/", 1)[-1]
+                if kind == "sum":
+                    sums[name] = float(value)
+                else:
+                    counts[name] = int(float(value))
+        return {name: (sums.get(name, 0.0), counts.get(name, 0)) for name in counts}
+
+    def rss_bytes(self) -> int:
+        """Resident memory of the server process (VmRSS of /proc/PID/status)."""
+        status = Path(f"/proc/{self.pid}/status").read_text(encoding="ascii")
+        match = re.search(r"^VmRSS:\s+(\d+)\s+kB", status, re.MULTILINE)
+        if match is None:
+            raise RuntimeError(f"no VmRSS line in /proc/{self.pid}/status")
+        return int(match.group(1)) * 1024
+
+    def stop(self, timeout: float = 60.0) -> int | None:
+        """SIGTERM and wait (SIGKILL after ``timeout``); the exit code."""
+        process = self._process
+        if process is None:
+            return None
+        if process.poll() is None:
+            process.send_signal(signal.SIGTERM)
+            try:
+                process.wait(timeout=timeout)
+            except subprocess.TimeoutExpired:
+                _LOG.warning("server ignored SIGTERM for %s s; killing it", timeout)
+                process.kill()
+                process.wait()
+        self.returncode = process.returncode
+        return self.returncode
+
+
+# ---------------------------------------------------------------------------------------
+# measurements
+# ---------------------------------------------------------------------------------------
+def _timed(calls: int, call: Callable[[], object]) -> list[float]:
+    samples = []
+    for _ in range(calls):
+        started = time.perf_counter()
+        call()
+        samples.append(time.perf_counter() - started)
+    return samples
+
+
+def measure_ingest(client: Client, data: SyntheticPool, *, batch_rows: int) -> list[float]:
+    """Send the pool through IngestItems, one message per ``batch_rows`` rows; the
+    seconds of each call (client-side message building included)."""
+    segments = data.segments
+    n = len(data.item_ids)
+    durations = []
+    for start in range(0, n, batch_rows):
+        stop = min(n, start + batch_rows)
+        started = time.perf_counter()
+        result = client.ingest(
+            POOL_ID,
+            data.item_ids[start:stop],
+            data.features[start:stop],
+            data.outputs[start:stop],
+            segments=segments[start:stop],
+            event_time_ms=data.event_time_ms[start:stop],
+        )
+        durations.append(time.perf_counter() - started)
+        if result.accepted != stop - start or result.messages != 1:
+            raise RuntimeError(
+                f"ingest of rows {start}..{stop}: accepted {result.accepted} in "
+                f"{result.messages} messages, expected {stop - start} in 1"
+            )
+    return durations
+
+
+def sqlite_insert_durations(data: SyntheticPool, path: Path, *, batch_rows: int) -> list[float]:
+    """Bare stdlib sqlite3: the same rows (id, float32 blobs, segment, time) in WAL mode
+    with synchronous=FULL, one transaction per ``batch_rows`` rows; seconds per batch."""
+    connection = sqlite3.connect(path, isolation_level=None)
+    try:
+        connection.execute("PRAGMA journal_mode=WAL")
+        connection.execute("PRAGMA synchronous=FULL")
+        connection.execute(
+            "CREATE TABLE items (row INTEGER PRIMARY KEY, item_id TEXT NOT NULL, "
+            "features BLOB NOT NULL, outputs BLOB NOT NULL, segment TEXT NOT NULL, "
+            "event_time_ms INTEGER NOT NULL)"
+        )
+        segments = data.segments
+        n = len(data.item_ids)
+        durations = []
+        for start in range(0, n, batch_rows):
+            stop = min(n, start + batch_rows)
+            started = time.perf_counter()
+            rows = [
+                (
+                    i,
+                    data.item_ids[i],
+                    data.features[i].tobytes(),
+                    data.outputs[i].tobytes(),
+                    segments[i],
+                    int(data.event_time_ms[i]),
+                )
+                for i in range(start, stop)
+            ]
+            connection.execute("BEGIN")
+            connection.executemany("INSERT INTO items VALUES (?, ?, ?, ?, ?, ?)", rows)
+            connection.execute("COMMIT")
+            durations.append(time.perf_counter() - started)
+    finally:
+        connection.close()
+    return durations
+
+
+def _cold_scores(spec: LossSpec, data: SyntheticPool) -> SurrogateScores:
+    return cold_start_surrogate(spec).score(data.features, data.outputs)
+
+
+def numpy_choice_samples(
+    probabilities: np.ndarray, count: int, calls: int, rng: np.random.Generator
+) -> list[float]:
+    """``Generator.choice(n, count, replace=False, p=...)`` over the whole pool."""
+    n = probabilities.shape[0]
+    return _timed(calls, lambda: rng.choice(n, size=count, replace=False, p=probabilities))
+
+
+def draw_batch_samples(
+    scores: SurrogateScores,
+    codes: np.ndarray,
+    count: int,
+    calls: int,
+    rng: np.random.Generator,
+    *,
+    loss_bound: float,
+) -> list[float]:
+    """The core's ``draw_batch`` alone, same candidates, floor and segment groups."""
+    useful = usefulness(scores)
+    return _timed(
+        calls,
+        lambda: draw_batch(
+            useful,
+            scores.expected_loss,
+            count,
+            floor=SELECTION_FLOOR,
+            loss_bound=loss_bound,
+            rng=rng,
+            groups=codes,
+            num_groups=len(SEGMENT_NAMES),
+        ),
+    )
+
+
+def _estimate_terms(
+    spec: LossSpec,
+    data: SyntheticPool,
+    scores: SurrogateScores,
+    *,
+    draws: int,
+    labeled: int,
+    rng: np.random.Generator,
+) -> tuple[DrawTerms, PlugInSums]:
+    """Core inputs with the server's number of draws: a draw_batch of ``draws`` over the
+    pool's cold scores, the first ``labeled`` of them labeled with the true classes."""
+    batch = draw_batch(
+        usefulness(scores),
+        scores.expected_loss,
+        draws,
+        floor=SELECTION_FLOOR,
+        loss_bound=spec.bound,
+        rng=rng,
+    )
+    rows = batch.positions
+    status = np.full(draws, DRAW_PENDING, dtype=np.int64)
+    status[:labeled] = DRAW_LABELED
+    losses = np.full(draws, np.nan)
+    losses[:labeled] = spec.losses(
+        data.outputs[rows[:labeled]].astype(np.float64), data.labels[rows[:labeled]]
+    )
+    terms = DrawTerms(
+        probability=batch.probabilities,
+        expected_loss=scores.expected_loss[rows],
+        remaining_expected_loss=batch.remaining_expected_loss,
+        late_expected_loss=np.zeros(draws),
+        late_count=np.zeros(draws),
+        in_scope=np.ones(draws, dtype=bool),
+        status=status,
+        loss=losses,
+        correction_low=batch.correction_low,
+        correction_high=batch.correction_high,
+        residual_second_moment=scores.residual_second_moment[rows],
+    )
+    unlabeled = np.ones(len(data.item_ids), dtype=bool)
+    unlabeled[rows[:labeled]] = False
+    sums = PlugInSums(
+        scope_size=len(data.item_ids),
+        labeled_loss_sum=float(np.nansum(losses)),
+        unlabeled_expected_loss_sum=float(scores.expected_loss[unlabeled].sum()),
+        unlabeled_second_moment_sum=float(scores.residual_second_moment[unlabeled].sum()),
+    )
+    return terms, sums
+
+
+def bare_refit_seconds(
+    spec: LossSpec, data: SyntheticPool, rows: np.ndarray, *, version: int, seed: int
+) -> tuple[float, float]:
+    """(fit seconds, scoring seconds): ``fit_surrogate`` on the labeled rows with the
+    server's default refit threads (1), then ``Surrogate.score`` over every item."""
+    started = time.perf_counter()
+    surrogate = fit_surrogate(
+        spec,
+        data.features[rows],
+        data.outputs[rows],
+        data.labels[rows],
+        version=version,
+        seed=seed,
+        settings=SurrogateSettings(num_threads=1),
+    )
+    fitted = time.perf_counter()
+    n = len(data.item_ids)
+    for start in range(0, n, _SCORE_CHUNK):
+        part = slice(start, start + _SCORE_CHUNK)
+        surrogate.score(data.features[part], data.outputs[part])
+    return fitted - started, time.perf_counter() - fitted
+
+
+def _wait_for_version(client: Client, above: int, timeout: float) -> tuple[float, int]:
+    deadline = time.perf_counter() + timeout
+    while time.perf_counter() < deadline:
+        pool = client.get_pool(POOL_ID)
+        if pool.surrogate_version > above:
+            return time.perf_counter(), int(pool.surrogate_version)
+        time.sleep(_POLL_SECONDS)
+    raise RuntimeError(f"surrogate_version stayed <= {above} for {timeout} s")
+
+
+@dataclass(frozen=True)
+class _Usage:
+    """Clocks at one moment: wall, this process's CPU (the client), the server's CPU."""
+
+    wall: float
+    client_cpu: float
+    server_cpu: float
+    handlers: dict[str, tuple[float, int]]
+
+    @classmethod
+    def before(cls, server: ServerProcess) -> _Usage:
+        """Scrape first, then read the clocks: the scrape stays out of the phase."""
+        handlers = server.handler_seconds()
+        return cls(time.perf_counter(), time.process_time(), server.cpu_seconds(), handlers)
+
+    @classmethod
+    def after(cls, server: ServerProcess) -> _Usage:
+        """Read the clocks first, then scrape."""
+        wall, client, cpu = time.perf_counter(), time.process_time(), server.cpu_seconds()
+        return cls(wall, client, cpu, server.handler_seconds())
+
+    def since(self, earlier: _Usage, method: str, what: str) -> str:
+        """One sentence: wall and CPU seconds of both processes, server-side call time."""
+        total, calls = self.handlers.get(method, (0.0, 0))
+        total0, calls0 = earlier.handlers.get(method, (0.0, 0))
+        calls -= calls0
+        wall = self.wall - earlier.wall
+        text = (
+            f"{what}: wall {wall:.2f} s; CPU: server {self.server_cpu - earlier.server_cpu:.2f}"
+            f" s, benchmark process (client) {self.client_cpu - earlier.client_cpu:.2f} s"
+        )
+        if calls:
+            text += (
+                f"; {calls} {method} calls, mean {1000 * wall / calls:.3g} ms seen by the "
+                f"client, {1000 * (total - total0) / calls:.3g} ms inside the server's handler"
+            )
+        return text + "."
+
+
+def _progress(message: str) -> None:
+    print(f"  {message}", file=sys.stderr, flush=True)
+
+
+# ---------------------------------------------------------------------------------------
+# the run
+# ---------------------------------------------------------------------------------------
+def run_system_benchmark(
+    config: SystemConfig, workdir: Path, *, progress: bool = True
+) -> SystemReport:
+    """Every measurement of the table, in an order that keeps the phases apart (no refit
+    runs while latencies are taken; the bare figures run while the server is idle)."""
+    say = _progress if progress else (lambda message: None)
+    started = time.perf_counter()
+    report = SystemReport(config=config)
+    rows, notes = report.rows, report.notes
+    n = config.items
+    rng = np.random.default_rng(config.seed)
+    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=config.num_classes)
+    data = make_pool_data(
+        n, feature_dim=config.feature_dim, num_classes=config.num_classes, seed=config.seed
+    )
+    say(f"data: {n:,} items generated")
+
+    sqlite_path = workdir / "bare-sqlite.db"
+    bare_ingest = sqlite_insert_durations(data, sqlite_path, batch_rows=config.batch_rows)
+    for suffix in ("", "-wal", "-shm"):
+        Path(f"{sqlite_path}{suffix}").unlink(missing_ok=True)
+    say(f"bare SQLite insert: {n / sum(bare_ingest):,.0f} rows/s")
+
+    server = ServerProcess(
+        workdir / "server",
+        # Only the label count triggers refits, so each refit is the one we time.
+        extra_args=["--refit-interval-seconds", "1000000", "--draw-seed", str(config.seed)],
+        startup_timeout=config.startup_timeout,
+    )
+    with (
+        server,
+        Client(
+            server.target,
+            token=server.token,
+            timeout=120.0,
+            max_batch_rows=config.batch_rows,
+            max_batch_bytes=16 << 20,
+        ) as client,
+    ):
+        client.create_pool(
+            POOL_ID,
+            task="classification",
+            feature_dim=config.feature_dim,
+            num_classes=config.num_classes,
+            loss="zero-one",
+            refit_every_labels=config.refit_every_labels,
+        )
+        rss_empty = server.rss_bytes()
+
+        # -- ingest ---------------------------------------------------------------------
+        before = _Usage.before(server)
+        ingest = measure_ingest(client, data, batch_rows=config.batch_rows)
+        notes.append(_Usage.after(server).since(before, "IngestItems", "Ingest"))
+        rss_ingested = server.rss_bytes()
+        rate, bare_rate = n / sum(ingest), n / sum(bare_ingest)
+        rows.append(
+            Row(
+                f"ingest, {config.batch_rows:,}-row batches, {config.feature_dim} features, "
+                f"{config.num_classes} classes",
+                _rate(rate),
+                f"sqlite3 insert of the same rows (float32 blobs), WAL, synchronous=FULL, "
+                f"one transaction per {config.batch_rows:,} rows",
+                _rate(bare_rate),
+            )
+        )
+        batch_ms = np.asarray(ingest) * 1000.0
+        bare_ms = np.asarray(bare_ingest) * 1000.0
+        notes.append(
+            f"Time per {config.batch_rows:,}-row batch, median / p95 / max: leadline "
+            f"{np.median(batch_ms):.1f} / {np.percentile(batch_ms, 95):.1f} / "
+            f"{batch_ms.max():.0f} ms, sqlite3 {np.median(bare_ms):.1f} / "
+            f"{np.percentile(bare_ms, 95):.1f} / {bare_ms.max():.0f} ms."
+        )
+        tenth = max(1, len(ingest) // 10)
+        notes.append(
+            f"Ingest rate over the first / last tenth of the batches: "
+            f"{tenth * config.batch_rows / sum(ingest[:tenth]):,.0f} / "
+            f"{tenth * config.batch_rows / sum(ingest[-tenth:]):,.0f} rows/s (leadline), "
+            f"{tenth * config.batch_rows / sum(bare_ingest[:tenth]):,.0f} / "
+            f"{tenth * config.batch_rows / sum(bare_ingest[-tenth:]):,.0f} rows/s (sqlite3)."
+        )
+        say(f"ingest: {rate:,.0f} rows/s")
+
+        # -- AcquireItems ---------------------------------------------------------------
+        scores = _cold_scores(spec, data)
+        probabilities = selection_probabilities(usefulness(scores), floor=SELECTION_FLOOR)
+        codes = data.segment_codes  # one group per segment tag, as the server keeps
+        assignments = []
+        for count in config.acquire_counts:
+            got: list[list[object]] = []
+
+            def acquire(count: int = count, got: list[list[object]] = got) -> None:
+                got.append(list(client.acquire(POOL_ID, count, labeler=LABELER)))
+
+            before = _Usage.before(server)
+            samples = _timed(config.acquire_calls, acquire)
+            notes.append(
+                _Usage.after(server).since(before, "AcquireItems", f"AcquireItems count {count}")
+            )
+            for batch in got:
+                if len(batch) != count:
+                    raise RuntimeError(f"AcquireItems({count}) returned {len(batch)} items")
+                assignments.extend(batch)
+            server_figure = _latency(samples)
+            label = (
+                f"AcquireItems, count {count}, {n:,}-item pool, median / p95 of "
+                f"{config.acquire_calls} calls"
+            )
+            numpy_figure = _latency(
+                numpy_choice_samples(probabilities, count, config.acquire_calls, rng)
+            )
+            rows.append(
+                Row(
+                    label,
+                    server_figure,
+                    f"numpy Generator.choice(p=..., replace=False), {count} of {n:,} weights",
+                    numpy_figure,
+                )
+            )
+            core_figure = _latency(
+                draw_batch_samples(
+                    scores, codes, count, config.acquire_calls, rng, loss_bound=spec.bound
+                )
+            )
+            rows.append(Row(label, server_figure, "core draw_batch alone", core_figure))
+            say(f"acquire {count}: {server_figure.text}")
+
+        rss_marks = [("after the acquire phase", server.rss_bytes())]
+
+        # -- refit + rescoring ----------------------------------------------------------
+        labeled_rows: list[int] = []
+        version = client.get_pool(POOL_ID).surrogate_version
+        for k in range(1, config.refits + 1):
+            target = k * config.refit_every_labels
+            chunk = assignments[len(labeled_rows) : target]
+            head, trigger = chunk[:-1], chunk[-1]
+            for start in range(0, len(head), 1_000):
+                part = head[start : start + 1_000]
+                client.submit_labels(
+                    POOL_ID,
+                    {a.assignment_id: int(data.labels[data.row_of(a.item_id)]) for a in part},
+                    labeler=LABELER,
+                )
+            if client.get_pool(POOL_ID).surrogate_version != version:
+                raise RuntimeError("a refit started before the triggering label")
+            clock = time.perf_counter()
+            client.submit_labels(
+                POOL_ID,
+                {trigger.assignment_id: int(data.labels[data.row_of(trigger.item_id)])},
+                labeler=LABELER,
+            )
+            done, version = _wait_for_version(client, version, config.refit_timeout)
+            rss_marks.append((f"after refit {k}", server.rss_bytes()))
+            labeled_rows.extend(data.row_of(a.item_id) for a in chunk)
+            fit_s, score_s = bare_refit_seconds(
+                spec, data, np.array(labeled_rows), version=version, seed=config.seed + k
+            )
+            rows.append(
+                Row(
+                    f"refit + rescoring of {n:,} items after {target:,} labels (label sent "
+                    "-> Pool.surrogate_version increased)",
+                    _seconds(done - clock),
+                    "core fit_surrogate + Surrogate.score of every item, same arrays",
+                    _seconds(fit_s + score_s),
+                )
+            )
+            notes.append(
+                f"Bare refit after {target:,} labels: fit_surrogate {fit_s:.2f} s, "
+                f"Surrogate.score of {n:,} items {score_s:.2f} s."
+            )
+            say(f"refit {k}: {done - clock:.2f} s (bare {fit_s + score_s:.2f} s)")
+
+        # -- GetEstimate ----------------------------------------------------------------
+        times = data.event_time_ms
+        window = (int(times[n // 3]), int(times[2 * n // 3]))
+        scopes = {
+            "whole pool": {},
+            f"segment {SEGMENT_NAMES[0]!r}": {"segment": SEGMENT_NAMES[0]},
+            "time window (middle third)": {"start_time_ms": window[0], "end_time_ms": window[1]},
+        }
+        first: dict[str, list[float]] = {name: [] for name in scopes}
+        cached: dict[str, list[float]] = {name: [] for name in scopes}
+        for _ in range(config.estimate_calls):
+            client.acquire(POOL_ID, 1, labeler=LABELER)  # a change: every cache entry goes
+            for name, scope in scopes.items():
+                first[name].extend(
+                    _timed(1, lambda scope=scope: client.get_estimate(POOL_ID, **scope))
+                )
+                cached[name].extend(
+                    _timed(1, lambda scope=scope: client.get_estimate(POOL_ID, **scope))
+                )
+        pool = client.get_pool(POOL_ID)
+        whole = client.get_estimate(POOL_ID)
+        if whole.labels_used != pool.labeled_count or whole.items_in_scope != n:
+            raise RuntimeError(f"unexpected whole-pool estimate: {whole}")
+        terms, sums = _estimate_terms(
+            spec,
+            data,
+            scores,
+            draws=int(pool.draw_count),
+            labeled=int(pool.labeled_count),
+            rng=rng,
+        )
+        core = _latency(
+            _timed(
+                config.estimate_calls,
+                lambda: estimate_risk(
+                    terms,
+                    sums,
+                    mode=EstimatorMode.BALANCED,
+                    confidence=CONFIDENCE,
+                    loss_bound=spec.bound,
+                ),
+            )
+        )
+        baseline_name = (
+            f"core estimate_risk alone (BALANCED), {pool.draw_count:,} draws, "
+            f"{pool.labeled_count:,} labeled"
+        )
+        for name in scopes:
+            for kind, samples in (("cached", cached[name]), ("first after a change", first[name])):
+                rows.append(
+                    Row(
+                        f"GetEstimate, {name}, {kind}, median / p95 of {len(samples)}",
+                        _latency(samples),
+                        baseline_name,
+                        core,
+                    )
+                )
+        say("estimates done")
+
+        # -- memory ---------------------------------------------------------------------
+        rss_end = server.rss_bytes()
+        raw = Figure(
+            float(config.raw_bytes_per_item),
+            f"{config.raw_bytes_per_item} B/item",
+        )
+        raw_name = (
+            f"raw arrays: float32 features + outputs ({config.feature_dim} + "
+            f"{config.num_classes}) x 4 B"
+        )
+        rows.append(
+            Row(
+                "server resident memory per item after ingest (VmRSS growth / items)",
+                _bytes_per_item((rss_ingested - rss_empty) / n),
+                raw_name,
+                raw,
+            )
+        )
+        rows.append(
+            Row(
+                f"... at the end ({pool.draw_count:,} draws, {config.refits} refits)",
+                _bytes_per_item((rss_end - rss_empty) / n),
+                raw_name,
+                raw,
+            )
+        )
+        notes.append(
+            f"Server VmRSS: {rss_empty / 2**20:,.0f} MiB with the empty pool, "
+            f"{rss_ingested / 2**20:,.0f} MiB after ingest, "
+            + ", ".join(f"{rss / 2**20:,.0f} MiB {when}" for when, rss in rss_marks)
+            + f", {rss_end / 2**20:,.0f} MiB at the end."
+        )
+    if server.returncode != 0:
+        raise RuntimeError(
+            f"leadline serve exited with {server.returncode}:\n{server.log()[-4000:]}"
+        )
+    refit_lines = [
+        line.split("refit pool ", 1)[1]
+        for line in server.log().splitlines()
+        if "refit pool " in line
+    ]
+    if refit_lines:
+        notes.append("Server's own refit log: " + "; ".join(refit_lines) + ".")
+    report.wall_seconds = time.perf_counter() - started
+    return report
+
+
+# ---------------------------------------------------------------------------------------
+# output
+# ---------------------------------------------------------------------------------------
+def _machine() -> str:
+    cpu = platform.processor() or platform.machine()
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    try:
+        nproc = subprocess.run(["nproc"], capture_output=True, text=True, check=True).stdout.strip()
+    except (OSError, subprocess.CalledProcessError):
+        nproc = "unknown"
+    memory = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
+    return (
+        f"{cpu}, {os.cpu_count()} cores (`nproc` = {nproc}), {memory:.0f} GiB, "
+        f"{platform.system()} {platform.release()}"
+    )
+
+
+def _versions() -> str:
+    import grpc
+    import lightgbm
+
+    return (
+        f"Python {platform.python_version()}, numpy {np.__version__}, SQLite "
+        f"{sqlite3.sqlite_version}, grpcio {grpc.__version__}, LightGBM {lightgbm.__version__}"
+    )
+
+
+def render_section(report: SystemReport, *, command: str, quick: bool) -> str:
+    """The Markdown body of the system section."""
+    config = report.config
+    date = dt.datetime.now(dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
+    lines = [
+        f"## System benchmark{' (QUICK)' if quick else ''}",
+        "",
+        f"- Command: `{command}`",
+        f"- Date: {date}",
+        f"- Machine: {_machine()}",
+        f"- Software: {_versions()}",
+        f"- Wall time: {report.wall_seconds / 60:.1f} minutes",
+        f"- Pool: {config.items:,} items, {config.feature_dim} float32 features, "
+        f"{config.num_classes}-class probabilities, zero-one loss, {len(SEGMENT_NAMES)} "
+        f"segments; refit after every {config.refit_every_labels:,} labels.",
+        "",
+        "One `leadline serve` child process (fresh data directory, token auth, defaults "
+        "otherwise: one refit thread) and the benchmark process with the real client share "
+        "the machine; the bare figures run in the benchmark process while the server is "
+        "idle. Ratios are leadline / baseline of the same run: above 1 means leadline "
+        "takes longer (or, for ingest rate, is faster). Latencies are wall-clock times "
+        "seen by the client, median / p95 in ms; the ratio uses the medians. Absolute "
+        "times on this shared machine are noisy; compare ratios.",
+        "",
+        format_table(report.rows),
+        "",
+    ]
+    if report.notes:
+        lines += ["Details measured in the same run:", ""]
+        lines += [f"- {note}" for note in report.notes]
+        lines.append("")
+    return "\n".join(lines)
+
+
+def _parse(argv: Sequence[str] | None) -> argparse.Namespace:
+    parser = argparse.ArgumentParser(description=(__doc__ or "").splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="100,000 items, fewer repetitions")
+    parser.add_argument("--items", type=int, default=None, help="override the pool size")
+    parser.add_argument("--output", type=Path, default=None, help="markdown file to write")
+    parser.add_argument("--workdir", type=Path, default=None, help="keep server files here")
+    return parser.parse_args(argv)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = _parse(argv)
+    logging.basicConfig(level=logging.WARNING)
+    quick = bool(args.quick)
+    config = QUICK if quick else FULL
+    if args.items is not None:
+        config = SystemConfig(**{**config.__dict__, "items": args.items})
+    output = args.output or (
+        _ROOT / "bench-out" / "system-quick.md" if quick else _ROOT / "BENCHMARKS.md"
+    )
+    print(f"system benchmark ({'QUICK: ' if quick else ''}{config.items:,} items)", flush=True)
+    if args.workdir is not None:
+        args.workdir.mkdir(parents=True, exist_ok=True)
+        report = run_system_benchmark(config, args.workdir)
+    else:
+        with tempfile.TemporaryDirectory(prefix="leadline-system-") as tmp:
+            report = run_system_benchmark(config, Path(tmp))
+    print()
+    print(format_table(report.rows))
+    for note in report.notes:
+        print(f"- {note}")
+    command = "python benchmarks/system.py " + " ".join(
+        shlex.quote(a) for a in (sys.argv[1:] if argv is None else argv)
+    )
+    body = render_section(report, command=command.strip(), quick=quick)
+    output.parent.mkdir(parents=True, exist_ok=True)
+    replace_section(output, SECTION, body)
+    print(f"\nwrote the {SECTION} section of {output} ({report.wall_seconds / 60:.1f} minutes)")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
