@@ -35,6 +35,7 @@ from __future__ import annotations
 
 import json
 import logging
+import threading
 from dataclasses import dataclass
 from typing import Any
 
@@ -43,6 +44,13 @@ import numpy as np
 
 from ._checks import check_finite_array, describe
 from .losses import CROSS_ENTROPY_CLIP, LossKind, LossSpec
+
+# LightGBM's native code is called one call at a time in this process. A server scores
+# ingest batches on request threads while a background refit trains: a full test run once
+# died with a segmentation fault in a native thread while a Dataset was being built on one
+# thread and a Booster predicted on another. Holding this lock per call (never across a
+# whole pool: callers score in chunks) costs little on two cores and removes the overlap.
+_NATIVE_CALLS = threading.Lock()
 
 __all__ = [
     "Surrogate",
@@ -167,8 +175,10 @@ class Surrogate:
                 pi = _class_probabilities(booster, x, out, self._seen_classes, init)
                 first, second = self.spec.expected_losses(out, pi)
             else:
-                mean = out + booster.predict(x)
-                raw = np.maximum(self._variance_boosters[index].predict(x), 0.0)
+                with _NATIVE_CALLS:
+                    mean = out + booster.predict(x)
+                    raw_variance = self._variance_boosters[index].predict(x)
+                raw = np.maximum(raw_variance, 0.0)
                 variance = np.maximum(raw - (mean - out) ** 2, _REGRESSION_SPREAD_FLOOR * raw)
                 first, second = self.spec.expected_losses(out, (mean, variance))
             firsts.append(first)
@@ -236,14 +246,17 @@ class Surrogate:
                 f"surrogate was fitted for loss {describe(envelope['loss_kind'])} with "
                 f"{envelope['num_classes']} classes, spec is {describe(spec)}."
             )
+        with _NATIVE_CALLS:
+            boosters = tuple(lgb.Booster(model_str=s) for s in envelope["boosters"])
+            variance_boosters = tuple(
+                lgb.Booster(model_str=s) for s in envelope["variance_boosters"]
+            )
         return cls(
             spec,
             version=envelope["version"],
             label_count=envelope["label_count"],
-            boosters=tuple(lgb.Booster(model_str=s) for s in envelope["boosters"]),
-            variance_boosters=tuple(
-                lgb.Booster(model_str=s) for s in envelope["variance_boosters"]
-            ),
+            boosters=boosters,
+            variance_boosters=variance_boosters,
             seen_classes=tuple(int(c) for c in envelope["seen_classes"]),
             feature_dim=int(envelope["feature_dim"]),
             temperature=float(envelope["temperature"]),
@@ -313,7 +326,8 @@ def _class_probabilities(
     seen: tuple[int, ...],
     init: np.ndarray,
 ) -> np.ndarray:
-    raw = booster.predict(x, raw_score=True) + init
+    with _NATIVE_CALLS:
+        raw = booster.predict(x, raw_score=True) + init
     raw = raw - raw.max(axis=1, keepdims=True)
     learned = np.exp(raw)
     k = outputs.shape[1]
@@ -353,6 +367,19 @@ def _params(settings: SurrogateSettings, objective: str, seed: int, **extra: obj
 
 
 def _train(
+    params: dict,
+    x: np.ndarray,
+    y: np.ndarray,
+    init: np.ndarray | None,
+    *,
+    settings: SurrogateSettings,
+    rng: np.random.Generator,
+) -> lgb.Booster:
+    with _NATIVE_CALLS:
+        return _train_unlocked(params, x, y, init, settings=settings, rng=rng)
+
+
+def _train_unlocked(
     params: dict,
     x: np.ndarray,
     y: np.ndarray,
