@@ -43,6 +43,7 @@ import urllib.request
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any, TypeVar
 
 import numpy as np
 
@@ -69,6 +70,7 @@ from leadline.service.estimation import (  # noqa: E402
     selection_probabilities,
     usefulness,
 )
+from leadline.v1 import leadline_pb2  # noqa: E402
 
 __all__ = [
     "FULL",
@@ -87,6 +89,7 @@ __all__ = [
 ]
 
 _LOG = logging.getLogger("benchmarks.system")
+_T = TypeVar("_T")
 
 SECTION = "system-benchmark"
 POOL_ID = "parcel-sorting"
@@ -188,6 +191,8 @@ class SystemReport:
     rows: list[Row] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
     wall_seconds: float = 0.0
+    load_before: str = ""  # /proc/loadavg (1, 5, 15 minutes) when the run started
+    load_after: str = ""
 
 
 def _latency(samples: Sequence[float]) -> Figure:
@@ -434,115 +439,104 @@ class ServerProcess:
 # ---------------------------------------------------------------------------------------
 # measurements
 # ---------------------------------------------------------------------------------------
-def _timed(calls: int, call: Callable[[], object]) -> list[float]:
-    samples = []
-    for _ in range(calls):
-        started = time.perf_counter()
-        call()
-        samples.append(time.perf_counter() - started)
-    return samples
+def _timed(call: Callable[[], object]) -> float:
+    started = time.perf_counter()
+    call()
+    return time.perf_counter() - started
 
 
-def measure_ingest(client: Client, data: SyntheticPool, *, batch_rows: int) -> list[float]:
-    """Send the pool through IngestItems, one message per ``batch_rows`` rows; the
-    seconds of each call (client-side message building included)."""
-    segments = data.segments
-    n = len(data.item_ids)
-    durations = []
-    for start in range(0, n, batch_rows):
-        stop = min(n, start + batch_rows)
+class _Meter:
+    """Times calls to the server: wall seconds per call, plus the CPU seconds this
+    process (the client) and the server process spent while they ran, plus the time the
+    server's own handler took (from its metrics page, scraped before and after)."""
+
+    def __init__(self, server: ServerProcess) -> None:
+        self._server = server
+        self._handlers = server.handler_seconds()
+        self.samples: list[float] = []
+        self.client_cpu = 0.0
+        self.server_cpu = 0.0
+
+    def __call__(self, call: Callable[[], _T]) -> _T:
+        client, server = time.process_time(), self._server.cpu_seconds()
         started = time.perf_counter()
-        result = client.ingest(
-            POOL_ID,
-            data.item_ids[start:stop],
-            data.features[start:stop],
-            data.outputs[start:stop],
-            segments=segments[start:stop],
-            event_time_ms=data.event_time_ms[start:stop],
+        result = call()
+        self.samples.append(time.perf_counter() - started)
+        self.client_cpu += time.process_time() - client
+        self.server_cpu += self._server.cpu_seconds() - server
+        return result
+
+    def summary(self, method: str, what: str) -> str:
+        """One sentence for the notes (scrapes the metrics page: call between phases)."""
+        total, calls = self._server.handler_seconds().get(method, (0.0, 0))
+        total0, calls0 = self._handlers.get(method, (0.0, 0))
+        wall = sum(self.samples)
+        text = (
+            f"{what}: {len(self.samples)} calls, {wall:.2f} s in total; CPU meanwhile: "
+            f"server {self.server_cpu:.2f} s, client {self.client_cpu:.2f} s"
         )
-        durations.append(time.perf_counter() - started)
-        if result.accepted != stop - start or result.messages != 1:
-            raise RuntimeError(
-                f"ingest of rows {start}..{stop}: accepted {result.accepted} in "
-                f"{result.messages} messages, expected {stop - start} in 1"
+        if calls > calls0:
+            text += (
+                f"; mean per call {1000 * wall / len(self.samples):.3g} ms seen by the client,"
+                f" {1000 * (total - total0) / (calls - calls0):.3g} ms in the server's handler"
             )
-    return durations
+        return text + "."
 
 
-def sqlite_insert_durations(data: SyntheticPool, path: Path, *, batch_rows: int) -> list[float]:
+def ingest_batch(client: Client, data: SyntheticPool, segments: list[str], part: slice) -> None:
+    """Rows ``part`` through IngestItems as one message (client-side building included)."""
+    result = client.ingest(
+        POOL_ID,
+        data.item_ids[part],
+        data.features[part],
+        data.outputs[part],
+        segments=segments[part],
+        event_time_ms=data.event_time_ms[part],
+    )
+    expected = part.stop - part.start
+    if result.accepted != expected or result.messages != 1:
+        raise RuntimeError(
+            f"ingest of rows {part.start}..{part.stop}: accepted {result.accepted} in "
+            f"{result.messages} messages, expected {expected} in 1"
+        )
+
+
+class BareSqlite:
     """Bare stdlib sqlite3: the same rows (id, float32 blobs, segment, time) in WAL mode
-    with synchronous=FULL, one transaction per ``batch_rows`` rows; seconds per batch."""
-    connection = sqlite3.connect(path, isolation_level=None)
-    try:
-        connection.execute("PRAGMA journal_mode=WAL")
-        connection.execute("PRAGMA synchronous=FULL")
-        connection.execute(
+    with synchronous=FULL, one transaction per :meth:`insert` call."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        self._connection = sqlite3.connect(path, isolation_level=None)
+        self._connection.execute("PRAGMA journal_mode=WAL")
+        self._connection.execute("PRAGMA synchronous=FULL")
+        self._connection.execute(
             "CREATE TABLE items (row INTEGER PRIMARY KEY, item_id TEXT NOT NULL, "
             "features BLOB NOT NULL, outputs BLOB NOT NULL, segment TEXT NOT NULL, "
             "event_time_ms INTEGER NOT NULL)"
         )
-        segments = data.segments
-        n = len(data.item_ids)
-        durations = []
-        for start in range(0, n, batch_rows):
-            stop = min(n, start + batch_rows)
-            started = time.perf_counter()
-            rows = [
-                (
-                    i,
-                    data.item_ids[i],
-                    data.features[i].tobytes(),
-                    data.outputs[i].tobytes(),
-                    segments[i],
-                    int(data.event_time_ms[i]),
-                )
-                for i in range(start, stop)
-            ]
-            connection.execute("BEGIN")
-            connection.executemany("INSERT INTO items VALUES (?, ?, ?, ?, ?, ?)", rows)
-            connection.execute("COMMIT")
-            durations.append(time.perf_counter() - started)
-    finally:
-        connection.close()
-    return durations
 
+    def insert(self, data: SyntheticPool, segments: list[str], part: slice) -> None:
+        rows = [
+            (
+                i,
+                data.item_ids[i],
+                data.features[i].tobytes(),
+                data.outputs[i].tobytes(),
+                segments[i],
+                int(data.event_time_ms[i]),
+            )
+            for i in range(part.start, part.stop)
+        ]
+        self._connection.execute("BEGIN")
+        self._connection.executemany("INSERT INTO items VALUES (?, ?, ?, ?, ?, ?)", rows)
+        self._connection.execute("COMMIT")
 
-def _cold_scores(spec: LossSpec, data: SyntheticPool) -> SurrogateScores:
-    return cold_start_surrogate(spec).score(data.features, data.outputs)
-
-
-def numpy_choice_samples(
-    probabilities: np.ndarray, count: int, calls: int, rng: np.random.Generator
-) -> list[float]:
-    """``Generator.choice(n, count, replace=False, p=...)`` over the whole pool."""
-    n = probabilities.shape[0]
-    return _timed(calls, lambda: rng.choice(n, size=count, replace=False, p=probabilities))
-
-
-def draw_batch_samples(
-    scores: SurrogateScores,
-    codes: np.ndarray,
-    count: int,
-    calls: int,
-    rng: np.random.Generator,
-    *,
-    loss_bound: float,
-) -> list[float]:
-    """The core's ``draw_batch`` alone, same candidates, floor and segment groups."""
-    useful = usefulness(scores)
-    return _timed(
-        calls,
-        lambda: draw_batch(
-            useful,
-            scores.expected_loss,
-            count,
-            floor=SELECTION_FLOOR,
-            loss_bound=loss_bound,
-            rng=rng,
-            groups=codes,
-            num_groups=len(SEGMENT_NAMES),
-        ),
-    )
+    def close(self) -> None:
+        """Close and delete the database files."""
+        self._connection.close()
+        for suffix in ("", "-wal", "-shm"):
+            Path(f"{self.path}{suffix}").unlink(missing_ok=True)
 
 
 def _estimate_terms(
@@ -628,45 +622,6 @@ def _wait_for_version(client: Client, above: int, timeout: float) -> tuple[float
     raise RuntimeError(f"surrogate_version stayed <= {above} for {timeout} s")
 
 
-@dataclass(frozen=True)
-class _Usage:
-    """Clocks at one moment: wall, this process's CPU (the client), the server's CPU."""
-
-    wall: float
-    client_cpu: float
-    server_cpu: float
-    handlers: dict[str, tuple[float, int]]
-
-    @classmethod
-    def before(cls, server: ServerProcess) -> _Usage:
-        """Scrape first, then read the clocks: the scrape stays out of the phase."""
-        handlers = server.handler_seconds()
-        return cls(time.perf_counter(), time.process_time(), server.cpu_seconds(), handlers)
-
-    @classmethod
-    def after(cls, server: ServerProcess) -> _Usage:
-        """Read the clocks first, then scrape."""
-        wall, client, cpu = time.perf_counter(), time.process_time(), server.cpu_seconds()
-        return cls(wall, client, cpu, server.handler_seconds())
-
-    def since(self, earlier: _Usage, method: str, what: str) -> str:
-        """One sentence: wall and CPU seconds of both processes, server-side call time."""
-        total, calls = self.handlers.get(method, (0.0, 0))
-        total0, calls0 = earlier.handlers.get(method, (0.0, 0))
-        calls -= calls0
-        wall = self.wall - earlier.wall
-        text = (
-            f"{what}: wall {wall:.2f} s; CPU: server {self.server_cpu - earlier.server_cpu:.2f}"
-            f" s, benchmark process (client) {self.client_cpu - earlier.client_cpu:.2f} s"
-        )
-        if calls:
-            text += (
-                f"; {calls} {method} calls, mean {1000 * wall / calls:.3g} ms seen by the "
-                f"client, {1000 * (total - total0) / calls:.3g} ms inside the server's handler"
-            )
-        return text + "."
-
-
 def _progress(message: str) -> None:
     print(f"  {message}", file=sys.stderr, flush=True)
 
@@ -674,29 +629,293 @@ def _progress(message: str) -> None:
 # ---------------------------------------------------------------------------------------
 # the run
 # ---------------------------------------------------------------------------------------
+@dataclass
+class _Run:
+    """What the phases share: config, data, the server, its client, the report."""
+
+    config: SystemConfig
+    data: SyntheticPool
+    spec: LossSpec
+    server: ServerProcess
+    client: Client
+    report: SystemReport
+    rng: np.random.Generator
+    say: Callable[[str], None]
+    segments: list[str] = field(default_factory=list)
+    assignments: list[leadline_pb2.Assignment] = field(default_factory=list)
+    rss: list[tuple[str, int]] = field(default_factory=list)
+
+    @property
+    def n(self) -> int:
+        return self.config.items
+
+    def mark_memory(self, when: str) -> int:
+        rss = self.server.rss_bytes()
+        self.rss.append((when, rss))
+        return rss
+
+
+def _ingest_phase(run: _Run, workdir: Path) -> None:
+    """Each batch goes to the bare database, then to the server: load drift on the shared
+    machine hits both sides alike."""
+    config, data = run.config, run.data
+    meter = _Meter(run.server)
+    bare = BareSqlite(workdir / "bare-sqlite.db")
+    bare_samples = []
+    try:
+        for start in range(0, run.n, config.batch_rows):
+            part = slice(start, min(run.n, start + config.batch_rows))
+            bare_samples.append(_timed(lambda part=part: bare.insert(data, run.segments, part)))
+            meter(lambda part=part: ingest_batch(run.client, data, run.segments, part))
+    finally:
+        bare.close()
+    samples = meter.samples
+    rate, bare_rate = run.n / sum(samples), run.n / sum(bare_samples)
+    run.report.rows.append(
+        Row(
+            f"ingest, {config.batch_rows:,}-row batches, {config.feature_dim} features, "
+            f"{config.num_classes} classes",
+            _rate(rate),
+            "sqlite3 insert of the same rows (float32 blobs), WAL, synchronous=FULL, "
+            f"one transaction per {config.batch_rows:,} rows",
+            _rate(bare_rate),
+        )
+    )
+    notes = run.report.notes
+    notes.append(meter.summary("IngestItems", f"IngestItems ({config.batch_rows:,} rows each)"))
+    ms, bare_ms = np.asarray(samples) * 1000.0, np.asarray(bare_samples) * 1000.0
+    notes.append(
+        f"Time per {config.batch_rows:,}-row batch, median / p95 / max: leadline "
+        f"{np.median(ms):.1f} / {np.percentile(ms, 95):.1f} / {ms.max():.0f} ms, sqlite3 "
+        f"{np.median(bare_ms):.1f} / {np.percentile(bare_ms, 95):.1f} / {bare_ms.max():.0f} ms."
+    )
+    tenth = max(1, len(samples) // 10)
+    rows = tenth * config.batch_rows
+    notes.append(
+        f"Ingest rate over the first / last tenth of the batches: "
+        f"{rows / sum(samples[:tenth]):,.0f} / {rows / sum(samples[-tenth:]):,.0f} rows/s "
+        f"(leadline), {rows / sum(bare_samples[:tenth]):,.0f} / "
+        f"{rows / sum(bare_samples[-tenth:]):,.0f} rows/s (sqlite3)."
+    )
+    run.say(f"ingest: {rate:,.0f} rows/s (bare sqlite3 {bare_rate:,.0f})")
+
+
+def _acquire_phase(run: _Run, scores: SurrogateScores) -> None:
+    """Server call, numpy draw, core draw, in turn, ``acquire_calls`` times per count."""
+    config, rng = run.config, run.rng
+    probabilities = selection_probabilities(usefulness(scores), floor=SELECTION_FLOOR)
+    useful = usefulness(scores)
+    for count in config.acquire_counts:
+        meter = _Meter(run.server)
+        numpy_samples, core_samples = [], []
+        for _ in range(config.acquire_calls):
+            got = meter(lambda count=count: run.client.acquire(POOL_ID, count, labeler=LABELER))
+            if len(got) != count:
+                raise RuntimeError(f"AcquireItems({count}) returned {len(got)} items")
+            run.assignments.extend(got)
+            numpy_samples.append(
+                _timed(
+                    lambda count=count: rng.choice(
+                        run.n, size=count, replace=False, p=probabilities
+                    )
+                )
+            )
+            core_samples.append(
+                _timed(
+                    lambda count=count: draw_batch(
+                        useful,
+                        scores.expected_loss,
+                        count,
+                        floor=SELECTION_FLOOR,
+                        loss_bound=run.spec.bound,
+                        rng=rng,
+                        groups=run.data.segment_codes,  # one group per segment, as the server
+                        num_groups=len(SEGMENT_NAMES),
+                    )
+                )
+            )
+        label = (
+            f"AcquireItems, count {count}, {run.n:,}-item pool, median / p95 of "
+            f"{config.acquire_calls} calls"
+        )
+        figure = _latency(meter.samples)
+        run.report.rows.append(
+            Row(
+                label,
+                figure,
+                f"numpy Generator.choice(p=..., replace=False), {count} of {run.n:,} weights",
+                _latency(numpy_samples),
+            )
+        )
+        run.report.rows.append(
+            Row(
+                label,
+                figure,
+                "core draw_batch alone (same scores, floor, segments)",
+                _latency(core_samples),
+            )
+        )
+        run.report.notes.append(meter.summary("AcquireItems", f"AcquireItems count {count}"))
+        run.say(f"acquire {count}: {figure.text}")
+
+
+def _submit_true_labels(run: _Run, assignments: Sequence[leadline_pb2.Assignment]) -> None:
+    data = run.data
+    for start in range(0, len(assignments), 1_000):
+        part = assignments[start : start + 1_000]
+        run.client.submit_labels(
+            POOL_ID,
+            {a.assignment_id: int(data.labels[data.row_of(a.item_id)]) for a in part},
+            labeler=LABELER,
+        )
+
+
+def _refit_phase(run: _Run) -> None:
+    """Refit k is triggered by label k * refit_every_labels; the bare fit + scoring on the
+    same rows runs before the server's refit for odd k, after it for even k."""
+    config = run.config
+    labeled_rows: list[int] = []
+    version = run.client.get_pool(POOL_ID).surrogate_version
+    for k in range(1, config.refits + 1):
+        target = k * config.refit_every_labels
+        chunk = run.assignments[len(labeled_rows) : target]
+        labeled_rows.extend(run.data.row_of(a.item_id) for a in chunk)
+        _submit_true_labels(run, chunk[:-1])
+        if run.client.get_pool(POOL_ID).surrogate_version != version:
+            raise RuntimeError("a refit started before the triggering label")
+
+        def bare(k: int = k) -> tuple[float, float]:
+            return bare_refit_seconds(
+                run.spec, run.data, np.array(labeled_rows), version=k, seed=config.seed + k
+            )
+
+        if k % 2:
+            fit_s, score_s = bare()
+        clock = time.perf_counter()
+        _submit_true_labels(run, chunk[-1:])
+        done, version = _wait_for_version(run.client, version, config.refit_timeout)
+        run.mark_memory(f"after refit {k}")
+        if not k % 2:
+            fit_s, score_s = bare()
+        run.report.rows.append(
+            Row(
+                f"refit + rescoring of {run.n:,} items after {target:,} labels (label sent "
+                "-> Pool.surrogate_version increased)",
+                _seconds(done - clock),
+                "core fit_surrogate + Surrogate.score of every item, same arrays",
+                _seconds(fit_s + score_s),
+            )
+        )
+        run.report.notes.append(
+            f"Bare refit after {target:,} labels: fit_surrogate {fit_s:.2f} s, "
+            f"Surrogate.score of {run.n:,} items {score_s:.2f} s."
+        )
+        run.say(f"refit {k}: {done - clock:.2f} s (bare {fit_s + score_s:.2f} s)")
+
+
+def _estimate_phase(run: _Run, scores: SurrogateScores) -> None:
+    """Per repetition: one AcquireItems(1) (a change: every cached estimate goes), then
+    per scope a first and a cached GetEstimate, then one bare estimate_risk."""
+    config, client = run.config, run.client
+    times = run.data.event_time_ms
+    window = (int(times[run.n // 3]), int(times[2 * run.n // 3]))
+    scopes: dict[str, dict[str, Any]] = {
+        "whole pool": {},
+        f"segment {SEGMENT_NAMES[0]!r}": {"segment": SEGMENT_NAMES[0]},
+        "time window (middle third)": {"start_time_ms": window[0], "end_time_ms": window[1]},
+    }
+    pool = client.get_pool(POOL_ID)
+    draws, labeled = int(pool.draw_count) + config.estimate_calls, int(pool.labeled_count)
+    terms, sums = _estimate_terms(
+        run.spec, run.data, scores, draws=draws, labeled=labeled, rng=run.rng
+    )
+    first: dict[str, list[float]] = {name: [] for name in scopes}
+    cached: dict[str, list[float]] = {name: [] for name in scopes}
+    core: list[float] = []
+    for _ in range(config.estimate_calls):
+        client.acquire(POOL_ID, 1, labeler=LABELER)
+        for name, scope in scopes.items():
+            first[name].append(_timed(lambda scope=scope: client.get_estimate(POOL_ID, **scope)))
+            cached[name].append(_timed(lambda scope=scope: client.get_estimate(POOL_ID, **scope)))
+        core.append(
+            _timed(
+                lambda: estimate_risk(
+                    terms,
+                    sums,
+                    mode=EstimatorMode.BALANCED,
+                    confidence=CONFIDENCE,
+                    loss_bound=run.spec.bound,
+                )
+            )
+        )
+    whole = client.get_estimate(POOL_ID)
+    if whole.labels_used != labeled or whole.items_in_scope != run.n:
+        raise RuntimeError(f"unexpected whole-pool estimate: {whole}")
+    if whole.labels_pending + whole.labels_used != draws:
+        raise RuntimeError(
+            f"the server holds {whole.labels_pending} pending draws, expected {draws - labeled}"
+        )
+    baseline = f"core estimate_risk alone (BALANCED), {draws:,} draws, {labeled:,} labeled"
+    for name in scopes:
+        for kind, samples in (("cached", cached[name]), ("first after a change", first[name])):
+            run.report.rows.append(
+                Row(
+                    f"GetEstimate, {name}, {kind}, median / p95 of {len(samples)}",
+                    _latency(samples),
+                    baseline,
+                    _latency(core),
+                )
+            )
+    run.say("estimates done")
+
+
+def _memory_rows(run: _Run, empty: int, ingested: int, end: int) -> None:
+    config = run.config
+    raw = Figure(float(config.raw_bytes_per_item), f"{config.raw_bytes_per_item} B/item")
+    raw_name = (
+        f"raw arrays: float32 features + outputs ({config.feature_dim} + "
+        f"{config.num_classes}) x 4 B"
+    )
+    draws = run.client.get_pool(POOL_ID).draw_count
+    run.report.rows.append(
+        Row(
+            "server resident memory per item after ingest (VmRSS growth / items)",
+            _bytes_per_item((ingested - empty) / run.n),
+            raw_name,
+            raw,
+        )
+    )
+    run.report.rows.append(
+        Row(
+            f"... at the end ({draws:,} draws, {config.refits} refits)",
+            _bytes_per_item((end - empty) / run.n),
+            raw_name,
+            raw,
+        )
+    )
+    run.report.notes.append(
+        "Server VmRSS: "
+        + ", ".join(f"{rss / 2**20:,.0f} MiB {when}" for when, rss in run.rss)
+        + "."
+    )
+
+
 def run_system_benchmark(
     config: SystemConfig, workdir: Path, *, progress: bool = True
 ) -> SystemReport:
-    """Every measurement of the table, in an order that keeps the phases apart (no refit
-    runs while latencies are taken; the bare figures run while the server is idle)."""
+    """Every measurement of the table. Phases run one after the other (no refit runs
+    while latencies are taken); within a phase, server calls and bare figures alternate."""
     say = _progress if progress else (lambda message: None)
     started = time.perf_counter()
-    report = SystemReport(config=config)
-    rows, notes = report.rows, report.notes
-    n = config.items
-    rng = np.random.default_rng(config.seed)
+    report = SystemReport(config=config, load_before=_load_average())
     spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=config.num_classes)
     data = make_pool_data(
-        n, feature_dim=config.feature_dim, num_classes=config.num_classes, seed=config.seed
+        config.items,
+        feature_dim=config.feature_dim,
+        num_classes=config.num_classes,
+        seed=config.seed,
     )
-    say(f"data: {n:,} items generated")
-
-    sqlite_path = workdir / "bare-sqlite.db"
-    bare_ingest = sqlite_insert_durations(data, sqlite_path, batch_rows=config.batch_rows)
-    for suffix in ("", "-wal", "-shm"):
-        Path(f"{sqlite_path}{suffix}").unlink(missing_ok=True)
-    say(f"bare SQLite insert: {n / sum(bare_ingest):,.0f} rows/s")
-
+    say(f"data: {config.items:,} items generated")
     server = ServerProcess(
         workdir / "server",
         # Only the label count triggers refits, so each refit is the one we time.
@@ -721,222 +940,28 @@ def run_system_benchmark(
             loss="zero-one",
             refit_every_labels=config.refit_every_labels,
         )
-        rss_empty = server.rss_bytes()
-
-        # -- ingest ---------------------------------------------------------------------
-        before = _Usage.before(server)
-        ingest = measure_ingest(client, data, batch_rows=config.batch_rows)
-        notes.append(_Usage.after(server).since(before, "IngestItems", "Ingest"))
-        rss_ingested = server.rss_bytes()
-        rate, bare_rate = n / sum(ingest), n / sum(bare_ingest)
-        rows.append(
-            Row(
-                f"ingest, {config.batch_rows:,}-row batches, {config.feature_dim} features, "
-                f"{config.num_classes} classes",
-                _rate(rate),
-                f"sqlite3 insert of the same rows (float32 blobs), WAL, synchronous=FULL, "
-                f"one transaction per {config.batch_rows:,} rows",
-                _rate(bare_rate),
-            )
+        run = _Run(
+            config=config,
+            data=data,
+            spec=spec,
+            server=server,
+            client=client,
+            report=report,
+            rng=np.random.default_rng(config.seed),
+            say=say,
+            segments=data.segments,
         )
-        batch_ms = np.asarray(ingest) * 1000.0
-        bare_ms = np.asarray(bare_ingest) * 1000.0
-        notes.append(
-            f"Time per {config.batch_rows:,}-row batch, median / p95 / max: leadline "
-            f"{np.median(batch_ms):.1f} / {np.percentile(batch_ms, 95):.1f} / "
-            f"{batch_ms.max():.0f} ms, sqlite3 {np.median(bare_ms):.1f} / "
-            f"{np.percentile(bare_ms, 95):.1f} / {bare_ms.max():.0f} ms."
-        )
-        tenth = max(1, len(ingest) // 10)
-        notes.append(
-            f"Ingest rate over the first / last tenth of the batches: "
-            f"{tenth * config.batch_rows / sum(ingest[:tenth]):,.0f} / "
-            f"{tenth * config.batch_rows / sum(ingest[-tenth:]):,.0f} rows/s (leadline), "
-            f"{tenth * config.batch_rows / sum(bare_ingest[:tenth]):,.0f} / "
-            f"{tenth * config.batch_rows / sum(bare_ingest[-tenth:]):,.0f} rows/s (sqlite3)."
-        )
-        say(f"ingest: {rate:,.0f} rows/s")
-
-        # -- AcquireItems ---------------------------------------------------------------
-        scores = _cold_scores(spec, data)
-        probabilities = selection_probabilities(usefulness(scores), floor=SELECTION_FLOOR)
-        codes = data.segment_codes  # one group per segment tag, as the server keeps
-        assignments = []
-        for count in config.acquire_counts:
-            got: list[list[object]] = []
-
-            def acquire(count: int = count, got: list[list[object]] = got) -> None:
-                got.append(list(client.acquire(POOL_ID, count, labeler=LABELER)))
-
-            before = _Usage.before(server)
-            samples = _timed(config.acquire_calls, acquire)
-            notes.append(
-                _Usage.after(server).since(before, "AcquireItems", f"AcquireItems count {count}")
-            )
-            for batch in got:
-                if len(batch) != count:
-                    raise RuntimeError(f"AcquireItems({count}) returned {len(batch)} items")
-                assignments.extend(batch)
-            server_figure = _latency(samples)
-            label = (
-                f"AcquireItems, count {count}, {n:,}-item pool, median / p95 of "
-                f"{config.acquire_calls} calls"
-            )
-            numpy_figure = _latency(
-                numpy_choice_samples(probabilities, count, config.acquire_calls, rng)
-            )
-            rows.append(
-                Row(
-                    label,
-                    server_figure,
-                    f"numpy Generator.choice(p=..., replace=False), {count} of {n:,} weights",
-                    numpy_figure,
-                )
-            )
-            core_figure = _latency(
-                draw_batch_samples(
-                    scores, codes, count, config.acquire_calls, rng, loss_bound=spec.bound
-                )
-            )
-            rows.append(Row(label, server_figure, "core draw_batch alone", core_figure))
-            say(f"acquire {count}: {server_figure.text}")
-
-        rss_marks = [("after the acquire phase", server.rss_bytes())]
-
-        # -- refit + rescoring ----------------------------------------------------------
-        labeled_rows: list[int] = []
-        version = client.get_pool(POOL_ID).surrogate_version
-        for k in range(1, config.refits + 1):
-            target = k * config.refit_every_labels
-            chunk = assignments[len(labeled_rows) : target]
-            head, trigger = chunk[:-1], chunk[-1]
-            for start in range(0, len(head), 1_000):
-                part = head[start : start + 1_000]
-                client.submit_labels(
-                    POOL_ID,
-                    {a.assignment_id: int(data.labels[data.row_of(a.item_id)]) for a in part},
-                    labeler=LABELER,
-                )
-            if client.get_pool(POOL_ID).surrogate_version != version:
-                raise RuntimeError("a refit started before the triggering label")
-            clock = time.perf_counter()
-            client.submit_labels(
-                POOL_ID,
-                {trigger.assignment_id: int(data.labels[data.row_of(trigger.item_id)])},
-                labeler=LABELER,
-            )
-            done, version = _wait_for_version(client, version, config.refit_timeout)
-            rss_marks.append((f"after refit {k}", server.rss_bytes()))
-            labeled_rows.extend(data.row_of(a.item_id) for a in chunk)
-            fit_s, score_s = bare_refit_seconds(
-                spec, data, np.array(labeled_rows), version=version, seed=config.seed + k
-            )
-            rows.append(
-                Row(
-                    f"refit + rescoring of {n:,} items after {target:,} labels (label sent "
-                    "-> Pool.surrogate_version increased)",
-                    _seconds(done - clock),
-                    "core fit_surrogate + Surrogate.score of every item, same arrays",
-                    _seconds(fit_s + score_s),
-                )
-            )
-            notes.append(
-                f"Bare refit after {target:,} labels: fit_surrogate {fit_s:.2f} s, "
-                f"Surrogate.score of {n:,} items {score_s:.2f} s."
-            )
-            say(f"refit {k}: {done - clock:.2f} s (bare {fit_s + score_s:.2f} s)")
-
-        # -- GetEstimate ----------------------------------------------------------------
-        times = data.event_time_ms
-        window = (int(times[n // 3]), int(times[2 * n // 3]))
-        scopes = {
-            "whole pool": {},
-            f"segment {SEGMENT_NAMES[0]!r}": {"segment": SEGMENT_NAMES[0]},
-            "time window (middle third)": {"start_time_ms": window[0], "end_time_ms": window[1]},
-        }
-        first: dict[str, list[float]] = {name: [] for name in scopes}
-        cached: dict[str, list[float]] = {name: [] for name in scopes}
-        for _ in range(config.estimate_calls):
-            client.acquire(POOL_ID, 1, labeler=LABELER)  # a change: every cache entry goes
-            for name, scope in scopes.items():
-                first[name].extend(
-                    _timed(1, lambda scope=scope: client.get_estimate(POOL_ID, **scope))
-                )
-                cached[name].extend(
-                    _timed(1, lambda scope=scope: client.get_estimate(POOL_ID, **scope))
-                )
-        pool = client.get_pool(POOL_ID)
-        whole = client.get_estimate(POOL_ID)
-        if whole.labels_used != pool.labeled_count or whole.items_in_scope != n:
-            raise RuntimeError(f"unexpected whole-pool estimate: {whole}")
-        terms, sums = _estimate_terms(
-            spec,
-            data,
-            scores,
-            draws=int(pool.draw_count),
-            labeled=int(pool.labeled_count),
-            rng=rng,
-        )
-        core = _latency(
-            _timed(
-                config.estimate_calls,
-                lambda: estimate_risk(
-                    terms,
-                    sums,
-                    mode=EstimatorMode.BALANCED,
-                    confidence=CONFIDENCE,
-                    loss_bound=spec.bound,
-                ),
-            )
-        )
-        baseline_name = (
-            f"core estimate_risk alone (BALANCED), {pool.draw_count:,} draws, "
-            f"{pool.labeled_count:,} labeled"
-        )
-        for name in scopes:
-            for kind, samples in (("cached", cached[name]), ("first after a change", first[name])):
-                rows.append(
-                    Row(
-                        f"GetEstimate, {name}, {kind}, median / p95 of {len(samples)}",
-                        _latency(samples),
-                        baseline_name,
-                        core,
-                    )
-                )
-        say("estimates done")
-
-        # -- memory ---------------------------------------------------------------------
-        rss_end = server.rss_bytes()
-        raw = Figure(
-            float(config.raw_bytes_per_item),
-            f"{config.raw_bytes_per_item} B/item",
-        )
-        raw_name = (
-            f"raw arrays: float32 features + outputs ({config.feature_dim} + "
-            f"{config.num_classes}) x 4 B"
-        )
-        rows.append(
-            Row(
-                "server resident memory per item after ingest (VmRSS growth / items)",
-                _bytes_per_item((rss_ingested - rss_empty) / n),
-                raw_name,
-                raw,
-            )
-        )
-        rows.append(
-            Row(
-                f"... at the end ({pool.draw_count:,} draws, {config.refits} refits)",
-                _bytes_per_item((rss_end - rss_empty) / n),
-                raw_name,
-                raw,
-            )
-        )
-        notes.append(
-            f"Server VmRSS: {rss_empty / 2**20:,.0f} MiB with the empty pool, "
-            f"{rss_ingested / 2**20:,.0f} MiB after ingest, "
-            + ", ".join(f"{rss / 2**20:,.0f} MiB {when}" for when, rss in rss_marks)
-            + f", {rss_end / 2**20:,.0f} MiB at the end."
-        )
+        empty = run.mark_memory("with the empty pool")
+        _ingest_phase(run, workdir)
+        ingested = run.mark_memory("after ingest")
+        # The server's scores before the first refit: the core's label-free cold start.
+        scores = cold_start_surrogate(spec).score(data.features, data.outputs)
+        _acquire_phase(run, scores)
+        run.mark_memory("after the acquire phase")
+        _refit_phase(run)
+        _estimate_phase(run, scores)
+        end = run.mark_memory("at the end")
+        _memory_rows(run, empty, ingested, end)
     if server.returncode != 0:
         raise RuntimeError(
             f"leadline serve exited with {server.returncode}:\n{server.log()[-4000:]}"
@@ -947,9 +972,17 @@ def run_system_benchmark(
         if "refit pool " in line
     ]
     if refit_lines:
-        notes.append("Server's own refit log: " + "; ".join(refit_lines) + ".")
+        report.notes.append("Server's own refit log: " + "; ".join(refit_lines) + ".")
+    report.load_after = _load_average()
     report.wall_seconds = time.perf_counter() - started
     return report
+
+
+def _load_average() -> str:
+    try:
+        return " ".join(Path("/proc/loadavg").read_text().split()[:3])
+    except OSError:
+        return "unknown"
 
 
 # ---------------------------------------------------------------------------------------
@@ -996,16 +1029,20 @@ def render_section(report: SystemReport, *, command: str, quick: bool) -> str:
         f"- Date: {date}",
         f"- Machine: {_machine()}",
         f"- Software: {_versions()}",
-        f"- Wall time: {report.wall_seconds / 60:.1f} minutes",
+        f"- Wall time: {report.wall_seconds / 60:.1f} minutes; load average (1, 5, 15 min) "
+        f"{report.load_before} at the start, {report.load_after} at the end",
         f"- Pool: {config.items:,} items, {config.feature_dim} float32 features, "
         f"{config.num_classes}-class probabilities, zero-one loss, {len(SEGMENT_NAMES)} "
         f"segments; refit after every {config.refit_every_labels:,} labels.",
         "",
         "One `leadline serve` child process (fresh data directory, token auth, defaults "
         "otherwise: one refit thread) and the benchmark process with the real client share "
-        "the machine; the bare figures run in the benchmark process while the server is "
-        "idle. Ratios are leadline / baseline of the same run: above 1 means leadline "
-        "takes longer (or, for ingest rate, is faster). Latencies are wall-clock times "
+        "the machine. The bare figures run in the benchmark process while the server is "
+        "idle, alternating with the server calls (ingest batch by batch, AcquireItems and "
+        "GetEstimate call by call; the bare refit before the server's for odd refits, "
+        "after it for even ones), so that load from other processes hits both sides "
+        "alike. Ratios are leadline / baseline of the same run: above 1 means leadline "
+        "takes longer, or for the ingest rate, is faster. Latencies are wall-clock times "
         "seen by the client, median / p95 in ms; the ratio uses the medians. Absolute "
         "times on this shared machine are noisy; compare ratios.",
         "",
