@@ -42,6 +42,7 @@ import time
 import urllib.request
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from functools import partial
 from pathlib import Path
 from typing import Any, TypeVar
 
@@ -193,6 +194,7 @@ class SystemReport:
     wall_seconds: float = 0.0
     load_before: str = ""  # /proc/loadavg (1, 5, 15 minutes) when the run started
     load_after: str = ""
+    code: str = ""  # the commit measured (see _code_version)
 
 
 def _latency(samples: Sequence[float]) -> Figure:
@@ -276,7 +278,7 @@ def make_pool_data(n: int, *, feature_dim: int, num_classes: int, seed: int) -> 
         noise = rng.normal(0.0, 0.5, size=true_logits.shape)
         outputs[part] = _softmax(1.6 * true_logits + noise)
         cdf = np.cumsum(true_probs, axis=1)
-        draws = rng.random(cdf.shape[0])[:, None]
+        draws = rng.random((cdf.shape[0], 1))
         labels[part] = np.minimum((cdf < draws).sum(axis=1), num_classes - 1)
     outputs /= outputs.sum(axis=1, keepdims=True)
     return SyntheticPool(
@@ -665,8 +667,8 @@ def _ingest_phase(run: _Run, workdir: Path) -> None:
     try:
         for start in range(0, run.n, config.batch_rows):
             part = slice(start, min(run.n, start + config.batch_rows))
-            bare_samples.append(_timed(lambda part=part: bare.insert(data, run.segments, part)))
-            meter(lambda part=part: ingest_batch(run.client, data, run.segments, part))
+            bare_samples.append(_timed(partial(bare.insert, data, run.segments, part)))
+            meter(partial(ingest_batch, run.client, data, run.segments, part))
     finally:
         bare.close()
     samples = meter.samples
@@ -709,20 +711,17 @@ def _acquire_phase(run: _Run, scores: SurrogateScores) -> None:
         meter = _Meter(run.server)
         numpy_samples, core_samples = [], []
         for _ in range(config.acquire_calls):
-            got = meter(lambda count=count: run.client.acquire(POOL_ID, count, labeler=LABELER))
+            got = meter(partial(run.client.acquire, POOL_ID, count, labeler=LABELER))
             if len(got) != count:
                 raise RuntimeError(f"AcquireItems({count}) returned {len(got)} items")
             run.assignments.extend(got)
             numpy_samples.append(
-                _timed(
-                    lambda count=count: rng.choice(
-                        run.n, size=count, replace=False, p=probabilities
-                    )
-                )
+                _timed(partial(rng.choice, run.n, size=count, replace=False, p=probabilities))
             )
             core_samples.append(
                 _timed(
-                    lambda count=count: draw_batch(
+                    partial(
+                        draw_batch,
                         useful,
                         scores.expected_loss,
                         count,
@@ -835,8 +834,8 @@ def _estimate_phase(run: _Run, scores: SurrogateScores) -> None:
     for _ in range(config.estimate_calls):
         client.acquire(POOL_ID, 1, labeler=LABELER)
         for name, scope in scopes.items():
-            first[name].append(_timed(lambda scope=scope: client.get_estimate(POOL_ID, **scope)))
-            cached[name].append(_timed(lambda scope=scope: client.get_estimate(POOL_ID, **scope)))
+            first[name].append(_timed(partial(client.get_estimate, POOL_ID, **scope)))
+            cached[name].append(_timed(partial(client.get_estimate, POOL_ID, **scope)))
         core.append(
             _timed(
                 lambda: estimate_risk(
@@ -907,7 +906,7 @@ def run_system_benchmark(
     while latencies are taken); within a phase, server calls and bare figures alternate."""
     say = _progress if progress else (lambda message: None)
     started = time.perf_counter()
-    report = SystemReport(config=config, load_before=_load_average())
+    report = SystemReport(config=config, load_before=_load_average(), code=_code_version())
     spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=config.num_classes)
     data = make_pool_data(
         config.items,
@@ -1018,6 +1017,31 @@ def _versions() -> str:
     )
 
 
+def _code_version() -> str:
+    """The commit measured, and whether the server or client code differed from it."""
+    try:
+        commit = subprocess.run(
+            ["git", "rev-parse", "--short", "HEAD"],
+            cwd=_ROOT,
+            capture_output=True,
+            text=True,
+            check=True,
+        ).stdout.strip()
+        changed = subprocess.run(
+            ["git", "status", "--porcelain", "--", "service", "client", "proto"],
+            cwd=_ROOT,
+            capture_output=True,
+            text=True,
+            check=True,
+        ).stdout.split("\n")
+    except (OSError, subprocess.CalledProcessError):
+        return "unknown (no git)"
+    files = sorted({line[3:] for line in changed if line.strip()})
+    if not files:
+        return f"commit {commit}"
+    return f"commit {commit} with uncommitted changes in {', '.join(files)}"
+
+
 def render_section(report: SystemReport, *, command: str, quick: bool) -> str:
     """The Markdown body of the system section."""
     config = report.config
@@ -1028,6 +1052,7 @@ def render_section(report: SystemReport, *, command: str, quick: bool) -> str:
         f"- Command: `{command}`",
         f"- Date: {date}",
         f"- Machine: {_machine()}",
+        f"- Code: {report.code}",
         f"- Software: {_versions()}",
         f"- Wall time: {report.wall_seconds / 60:.1f} minutes; load average (1, 5, 15 min) "
         f"{report.load_before} at the start, {report.load_after} at the end",

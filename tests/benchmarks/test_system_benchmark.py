@@ -71,7 +71,7 @@ def test_harness_reports_every_row_against_a_real_server(tmp_path: Path) -> None
     assert table.count("\n") == len(report.rows) + 1  # header, rule, one line per row
     body = render_section(report, command="python benchmarks/system.py", quick=True)
     assert "- Command: `python benchmarks/system.py`" in body
-    assert "nproc" in body and "Wall time" in body
+    assert "nproc" in body and "Wall time" in body and "- Code: " in body
     assert table in body
 
 
