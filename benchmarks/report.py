@@ -10,6 +10,7 @@ likewise), and such costs are flagged.
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -106,6 +107,15 @@ def summarize(
     """Aggregate the repetitions of one scenario."""
     if not results:
         raise ValueError(f"scenario {scenario.name!r}: no repetitions to summarize.")
+    with warnings.catch_warnings():
+        # Methods not run (experiments) are all-NaN rows: their means are NaN by design.
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return _summarize(scenario, results, config)
+
+
+def _summarize(
+    scenario: Scenario, results: Sequence[RepetitionResult], config: HarnessConfig
+) -> ScenarioSummary:
     risk = scenario.true_risk
     est = np.stack([r.estimate for r in results])
     lo = np.stack([r.lower for r in results])

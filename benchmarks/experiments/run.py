@@ -37,6 +37,7 @@ from benchmarks.scenarios import SCENARIO_NAMES, build_scenario  # noqa: E402
 _RESULTS = Path(__file__).resolve().parent / "RESULTS.md"
 _DENSE = (10, 20, 30, 40, 50, 70, 100)
 _SPARSE = (10, 50, 100)
+_PREVIOUS: list[str] = []  # RESULTS.md as it was before an --append run
 
 
 def _arms() -> dict[str, dict[str, Any]]:
@@ -56,6 +57,10 @@ def _arms() -> dict[str, dict[str, Any]]:
         "mixture_0.01": {"usefulness_rule": "mixture_0.01"},
         "mixture_0.03": {"usefulness_rule": "mixture_0.03"},
         "mixture_succession": {"usefulness_rule": "mixture_succession"},
+        "mixture_bound_0.01": {"usefulness_rule": "mixture_bound_0.01"},
+        "mixture_bound_0.003": {"usefulness_rule": "mixture_bound_0.003"},
+        "mixture_0.01_floor_0.2": {"usefulness_rule": "mixture_0.01", "floor": 0.2},
+        "mixture_0.01_floor_0.1": {"usefulness_rule": "mixture_0.01", "floor": 0.1},
         "floor_0.1": {"floor": 0.1},
         "floor_0.3": {"floor": 0.3},
         "floor_0.5": {"floor": 0.5},
@@ -100,6 +105,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--append", action="store_true", help="add rows to RESULTS.md")
     args = parser.parse_args(argv)
     started = time.perf_counter()
+    if args.append and _RESULTS.exists():
+        _PREVIOUS.append(_RESULTS.read_text().rstrip())
     scenarios = [build_scenario(n, quick=True) for n in args.scenarios]
     base = HarnessConfig(surrogate_settings=surrogate_settings(), with_baselines=False)
     rows = []
@@ -115,6 +122,20 @@ def main(argv: Sequence[str] | None = None) -> int:
         balanced = [s.at("cost", "balanced", args.budget) for s in summaries]
         medians[arm] = (float(np.median(balanced)), float(np.max(balanced)))
         print(" | ".join(rows[-1]), f"({time.perf_counter() - t0:.0f} s)", flush=True)
+        _write(rows, medians, scenarios, args, argv, base, started)
+    print(f"wrote {_RESULTS}")
+    return 0
+
+
+def _write(
+    rows: list[list[str]],
+    medians: dict[str, tuple[float, float]],
+    scenarios: Sequence[Any],
+    args: argparse.Namespace,
+    argv: Sequence[str] | None,
+    base: HarnessConfig,
+    started: float,
+) -> None:
     header = ["arm"] + [s.name for s in scenarios] + ["median", "worst", "min coverage M>=50"]
     table = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
     table += ["| " + " | ".join(r) + " |" for r in rows]
@@ -139,12 +160,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     if "core" in medians:
         verdict += f"; `core`: median {medians['core'][0]:.2f}, worst {medians['core'][1]:.2f}"
     text = intro + "\n\n" + "\n".join(table) + "\n\n" + verdict + ".\n"
-    if args.append and _RESULTS.exists():
-        old = _RESULTS.read_text().rstrip()
-        text = old + "\n\n" + text
+    if args.append and _PREVIOUS:
+        text = _PREVIOUS[0] + "\n\n" + text
     _RESULTS.write_text(text)
-    print(f"wrote {_RESULTS}")
-    return 0
 
 
 if __name__ == "__main__":

@@ -93,6 +93,17 @@ def _mixture(alpha: float | None, *, prior_labels: float = 10.0) -> UsefulnessRu
     return rule
 
 
+def _mixture_bound(alpha: float) -> UsefulnessRule:
+    # As _mixture, but the worst case from the loss bound alone, max(g, B - g)^2: needs
+    # only the scores and B (no loss table), so it fits the core's usefulness(scores).
+    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+        g = scores.expected_loss
+        worst = np.maximum(g, context.spec.bound - g) ** 2
+        return np.sqrt(_second(scores) + alpha * worst)
+
+    return rule
+
+
 USEFULNESS_RULES: dict[str, Callable[[SurrogateScores, RuleContext], np.ndarray]] = {
     "core": _core,
     "expected_loss": _expected_loss,
@@ -106,4 +117,6 @@ USEFULNESS_RULES: dict[str, Callable[[SurrogateScores, RuleContext], np.ndarray]
     "mixture_0.01": _mixture(0.01),
     "mixture_0.03": _mixture(0.03),
     "mixture_succession": _mixture(None),
+    "mixture_bound_0.01": _mixture_bound(0.01),
+    "mixture_bound_0.003": _mixture_bound(0.003),
 }
