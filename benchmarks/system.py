@@ -1116,6 +1116,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     body = render_section(report, command=command.strip(), quick=quick)
     output.parent.mkdir(parents=True, exist_ok=True)
+    if not output.exists():
+        output.write_text("# Benchmarks\n", encoding="utf-8")  # the title labels.py also uses
     replace_section(output, SECTION, body)
     print(f"\nwrote the {SECTION} section of {output} ({report.wall_seconds / 60:.1f} minutes)")
     return 0
