@@ -2,7 +2,7 @@
 
 Run from the repository root:
 
-    .venv/bin/python benchmarks/system.py            # full: 1,000,000 items (~5-10 minutes)
+    .venv/bin/python benchmarks/system.py            # full: 1,000,000 items (a few minutes)
     .venv/bin/python benchmarks/system.py --quick    # 100,000 items, fewer repetitions
 
 The harness starts ``leadline serve`` as a child process on 127.0.0.1 port 0 with a fresh
