@@ -1081,6 +1081,17 @@ def render_section(report: SystemReport, *, command: str, quick: bool) -> str:
     return "\n".join(lines)
 
 
+def _command(argv: Sequence[str] | None) -> str:
+    """The command line as run from the repository root (interpreter path relative)."""
+    interpreter = Path(sys.executable)
+    try:
+        shown = str(interpreter.relative_to(_ROOT))
+    except ValueError:
+        shown = "python"
+    args = list(sys.argv[1:] if argv is None else argv)
+    return shlex.join([shown, "benchmarks/system.py", *args])
+
+
 def _parse(argv: Sequence[str] | None) -> argparse.Namespace:
     parser = argparse.ArgumentParser(description=(__doc__ or "").splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="100,000 items, fewer repetitions")
@@ -1111,10 +1122,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     print(format_table(report.rows))
     for note in report.notes:
         print(f"- {note}")
-    command = "python benchmarks/system.py " + " ".join(
-        shlex.quote(a) for a in (sys.argv[1:] if argv is None else argv)
-    )
-    body = render_section(report, command=command.strip(), quick=quick)
+    body = render_section(report, command=_command(argv), quick=quick)
     output.parent.mkdir(parents=True, exist_ok=True)
     if not output.exists():
         output.write_text("# Benchmarks\n", encoding="utf-8")  # the title labels.py also uses
