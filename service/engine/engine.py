@@ -7,6 +7,12 @@ write on the single writer; then, outside the lock, wait for that write's commit
 returning. The writer commits in queue order, so a reply never depends on data that is not
 yet durable. A ``request_id`` is remembered with the result in the same transaction, so a
 retry is answered from the first result (also after a restart).
+
+A failed commit must not leave memory ahead of disk: each pool's writes share one store
+lane, so once one fails every later write of the pool fails unrun (it may build on the
+unsaved change), and the first caller to see the failure rebuilds the pool's state from
+SQLite with start-up's code (:meth:`Engine._recover`) before the pool serves again. The
+failing calls get Unavailable ("not saved, retry with the same request_id").
 """
 
 from __future__ import annotations
@@ -19,7 +25,7 @@ import threading
 import time
 from collections.abc import Callable, Sequence
 from concurrent.futures import Future
-from typing import Any
+from typing import Any, NoReturn
 
 import numpy as np
 
@@ -54,7 +60,7 @@ from leadline.service.estimation import (
     estimate_risk,
     fit_surrogate,
 )
-from leadline.service.store import Database
+from leadline.service.store import Database, EarlierWriteFailed
 from leadline.service.store import records as store
 from leadline.service.store.records import Write
 
@@ -107,54 +113,112 @@ class Engine:
     # start-up
     # ------------------------------------------------------------------------------------
     def load(self) -> None:
-        """Rebuild every pool's in-memory state from the database (start-up only)."""
+        """Rebuild every pool's in-memory state from the database (start-up)."""
         reader = self._db.reader()
         for row in store.load_pools(reader):
-            started = time.monotonic()
-            settings = PoolSettings.from_json(row.settings)
-            pool = PoolState(settings=settings, seed=row.seed, create_time_ms=row.create_time_ms)
-            for name in store.load_segments(reader, settings.pool_id):
-                pool.add_segments([name])
-            model = store.load_latest_model(reader, settings.pool_id)
-            if model is not None:
-                version, label_count, data = model
-                pool.surrogate = Surrogate.from_bytes(pool.spec, data)
-                pool.surrogate_label_count = label_count
-            for chunk in store.load_items(
-                reader,
-                settings.pool_id,
-                feature_dim=settings.feature_dim,
-                output_width=settings.output_width,
-            ):
-                ingest.append_items(
-                    pool,
-                    chunk.item_ids,
-                    chunk.features,
-                    chunk.outputs,
-                    chunk.payload_refs,
-                    chunk.segments,
-                    chunk.event_time_ms,
-                    chunk.ingest_time_ms,
-                    cold=pool.cold.score(chunk.features, chunk.outputs),
-                    current=pool.surrogate.score(chunk.features, chunk.outputs),
-                )
-            draws = store.load_draws(reader, settings.pool_id)
-            pool.draws.append(draws)
-            for draw in draws:
-                index = draw["draw_index"]
-                pool.assignments[draw["assignment_id"]] = index
-            pool.mark_drawn_items(0)
-            pool.last_fit_time = time.monotonic()
+            pool = self._read_pool(row)
             with self._pools_lock:
-                self._pools[settings.pool_id] = pool
-            _LOG.info(
-                "loaded pool %s: %d items, %d draws, surrogate version %d in %.2f s",
-                settings.pool_id,
-                pool.item_count,
-                len(pool.draws),
-                pool.surrogate_version,
-                time.monotonic() - started,
+                self._pools[pool.pool_id] = pool
+
+    def _read_pool(self, row: store.PoolRow) -> PoolState:
+        """One pool's in-memory state as stored: items scored with its latest surrogate.
+
+        Used at start-up and to reload a pool after a failed write.
+        """
+        reader = self._db.reader()
+        started = time.monotonic()
+        settings = PoolSettings.from_json(row.settings)
+        pool = PoolState(settings=settings, seed=row.seed, create_time_ms=row.create_time_ms)
+        for name in store.load_segments(reader, settings.pool_id):
+            pool.add_segments([name])
+        model = store.load_latest_model(reader, settings.pool_id)
+        if model is not None:
+            version, label_count, data = model
+            pool.surrogate = Surrogate.from_bytes(pool.spec, data)
+            pool.surrogate_label_count = label_count
+        for chunk in store.load_items(
+            reader,
+            settings.pool_id,
+            feature_dim=settings.feature_dim,
+            output_width=settings.output_width,
+        ):
+            ingest.append_items(
+                pool,
+                chunk.item_ids,
+                chunk.features,
+                chunk.outputs,
+                chunk.payload_refs,
+                chunk.segments,
+                chunk.event_time_ms,
+                chunk.ingest_time_ms,
+                cold=pool.cold.score(chunk.features, chunk.outputs),
+                current=pool.surrogate.score(chunk.features, chunk.outputs),
             )
+        draws = store.load_draws(reader, settings.pool_id)
+        pool.draws.append(draws)
+        for draw in draws:
+            index = draw["draw_index"]
+            pool.assignments[draw["assignment_id"]] = index
+        pool.mark_drawn_items(0)
+        pool.last_fit_time = time.monotonic()
+        _LOG.info(
+            "loaded pool %s: %d items, %d draws, surrogate version %d in %.2f s",
+            settings.pool_id,
+            pool.item_count,
+            len(pool.draws),
+            pool.surrogate_version,
+            time.monotonic() - started,
+        )
+        return pool
+
+    def _reload(self, pool: PoolState) -> None:
+        """Rebuild a pool marked ``reload_pending`` from the store; caller holds its lock.
+
+        If reading fails, the pool stays marked and refuses calls (Unavailable) until a
+        later call's reload succeeds.
+        """
+        pool_id = pool.pool_id
+        try:
+            row = store.load_pool(self._db.reader(), pool_id)
+            if row is None:
+                pool.deleted = True
+                pool.reload_pending = False
+                with self._pools_lock:
+                    if self._pools.get(pool_id) is pool:
+                        del self._pools[pool_id]
+            else:
+                pool.adopt(self._read_pool(row))
+        except Exception:
+            _LOG.exception("pool %s: reload from the database failed", pool_id)
+
+    def _recover(self, pool: PoolState, epoch: int, error: BaseException) -> NoReturn:
+        """A write of ``pool`` queued in ``epoch`` failed: reload the pool, then raise.
+
+        The pool's memory already holds the change that was not saved (and maybe later
+        changes built on it, whose writes the store fails too, see ``Database.submit``).
+        Under the pool's lock (calls to the pool wait meanwhile): wait until every write
+        of the pool queued so far is handled, reopen its lane, rebuild its state from
+        SQLite the way start-up does. The first failing caller of an epoch reloads; the
+        others find the epoch moved on. Raises Unavailable for the failing call.
+        """
+        with pool.lock:
+            if pool.epoch == epoch and not self._closed and not pool.reload_pending:
+                if isinstance(error, EarlierWriteFailed):
+                    _LOG.warning("pool %s: write dropped after an earlier failure", pool.pool_id)
+                else:
+                    _LOG.error("pool %s: a write failed (%s); reloading", pool.pool_id, error)
+                pool.reload_pending = True
+                self._db.reopen(pool.lane).result()
+                self._reload(pool)
+        cause = (
+            "an earlier write of this pool failed"
+            if isinstance(error, EarlierWriteFailed)
+            else f"store error: {error}"
+        )
+        raise Unavailable(
+            f"pool = 'pools/{pool.pool_id}': the write was not saved ({cause}); the pool "
+            "was reloaded from the database. Retry with the same request_id."
+        ) from error
 
     # ------------------------------------------------------------------------------------
     # pools
@@ -164,7 +228,19 @@ class Engine:
             pool = self._pools.get(pool_id)
         if pool is None or pool.deleted:
             raise NotFound(f"pool = 'pools/{pool_id}': no such pool.", field="pool")
+        if pool.reload_pending:
+            with pool.lock:
+                if pool.reload_pending and not pool.deleted:
+                    self._reload(pool)
+                self._check_loaded(pool)
         return pool
+
+    def _check_loaded(self, pool: PoolState) -> None:
+        if pool.reload_pending:
+            raise Unavailable(
+                f"pool = 'pools/{pool.pool_id}': being reloaded from the database after a "
+                "failed write (see the server log); retry later."
+            )
 
     def pools(self) -> list[PoolState]:
         with self._pools_lock:
@@ -234,12 +310,16 @@ class Engine:
         self._check_open()
         pool = self.pool(pool_id)
         with pool.lock:
+            if pool.deleted:
+                raise NotFound(f"pool = 'pools/{pool_id}': no such pool.", field="pool")
+            self._check_loaded(pool)
             pool.deleted = True
-            future = self._db.submit(store.delete_pool(pool_id))
+            epoch = pool.epoch
+            future = self._db.submit(store.delete_pool(pool_id), lane=pool.lane)
+        self._wait(pool, future, epoch)
         with self._pools_lock:
             if self._pools.get(pool_id) is pool:
                 del self._pools[pool_id]
-        future.result()
         _LOG.info("deleted pool %s", pool_id)
 
     # ------------------------------------------------------------------------------------
@@ -250,12 +330,19 @@ class Engine:
             raise Unavailable("the server is shutting down; retry on another replica or later.")
 
     def _prior(self, pool: PoolState, method: str, request_id: str) -> Any:
-        """A remembered (future, payload) or committed payload for this request id."""
+        """A remembered (future, payload, epoch) or committed payload for this request id."""
         remembered = pool.requests.get((method, request_id))
         if remembered is not None:
             return remembered
         data = store.find_request(self._db.reader(), pool.pool_id, method, request_id)
-        return None if data is None else (None, data)
+        return None if data is None else (None, data, pool.epoch)
+
+    def _wait(self, pool: PoolState, future: Future[Any], epoch: int) -> None:
+        """Wait for the commit of a write of ``pool`` queued in ``epoch``; recover if it failed."""
+        try:
+            future.result()
+        except Exception as error:
+            self._recover(pool, epoch, error)
 
     def _write(
         self,
@@ -269,29 +356,34 @@ class Engine:
 
         ``work`` returns (result, writes) and must raise before changing anything if the
         request is refused. With a ``request_id`` seen before, the first result is decoded
-        and returned instead (after its commit, if that is still in flight).
+        and returned instead (after its commit, if that is still in flight). If the commit
+        fails, the pool is reloaded from the store and the call fails with Unavailable.
         """
         self._check_open()
         pool = self.pool(pool_id)
         with pool.lock:
             if pool.deleted:
                 raise NotFound(f"pool = 'pools/{pool_id}': no such pool.", field="pool")
+            self._check_loaded(pool)
             prior = self._prior(pool, method, request_id) if request_id else None
+            epoch = pool.epoch
             if prior is None:
                 result, writes = work(pool)
                 if request_id:
                     payload = encode(result)
                     writes.append(store.insert_request(pool_id, method, request_id, payload))
-                future: Future[None] | None = self._db.submit(_combine(writes)) if writes else None
+                future: Future[None] | None = (
+                    self._db.submit(_combine(writes), lane=pool.lane) if writes else None
+                )
                 if request_id:
-                    pool.remember_request(method, request_id, (future, payload))
+                    pool.remember_request(method, request_id, (future, payload, epoch))
         if prior is not None:
-            earlier, payload = prior
+            earlier, payload, earlier_epoch = prior
             if earlier is not None:
-                earlier.result()
+                self._wait(pool, earlier, earlier_epoch)
             return decode(payload)
         if future is not None:
-            future.result()
+            self._wait(pool, future, epoch)
         return result
 
     # ------------------------------------------------------------------------------------
@@ -523,7 +615,7 @@ class Engine:
     # ------------------------------------------------------------------------------------
     def refit_due(self, pool: PoolState, now: float) -> bool:
         with pool.lock:
-            if pool.deleted or pool.refitting:
+            if pool.deleted or pool.refitting or pool.reload_pending:
                 return False
             labeled, _, _ = pool.draw_counts()
             new_labels = labeled - pool.surrogate_label_count
@@ -548,6 +640,7 @@ class Engine:
             outputs = pool.outputs.view
             n0 = pool.item_count
             version = pool.surrogate_version + 1
+            epoch = pool.epoch
             seed = int((pool.seed + version) % (2**31 - 1))
         try:
             typed = labels.astype(np.int64) if pool.settings.is_classification else labels
@@ -563,13 +656,24 @@ class Engine:
             scores = _score_rows(surrogate, features[:n0], outputs[:n0])
             data = surrogate.to_bytes()
             with pool.lock:
-                if pool.deleted or self._closed:
-                    # Shutting down: the fit is dropped and redone after the next start.
+                if pool.deleted or self._closed or pool.epoch != epoch or pool.reload_pending:
+                    # Shutting down: the fit is dropped and redone after the next start. A
+                    # reload since the fit began: its labels may include unsaved ones.
                     return False
                 future = self._db.submit(
-                    store.insert_model(pool.pool_id, version, int(labels.shape[0]), data, now_ms())
+                    store.insert_model(pool.pool_id, version, int(labels.shape[0]), data, now_ms()),
+                    lane=pool.lane,
                 )
-            future.result()
+            try:
+                future.result()
+            except Exception as error:
+                # Not saved (maybe behind a failed write of the pool): the pool reloads,
+                # the fit is redone on the saved labels when due.
+                try:
+                    self._recover(pool, epoch, error)
+                except Unavailable:
+                    pass
+                return False
             # Items that arrived while fitting: score them outside the lock until few are
             # left, so the final swap under the lock stays short even under heavy ingest.
             parts = [scores]
@@ -584,6 +688,9 @@ class Engine:
                 parts.append(_score_rows(surrogate, features[done:n], outputs[done:n]))
                 done = n
             with pool.lock:
+                if pool.epoch != epoch:
+                    # Reloaded meanwhile: the reload read this version from the store.
+                    return False
                 n = pool.item_count
                 if n > done:
                     parts.append(

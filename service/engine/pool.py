@@ -227,6 +227,39 @@ class PoolState:
         self.refitting = False
         # Label count at the last failed refit (-1: none failed).
         self.failed_fit_labels = -1
+        # The store lane of this pool's writes (see Database.submit) and the number of
+        # reloads after a failed write: a write remembers the epoch it was queued in.
+        self.lane = object()
+        self.epoch = 0
+        # Set after a failed write until the reload from the store succeeds.
+        self.reload_pending = False
+
+    # Attributes that survive a reload: the lock and lane (other threads hold them), the
+    # refit bookkeeping (a refit may be running), the counters that key caches.
+    _KEPT_ON_RELOAD = frozenset(
+        {
+            "lock",
+            "lane",
+            "epoch",
+            "state_version",
+            "refitting",
+            "failed_fit_labels",
+            "last_fit_time",
+        }
+    )
+
+    def adopt(self, fresh: PoolState) -> None:
+        """Take over ``fresh``'s state (rebuilt from the store) in place; caller holds the lock.
+
+        The object stays the same, so threads holding a reference (or waiting for the lock)
+        see the reloaded state; the epoch and state version move on, caches and remembered
+        request futures are dropped.
+        """
+        for name, value in fresh.__dict__.items():
+            if name not in self._KEPT_ON_RELOAD:
+                setattr(self, name, value)
+        self.epoch += 1
+        self.touch()
 
     @property
     def pool_id(self) -> str:

@@ -31,6 +31,7 @@ __all__ = [
     "load_draws",
     "load_items",
     "load_latest_model",
+    "load_pool",
     "load_pools",
     "load_segments",
     "update_draws",
@@ -221,6 +222,13 @@ def load_pools(connection: sqlite3.Connection) -> list[PoolRow]:
         "SELECT pool_id, settings, seed, create_time_ms FROM pools ORDER BY pool_id"
     ).fetchall()
     return [PoolRow(r[0], json.loads(r[1]), int(r[2]), int(r[3])) for r in rows]
+
+
+def load_pool(connection: sqlite3.Connection, pool_id: str) -> PoolRow | None:
+    row = connection.execute(
+        "SELECT pool_id, settings, seed, create_time_ms FROM pools WHERE pool_id = ?", (pool_id,)
+    ).fetchone()
+    return None if row is None else PoolRow(row[0], json.loads(row[1]), int(row[2]), int(row[3]))
 
 
 def load_segments(connection: sqlite3.Connection, pool_id: str) -> list[str]:

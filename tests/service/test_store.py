@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 
-from leadline.service.store import DATABASE_FILE, SCHEMA_VERSION, Database
+from leadline.service.store import DATABASE_FILE, SCHEMA_VERSION, Database, EarlierWriteFailed
 
 
 def test_new_data_dir_gets_current_schema_and_reopens(tmp_path: Path) -> None:
@@ -67,3 +67,37 @@ def test_committed_write_is_visible_to_a_fresh_connection(tmp_path: Path) -> Non
     database.close()
     with pytest.raises(RuntimeError, match="closed"):
         database.submit(lambda c: None)
+
+
+def test_lane_fails_later_writes_until_reopened(tmp_path: Path) -> None:
+    """After a failed write of a lane, later writes of that lane fail unrun (same group and
+    later groups) until a reopen marker; other lanes commit as usual."""
+    database = Database(tmp_path)
+    try:
+        database.write(
+            lambda c: c.execute("CREATE TABLE notes (id INTEGER PRIMARY KEY, lane TEXT)")
+        )
+        database.write(lambda c: c.execute("INSERT INTO notes VALUES (1, 'a')"))
+        barrier = threading.Event()
+        blocker = database.submit(lambda c: barrier.wait(5))
+        bad = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (1, 'a')"), lane="a")
+        behind = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (2, 'a')"), lane="a")
+        other = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (3, 'b')"), lane="b")
+        barrier.set()
+        blocker.result(10)
+        with pytest.raises(sqlite3.IntegrityError):
+            bad.result(10)
+        with pytest.raises(EarlierWriteFailed):
+            behind.result(10)
+        other.result(10)
+        # A later group: still refused until the marker.
+        with pytest.raises(EarlierWriteFailed):
+            database.write(lambda c: c.execute("INSERT INTO notes VALUES (4, 'a')"), lane="a")
+        reopened = database.reopen("a")
+        after = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (5, 'a')"), lane="a")
+        reopened.result(10)
+        after.result(10)
+        rows = database.reader().execute("SELECT id, lane FROM notes ORDER BY id").fetchall()
+        assert rows == [(1, "a"), (3, "b"), (5, "a")]
+    finally:
+        database.close()
