@@ -221,15 +221,18 @@ class Client:
         default_confidence: float = 0.0,
         refit_every_labels: int = 0,
         exist_ok: bool = False,
+        request_id: str | None = None,
         timeout: float | None = None,
     ) -> leadline_pb2.Pool:
         """Create ``pools/{pool_id}``; the server validates every setting.
 
         ``task``: 'classification' or 'regression'; ``loss``: 'zero-one', 'cross-entropy',
         'brier', 'cost-matrix', 'squared-error', 'absolute-error'; ``default_mode``:
-        'balanced' (server default), 'unbiased' or 'surrogate'. With ``exist_ok`` an
-        existing pool is returned as it is (its settings are not compared), which also
-        makes a retried creation harmless.
+        'balanced' (server default), 'unbiased' or 'surrogate'. The call carries a
+        ``request_id`` (default: a fresh uuid4, the same for every retry of this call), so
+        a retry after a lost reply returns the pool it created instead of ALREADY_EXISTS.
+        With ``exist_ok`` a pool created by someone else is returned as it is (its
+        settings are not compared).
         """
         matrix: list[float] = (
             [] if cost_matrix is None else np.asarray(cost_matrix, dtype=float).ravel().tolist()
@@ -248,7 +251,9 @@ class Client:
             default_confidence=default_confidence,
             refit_every_labels=refit_every_labels,
         )
-        request = leadline_pb2.CreatePoolRequest(pool_id=pool_id, pool=pool)
+        request = leadline_pb2.CreatePoolRequest(
+            pool_id=pool_id, pool=pool, request_id=request_id or str(uuid.uuid4())
+        )
         try:
             return self._call("CreatePool", self._pools.CreatePool, request, timeout=timeout)
         except LeadlineError as error:
@@ -281,13 +286,23 @@ class Client:
         return list(self.iter_pools(page_size=page_size, timeout=timeout))
 
     def delete_pool(
-        self, pool: str, *, missing_ok: bool = False, timeout: float | None = None
+        self,
+        pool: str,
+        *,
+        missing_ok: bool = False,
+        request_id: str | None = None,
+        timeout: float | None = None,
     ) -> None:
         """Delete the pool with all its items, draws and labels.
 
-        With ``missing_ok`` an unknown pool is not an error (a retried delete is harmless).
+        The call carries a ``request_id`` (default: a fresh uuid4, the same for every retry
+        of this call), so a retry after a lost reply succeeds instead of NOT_FOUND. With
+        ``missing_ok`` a pool that does not exist (never did, or was deleted by someone
+        else) is not an error either.
         """
-        request = leadline_pb2.DeletePoolRequest(name=pool_name(pool))
+        request = leadline_pb2.DeletePoolRequest(
+            name=pool_name(pool), request_id=request_id or str(uuid.uuid4())
+        )
         try:
             self._call("DeletePool", self._pools.DeletePool, request, timeout=timeout)
         except LeadlineError as error:

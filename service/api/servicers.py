@@ -67,7 +67,8 @@ class PoolServicer(pb_grpc.PoolServiceServicer):
     @rpc_method
     def CreatePool(self, request: pb.CreatePoolRequest, context: grpc.ServicerContext) -> pb.Pool:
         settings = validation.pool_settings(request.pool_id, request.pool)
-        return convert.pool_message(self._engine.create_pool(settings))
+        request_id = validation.check_request_id(request.request_id)
+        return convert.pool_message(self._engine.create_pool(settings, request_id=request_id))
 
     @rpc_method
     def GetPool(self, request: pb.GetPoolRequest, context: grpc.ServicerContext) -> pb.Pool:
@@ -91,7 +92,8 @@ class PoolServicer(pb_grpc.PoolServiceServicer):
         self, request: pb.DeletePoolRequest, context: grpc.ServicerContext
     ) -> pb.DeletePoolResponse:
         pool_id = validation.parse_pool_name(request.name, field="name")
-        self._engine.delete_pool(pool_id)
+        request_id = validation.check_request_id(request.request_id)
+        self._engine.delete_pool(pool_id, request_id=request_id)
         return pb.DeletePoolResponse()
 
 

@@ -46,6 +46,7 @@ from leadline.service.engine.results import (
     decode_assignments,
     decode_ingest,
     decode_outcome,
+    decode_pool_info,
     encode,
 )
 from leadline.service.engine.scopes import Scope, ScopeInputs, build_scope_inputs
@@ -105,6 +106,8 @@ class Engine:
         self._config = config
         self._pools: dict[str, PoolState] = {}
         self._pools_lock = threading.Lock()
+        # CreatePool / DeletePool request ids in flight (see _claim_server_request).
+        self._server_requests: dict[tuple[str, str], threading.Event] = {}
         self._closed = False
         self.refit_count = 0
         self.refit_seconds_total = 0.0
@@ -246,8 +249,35 @@ class Engine:
         with self._pools_lock:
             return [self._pools[key] for key in sorted(self._pools)]
 
-    def create_pool(self, settings: PoolSettings) -> PoolInfo:
+    def create_pool(self, settings: PoolSettings, *, request_id: str = "") -> PoolInfo:
+        """Create an empty pool; AlreadyExists if the id is in use.
+
+        With a ``request_id`` seen before (also before a restart) the pool that request
+        created is returned: its current state, or the first reply if it is gone.
+        """
         self._check_open()
+        pool_id = settings.pool_id
+        method = "create_pool"
+        if request_id:
+            remembered = self._claim_server_request(method, request_id, pool_id)
+            if remembered is not None:
+                first = decode_pool_info(remembered)
+                with self._pools_lock:
+                    current = self._pools.get(pool_id)
+                if (
+                    current is not None
+                    and not current.deleted
+                    and current.create_time_ms == first.create_time_ms
+                ):
+                    return self.pool_info(current)
+                return first
+        try:
+            return self._create_pool(settings, method=method, request_id=request_id)
+        finally:
+            if request_id:
+                self._release_server_request(method, request_id)
+
+    def _create_pool(self, settings: PoolSettings, *, method: str, request_id: str) -> PoolInfo:
         created = now_ms()
         if self._config.draw_seed:
             digest = hashlib.sha256(f"{self._config.draw_seed}:{settings.pool_id}".encode())
@@ -255,23 +285,75 @@ class Engine:
         else:
             seed = secrets.randbits(62)
         pool = PoolState(settings=settings, seed=seed, create_time_ms=created)
-        with self._pools_lock:
-            if settings.pool_id in self._pools:
-                raise AlreadyExists(
-                    f"pool_id = {settings.pool_id!r}: a pool with this id exists.",
-                    field="pool_id",
-                )
-            self._pools[settings.pool_id] = pool
+        info = self.pool_info(pool)
         row = store.PoolRow(settings.pool_id, settings.to_json(), pool.seed, created)
-        try:
-            self._db.write(store.insert_pool(row))
-        except BaseException:
+        writes = [store.insert_pool(row)]
+        if request_id:
+            writes.append(
+                store.insert_server_request(
+                    method, request_id, settings.pool_id, encode(info), created
+                )
+            )
+        # Under the new pool's lock until its row is queued: a write to the pool queued
+        # later (on its lane) fails if the row does not commit.
+        with pool.lock:
             with self._pools_lock:
-                self._pools.pop(settings.pool_id, None)
-            raise
+                if settings.pool_id in self._pools:
+                    raise AlreadyExists(
+                        f"pool_id = {settings.pool_id!r}: a pool with this id exists.",
+                        field="pool_id",
+                    )
+                self._pools[settings.pool_id] = pool
+            future = self._db.submit(_combine(writes), lane=pool.lane)
+        try:
+            future.result()
+        except Exception as error:
+            with pool.lock:
+                pool.deleted = True
+                # Writes to the pool queued meanwhile fail (lane); nothing follows this.
+                self._db.reopen(pool.lane)
+            with self._pools_lock:
+                if self._pools.get(settings.pool_id) is pool:
+                    del self._pools[settings.pool_id]
+            raise Unavailable(
+                f"pool_id = {settings.pool_id!r}: the pool was not saved (store error: "
+                f"{error}). Retry with the same request_id."
+            ) from error
         pool.last_fit_time = time.monotonic()
         _LOG.info("created pool %s (%s, loss %s)", settings.pool_id, settings.task, settings.loss)
-        return self.pool_info(pool)
+        return info
+
+    def _claim_server_request(self, method: str, request_id: str, pool_id: str) -> bytes | None:
+        """The remembered reply of a pool-level request id, or None after claiming it.
+
+        A claimed id is in flight until :meth:`_release_server_request`; the same id
+        arriving meanwhile waits for it, then finds the committed reply (or claims it in
+        turn if the first call failed). Reusing an id for another pool is InvalidArgument.
+        """
+        key = (method, request_id)
+        while True:
+            with self._pools_lock:
+                running = self._server_requests.get(key)
+                if running is None:
+                    found = store.find_server_request(self._db.reader(), method, request_id)
+                    if found is None:
+                        self._server_requests[key] = threading.Event()
+                        return None
+                    first_pool, reply = found
+                    if first_pool != pool_id:
+                        raise InvalidArgument(
+                            f"request_id = {request_id!r}: already used for pool "
+                            f"'pools/{first_pool}', not 'pools/{pool_id}'; use a new id.",
+                            field="request_id",
+                        )
+                    return reply
+            running.wait()
+
+    def _release_server_request(self, method: str, request_id: str) -> None:
+        with self._pools_lock:
+            running = self._server_requests.pop((method, request_id), None)
+        if running is not None:
+            running.set()
 
     def pool_info(self, pool: PoolState) -> PoolInfo:
         with pool.lock:
@@ -306,8 +388,24 @@ class Engine:
         more = len(chosen) > limit
         return infos, (page[-1] if more and page else "")
 
-    def delete_pool(self, pool_id: str) -> None:
+    def delete_pool(self, pool_id: str, *, request_id: str = "") -> None:
+        """Delete the pool and everything in it; NotFound if there is none.
+
+        With a ``request_id`` seen before (also before a restart) nothing is done and the
+        call succeeds, even if a new pool took the id meanwhile.
+        """
         self._check_open()
+        method = "delete_pool"
+        if request_id:
+            if self._claim_server_request(method, request_id, pool_id) is not None:
+                return
+        try:
+            self._delete_pool(pool_id, method=method, request_id=request_id)
+        finally:
+            if request_id:
+                self._release_server_request(method, request_id)
+
+    def _delete_pool(self, pool_id: str, *, method: str, request_id: str) -> None:
         pool = self.pool(pool_id)
         with pool.lock:
             if pool.deleted:
@@ -315,7 +413,12 @@ class Engine:
             self._check_loaded(pool)
             pool.deleted = True
             epoch = pool.epoch
-            future = self._db.submit(store.delete_pool(pool_id), lane=pool.lane)
+            writes = [store.delete_pool(pool_id)]
+            if request_id:
+                writes.append(
+                    store.insert_server_request(method, request_id, pool_id, b"{}", now_ms())
+                )
+            future = self._db.submit(_combine(writes), lane=pool.lane)
         self._wait(pool, future, epoch)
         with self._pools_lock:
             if self._pools.get(pool_id) is pool:

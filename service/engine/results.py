@@ -25,6 +25,7 @@ __all__ = [
     "decode_assignments",
     "decode_ingest",
     "decode_outcome",
+    "decode_pool_info",
     "encode",
 ]
 
@@ -155,6 +156,13 @@ def decode_ingest(data: bytes) -> IngestResult:
 
 def decode_assignments(data: bytes) -> list[AssignmentInfo]:
     return [AssignmentInfo(**item) for item in json.loads(data)]
+
+
+def decode_pool_info(data: bytes) -> PoolInfo:
+    raw = json.loads(data)
+    raw["settings"] = PoolSettings.from_json(raw["settings"])
+    raw["segments"] = tuple(raw["segments"])
+    return PoolInfo(**raw)
 
 
 def decode_outcome(data: bytes) -> OutcomeResult:

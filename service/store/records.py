@@ -22,11 +22,13 @@ __all__ = [
     "PoolRow",
     "delete_pool",
     "find_request",
+    "find_server_request",
     "insert_draws",
     "insert_items",
     "insert_model",
     "insert_pool",
     "insert_request",
+    "insert_server_request",
     "insert_segments",
     "load_draws",
     "load_items",
@@ -215,6 +217,32 @@ def find_request(
         (pool_id, method, request_id),
     ).fetchone()
     return None if row is None else bytes(row[0])
+
+
+def insert_server_request(
+    method: str, request_id: str, pool_id: str, response: bytes, time_ms: int
+) -> Write:
+    """Remember a pool-level call (CreatePool, DeletePool) outside the pool's own rows."""
+
+    def write(connection: sqlite3.Connection) -> None:
+        connection.execute(
+            "INSERT INTO server_requests (method, request_id, pool_id, response, time_ms)"
+            " VALUES (?, ?, ?, ?, ?)",
+            (method, request_id, pool_id, response, time_ms),
+        )
+
+    return write
+
+
+def find_server_request(
+    connection: sqlite3.Connection, method: str, request_id: str
+) -> tuple[str, bytes] | None:
+    """(pool_id, response) of a remembered pool-level call, or None."""
+    row = connection.execute(
+        "SELECT pool_id, response FROM server_requests WHERE method = ? AND request_id = ?",
+        (method, request_id),
+    ).fetchone()
+    return None if row is None else (str(row[0]), bytes(row[1]))
 
 
 def load_pools(connection: sqlite3.Connection) -> list[PoolRow]:

@@ -1,6 +1,7 @@
 """SQLite schema of the data directory and its migrations.
 
-The database holds one row per pool, item, draw, surrogate version and remembered request.
+The database holds one row per pool, item, draw, surrogate version and remembered request
+(per pool, and at server level for creating and deleting pools).
 ``schema_version`` records the last migration applied; :func:`migrate` applies the missing
 ones in order inside one transaction, so a data dir written by an older server opens in a
 newer one, and a newer data dir is refused by an older server.
@@ -83,6 +84,17 @@ _MIGRATIONS: tuple[tuple[str, ...], ...] = (
             request_id TEXT NOT NULL,
             response BLOB NOT NULL,
             PRIMARY KEY (pool_id, method, request_id)
+        )""",
+    ),
+    # 2: request ids of CreatePool / DeletePool, kept at server level (they outlive pools).
+    (
+        """CREATE TABLE server_requests (
+            method TEXT NOT NULL,
+            request_id TEXT NOT NULL,
+            pool_id TEXT NOT NULL,
+            response BLOB NOT NULL,
+            time_ms INTEGER NOT NULL,
+            PRIMARY KEY (method, request_id)
         )""",
     ),
 )

@@ -6,6 +6,8 @@ stopped (SIGTERM) and started again on the same port and data directory.
 
 from __future__ import annotations
 
+import contextlib
+import sqlite3
 import threading
 import time
 import uuid
@@ -14,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-from leadline.client import Client, IngestResult, LocalServer
+from leadline.client import AlreadyExists, Client, IngestResult, LocalServer, NotFound
 
 from .conftest import Digits, digits_pool
 
@@ -146,4 +148,38 @@ def test_a_call_made_while_the_server_is_down_completes_once_it_is_back(
     (result,) = outcome
     assert isinstance(result, IngestResult)
     assert (result.accepted, result.duplicates) == (len(digits.item_ids), 0)
+    client.close()
+
+
+def test_create_and_delete_repeat_by_request_id_across_a_restart(
+    restartable: LocalServer,
+) -> None:
+    """What a client retry after a lost reply sends: the same request id again."""
+    client = Client(restartable.target, timeout=60)
+    settings = {"task": "classification", "num_classes": 2, "feature_dim": 3, "loss": "zero-one"}
+    created = client.create_pool("again", request_id="create-again", **settings)  # type: ignore[arg-type]
+    # A call of its own gets a fresh id: the pool is taken.
+    with pytest.raises(AlreadyExists):
+        client.create_pool("again", **settings)  # type: ignore[arg-type]
+    restartable.kill()
+    restartable.start()
+    repeated = client.create_pool("again", request_id="create-again", **settings)  # type: ignore[arg-type]
+    assert repeated.create_time_ms == created.create_time_ms
+    client.delete_pool("again", request_id="delete-again")
+    restartable.stop()
+    restartable.start()
+    client.delete_pool("again", request_id="delete-again")
+    with pytest.raises(NotFound):
+        client.delete_pool("again")
+    client.delete_pool("again", missing_ok=True)
+    client.create_pool("fresh", **settings)  # type: ignore[arg-type]
+    # The data directory's database file (docs/operations.md): the server remembers the
+    # explicit ids, and the uuid4 the client chose for the call without one.
+    with contextlib.closing(sqlite3.connect(restartable.data_dir / "leadline.db")) as connection:
+        rows = connection.execute(
+            "SELECT pool_id, request_id FROM server_requests ORDER BY time_ms"
+        ).fetchall()
+    assert rows[:2] == [("again", "create-again"), ("again", "delete-again")]
+    assert [pool for pool, _ in rows[2:]] == ["fresh"]
+    assert uuid.UUID(rows[2][1]).version == 4
     client.close()

@@ -101,3 +101,18 @@ def test_lane_fails_later_writes_until_reopened(tmp_path: Path) -> None:
         assert rows == [(1, "a"), (3, "b"), (5, "a")]
     finally:
         database.close()
+
+
+def test_version_one_data_dir_gains_the_server_requests_table(tmp_path: Path) -> None:
+    """A data dir written before pool-level request ids (schema 1) opens and is upgraded."""
+    Database(tmp_path).close()
+    with contextlib.closing(sqlite3.connect(tmp_path / DATABASE_FILE)) as connection:
+        connection.execute("DROP TABLE server_requests")
+        connection.execute("UPDATE schema_version SET version = 1")
+        connection.commit()
+    Database(tmp_path).close()
+    with contextlib.closing(sqlite3.connect(tmp_path / DATABASE_FILE)) as connection:
+        (version,) = connection.execute("SELECT version FROM schema_version").fetchone()
+        columns = [row[1] for row in connection.execute("PRAGMA table_info(server_requests)")]
+    assert version == SCHEMA_VERSION == 2
+    assert columns == ["method", "request_id", "pool_id", "response", "time_ms"]

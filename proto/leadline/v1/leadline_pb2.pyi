@@ -124,12 +124,14 @@ class Pool(_message.Message):
     def __init__(self, name: _Optional[str] = ..., task: _Optional[_Union[TaskType, str]] = ..., num_classes: _Optional[int] = ..., feature_dim: _Optional[int] = ..., loss: _Optional[_Union[LossKind, str]] = ..., cost_matrix: _Optional[_Iterable[float]] = ..., loss_cap: _Optional[float] = ..., default_mode: _Optional[_Union[EstimatorMode, str]] = ..., item_count: _Optional[int] = ..., labeled_count: _Optional[int] = ..., create_time_ms: _Optional[int] = ..., description: _Optional[str] = ..., selection_floor: _Optional[float] = ..., default_lease_seconds: _Optional[int] = ..., default_confidence: _Optional[float] = ..., refit_every_labels: _Optional[int] = ..., surrogate_version: _Optional[int] = ..., draw_count: _Optional[int] = ..., pending_count: _Optional[int] = ..., skipped_count: _Optional[int] = ..., segments: _Optional[_Iterable[str]] = ...) -> None: ...
 
 class CreatePoolRequest(_message.Message):
-    __slots__ = ("pool_id", "pool")
+    __slots__ = ("pool_id", "pool", "request_id")
     POOL_ID_FIELD_NUMBER: _ClassVar[int]
     POOL_FIELD_NUMBER: _ClassVar[int]
+    REQUEST_ID_FIELD_NUMBER: _ClassVar[int]
     pool_id: str
     pool: Pool
-    def __init__(self, pool_id: _Optional[str] = ..., pool: _Optional[_Union[Pool, _Mapping]] = ...) -> None: ...
+    request_id: str
+    def __init__(self, pool_id: _Optional[str] = ..., pool: _Optional[_Union[Pool, _Mapping]] = ..., request_id: _Optional[str] = ...) -> None: ...
 
 class GetPoolRequest(_message.Message):
     __slots__ = ("name",)
@@ -154,10 +156,12 @@ class ListPoolsResponse(_message.Message):
     def __init__(self, pools: _Optional[_Iterable[_Union[Pool, _Mapping]]] = ..., next_page_token: _Optional[str] = ...) -> None: ...
 
 class DeletePoolRequest(_message.Message):
-    __slots__ = ("name",)
+    __slots__ = ("name", "request_id")
     NAME_FIELD_NUMBER: _ClassVar[int]
+    REQUEST_ID_FIELD_NUMBER: _ClassVar[int]
     name: str
-    def __init__(self, name: _Optional[str] = ...) -> None: ...
+    request_id: str
+    def __init__(self, name: _Optional[str] = ..., request_id: _Optional[str] = ...) -> None: ...
 
 class DeletePoolResponse(_message.Message):
     __slots__ = ()

@@ -68,7 +68,8 @@ class PoolServiceServicer:
     """
 
     def CreatePool(self, request, context):
-        """Creates an empty pool. ALREADY_EXISTS if pool_id is in use.
+        """Creates an empty pool. ALREADY_EXISTS if pool_id is in use (unless the call repeats
+        the request_id of the call that created it).
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
@@ -88,7 +89,8 @@ class PoolServiceServicer:
         raise NotImplementedError('Method not implemented!')
 
     def DeletePool(self, request, context):
-        """Deletes the pool and all its items, draws and labels.
+        """Deletes the pool and all its items, draws and labels. NOT_FOUND if there is no such
+        pool (unless the call repeats the request_id of the call that deleted it).
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
