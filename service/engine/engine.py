@@ -615,29 +615,24 @@ class Engine:
         with pool.lock:
             chosen_mode = self._mode(pool, mode)
             level = self._confidence(pool, confidence)
-            key = ("estimate", scope, chosen_mode, level)
-            cached = pool.cache.get(key)
-            if cached is not None:
-                return cached  # type: ignore[no-any-return]
-            inputs = self._inputs(pool, scope)
-            version = pool.state_version
-        estimate = estimate_risk(
-            inputs.terms,
-            inputs.sums,
-            mode=chosen_mode,
-            confidence=level,
-            loss_bound=pool.loss_bound,
-        )
-        result = EstimateResult(
-            estimate=estimate,
-            items_in_scope=inputs.items_in_scope,
-            items_unreached=inputs.items_unreached,
-            surrogate_version=inputs.surrogate_version,
-        )
-        with pool.lock:
-            if pool.state_version == version:
-                pool.cache[key] = result
-        return result
+
+        def answer(inputs: ScopeInputs) -> EstimateResult:
+            estimate = estimate_risk(
+                inputs.terms,
+                inputs.sums,
+                mode=chosen_mode,
+                confidence=level,
+                loss_bound=pool.loss_bound,
+            )
+            return EstimateResult(
+                estimate=estimate,
+                items_in_scope=inputs.items_in_scope,
+                items_unreached=inputs.items_unreached,
+                surrogate_version=inputs.surrogate_version,
+            )
+
+        key = ("estimate", scope, chosen_mode, level)
+        return self._cached_query(pool, key, scope, answer)  # type: ignore[no-any-return]
 
     def check_gate(
         self,
@@ -662,31 +657,47 @@ class Engine:
                     "default applies when the request leaves it 0).",
                     field="confidence",
                 )
-            key = ("gate", scope, chosen_mode, level, bound, max_risk)
+
+        def answer(inputs: ScopeInputs) -> GateOutcome:
+            decision = check_gate(
+                inputs.terms,
+                inputs.sums,
+                max_risk=max_risk,
+                confidence=level,
+                bound=bound,
+                mode=chosen_mode,
+                loss_bound=pool.loss_bound,
+            )
+            return GateOutcome(
+                decision=decision,
+                items_in_scope=inputs.items_in_scope,
+                items_unreached=inputs.items_unreached,
+                surrogate_version=inputs.surrogate_version,
+            )
+
+        key = ("gate", scope, chosen_mode, level, bound, max_risk)
+        return self._cached_query(pool, key, scope, answer)  # type: ignore[no-any-return]
+
+    def _cached_query(
+        self,
+        pool: PoolState,
+        key: tuple[Any, ...],
+        scope: Scope,
+        answer: Callable[[ScopeInputs], Any],
+    ) -> Any:
+        """A read answered from the pool's cache, or computed outside the lock from the
+        scope's inputs and cached unless the pool changed meanwhile."""
+        with pool.lock:
             cached = pool.cache.get(key)
             if cached is not None:
-                return cached  # type: ignore[no-any-return]
+                return cached
             inputs = self._inputs(pool, scope)
             version = pool.state_version
-        decision = check_gate(
-            inputs.terms,
-            inputs.sums,
-            max_risk=max_risk,
-            confidence=level,
-            bound=bound,
-            mode=chosen_mode,
-            loss_bound=pool.loss_bound,
-        )
-        outcome = GateOutcome(
-            decision=decision,
-            items_in_scope=inputs.items_in_scope,
-            items_unreached=inputs.items_unreached,
-            surrogate_version=inputs.surrogate_version,
-        )
+        result = answer(inputs)
         with pool.lock:
             if pool.state_version == version:
-                pool.cache[key] = outcome
-        return outcome
+                pool.cache[key] = result
+        return result
 
     def list_draws(self, pool_id: str, *, start: int, limit: int) -> tuple[list[DrawInfo], int]:
         """Draws ``start .. start + limit``; the second value is the next start or 0 at the end."""
