@@ -233,6 +233,7 @@ def _parse(argv: Sequence[str] | None) -> argparse.Namespace:
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--seed", type=int, default=HarnessConfig().seed)
     parser.add_argument("--output", type=Path, default=None, help="markdown file to write")
+    parser.add_argument("--gate-floor", type=float, default=HarnessConfig().gate_floor)
     return parser.parse_args(argv)
 
 
@@ -248,7 +249,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     output = args.output or (
         _ROOT / "bench-out" / "labels-quick.md" if quick else _ROOT / "BENCHMARKS.md"
     )
-    config = HarnessConfig(seed=args.seed, surrogate_settings=surrogate_settings())
+    config = HarnessConfig(
+        seed=args.seed, surrogate_settings=surrogate_settings(), gate_floor=args.gate_floor
+    )
     print(
         f"label-efficiency benchmark ({'QUICK: ' if quick else ''}{len(names)} scenarios, "
         f"{repetitions} repetitions, {args.workers} workers)",
