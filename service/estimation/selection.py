@@ -7,6 +7,15 @@ optimal importance-sampling density |integrand| / normaliser, applied to the res
 see "Model Assisted Survey Sampling", 1992, and "Safe and effective importance sampling",
 JASA 2000, for defensive mixtures).
 
+Hedge against an overconfident surrogate (``usefulness(scores, loss_bound=B)``): the
+second moment is taken under a mixture that gives weight a = ``WORST_CASE_WEIGHT`` to the
+worst case, u(j) = sqrt(E[(L_j - g_j)^2] + a max(g_j, B - g_j)^2). Where the surrogate
+calls an item safe (E[(L - g)^2] ~ 0) but a costly mistake is possible, the plain rule
+leaves it only the floor's share, and the rare mistake then arrives with weight ~ N/floor.
+The label-efficiency benchmark (BENCHMARKS.md, selection-rule experiments) measured the
+hedge: it removed most of that loss on a shifted pool with cross-entropy and kept almost
+all of the gain on well-fit pools. Without ``loss_bound`` the plain rule is used.
+
 Selection probabilities over the remaining set U_m (unlabeled, unassigned, present):
 
     q_m(j) = (1 - floor) u(j) / sum_{U_m} u + floor / |U_m|
@@ -41,6 +50,7 @@ from .surrogate import SurrogateScores
 
 __all__ = [
     "DEFAULT_FLOOR",
+    "WORST_CASE_WEIGHT",
     "DrawBatch",
     "draw_batch",
     "selection_probabilities",
@@ -57,13 +67,34 @@ _LOG = logging.getLogger(__name__)
 DEFAULT_FLOOR: float = 0.3
 
 _EXACT_RANGE_CANDIDATES = 65_536  # beyond this many near-ties the range uses the q_0 bound
+#: Weight of the worst case in the hedged usefulness (benchmark-measured; see docstring).
+WORST_CASE_WEIGHT: float = 0.01
+
 _REJECTION_LIMIT = 64  # rejected tries before the cumulative sum is rebuilt without drawn items
 
 
-def usefulness(scores: SurrogateScores) -> np.ndarray:
-    """Residual-spread rule: sqrt of the surrogate's residual second moment, (n,) >= 0."""
+def usefulness(scores: SurrogateScores, *, loss_bound: float | None = None) -> np.ndarray:
+    """Residual-spread rule, (n,) >= 0: sqrt(E[(L - g)^2]), or with ``loss_bound`` B the
+    hedged sqrt(E[(L - g)^2] + WORST_CASE_WEIGHT max(g, B - g)^2) (module docstring).
+
+    Raises ValueError on NaN/inf scores, a shape mismatch, or B not finite and > 0.
+    """
     second = check_finite_array("residual_second_moment", scores.residual_second_moment, ndim=1)
-    return np.sqrt(np.maximum(second, 0.0))
+    second = np.maximum(second, 0.0)
+    if loss_bound is None:
+        return np.sqrt(second)
+    bound = float(loss_bound)
+    if not (np.isfinite(bound) and bound > 0.0):
+        raise ValueError(f"loss_bound = {loss_bound!r}, must be finite and > 0.")
+    g = check_finite_array("expected_loss", scores.expected_loss, ndim=1)
+    if g.shape != second.shape:
+        raise ValueError(
+            f"expected_loss has {g.shape[0]} entries, must match residual_second_moment "
+            f"({second.shape[0]})."
+        )
+    g = np.clip(g, 0.0, bound)
+    worst = np.maximum(g, bound - g) ** 2
+    return np.sqrt(second + WORST_CASE_WEIGHT * worst)
 
 
 def selection_probabilities(usefulness: np.ndarray, *, floor: float) -> np.ndarray:
