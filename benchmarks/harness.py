@@ -85,8 +85,8 @@ UsefulnessRule = Callable[[SurrogateScores, RuleContext], np.ndarray]
 
 
 def _core_usefulness(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
-    del context
-    return np.asarray(usefulness(scores), dtype=float)
+    # With the loss bound the core hedges against an overconfident surrogate.
+    return np.asarray(usefulness(scores, loss_bound=context.spec.bound), dtype=float)
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -27,6 +27,11 @@ __all__ = ["USEFULNESS_RULES", "worst_case_second_moment"]
 
 
 def _core(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+    return np.asarray(usefulness(scores, loss_bound=context.spec.bound), dtype=float)
+
+
+def _plain(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+    # The core's rule before the hedge: sqrt(E[(L - g)^2]).
     return np.asarray(usefulness(scores), dtype=float)
 
 
@@ -106,6 +111,7 @@ def _mixture_bound(alpha: float) -> UsefulnessRule:
 
 USEFULNESS_RULES: dict[str, Callable[[SurrogateScores, RuleContext], np.ndarray]] = {
     "core": _core,
+    "plain_square_root": _plain,
     "expected_loss": _expected_loss,
     "spread_x3": _with_spread(3.0),
     "spread_x10": _with_spread(10.0),
