@@ -233,7 +233,8 @@ def _new_draws(
     start = len(pool.draws)
     rng = np.random.default_rng([pool.seed, start])
     batch = draw_batch(
-        usefulness(scores),
+        # The hedged rule: the label-efficiency benchmark measured it against the plain one.
+        usefulness(scores, loss_bound=pool.loss_bound),
         g,
         k,
         floor=floor,
