@@ -178,14 +178,22 @@ def draw_batch(
         raise ValueError(f"rng = {describe(rng)}, must be a numpy.random.Generator.")
     codes = None
     if groups is not None:
-        codes = check_finite_array("groups", groups, ndim=1)
+        raw_codes = np.asarray(groups)
+        if np.issubdtype(raw_codes.dtype, np.integer) and raw_codes.ndim == 1:
+            # Integer codes (the server's case) need no finiteness or integrality check:
+            # on a million candidates those checks cost more than the draws themselves.
+            codes = raw_codes
+            whole = True
+        else:
+            codes = check_finite_array("groups", groups, ndim=1)
+            whole = bool(np.all(codes == np.round(codes)))
         if codes.shape[0] != n:
             raise ValueError(f"groups has {codes.shape[0]} entries, must match usefulness ({n}).")
         if int(num_groups) != num_groups or num_groups < 1:
             raise ValueError(
                 f"num_groups = {describe(num_groups)}, must be an integer >= 1 with groups."
             )
-        if n and (np.any(codes != np.round(codes)) or codes.min() < 0 or codes.max() >= num_groups):
+        if n and (not whole or codes.min() < 0 or codes.max() >= num_groups):
             raise ValueError(
                 f"groups range [{describe(codes.min())}, {describe(codes.max())}],"
                 f" must be integer codes "
