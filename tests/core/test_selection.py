@@ -144,6 +144,9 @@ def test_one_million_candidates_draw_a_batch_of_100_well_under_a_second():
         ({"expected_loss": np.full(10, 2.0)}, "must lie in [0, 1.0]"),
         ({"loss_bound": float("inf")}, "loss_bound = inf, must be finite and > 0"),
         ({"groups": np.full(10, 3), "num_groups": 2}, "must be integer codes in [0, 2)"),
+        ({"groups": np.full(10, 0.5), "num_groups": 2}, "must be integer codes in [0, 2)"),
+        ({"groups": np.full(10, -1), "num_groups": 2}, "must be integer codes in [0, 2)"),
+        ({"groups": np.r_[np.zeros(9), np.nan], "num_groups": 2}, "groups[9] = nan"),
     ],
 )
 def test_bad_draw_arguments_raise_value_error_naming_field_value_and_rule(kwargs, message):
