@@ -4,6 +4,12 @@ Claims: E[a_m] differs from the risk by at most the late allowance (proved exact
 enumeration in test_enumeration.py); here a Monte-Carlo run checks that the fixed-time
 interval with its late allowance, and the anytime bounds (late items at 0 / B), still
 cover the risk of the whole final pool at the nominal rate or better.
+
+Outside references for the checked properties: the martingale central limit theorem
+("Martingale Limit Theory and Its Application", Academic Press, 1980) for the fixed-time
+rate, and Ville's inequality behind betting confidence sequences ("Estimating means of
+bounded random variables by betting", JRSS-B, 2024) for the never-miss rate. The pool is
+synthetic on purpose: the properties hold for any bounded losses.
 """
 
 from __future__ import annotations

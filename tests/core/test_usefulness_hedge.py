@@ -1,4 +1,9 @@
-"""The hedged usefulness rule: formula by hand, plain rule without a bound, bad input."""
+"""The hedged usefulness rule: formula by hand, plain rule without a bound, bad input.
+
+The rule is our own (no outside source): these tests pin its definition, worked by hand.
+The plain form sqrt(E[(L - g)^2]) is the variance-optimal importance-sampling proposal for
+a difference estimator ("Model Assisted Survey Sampling", Springer, 1992).
+"""
 
 from __future__ import annotations
 
