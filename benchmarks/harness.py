@@ -98,6 +98,9 @@ class HarnessConfig:
     refit_at: tuple[int, ...] = (10, 25, 50, 100)
     floor: float = DEFAULT_FLOOR
     gate_floor: float = 0.85
+    # Experiment (not adopted): leadline's runs raise the floor per batch with
+    # benchmarks.experiments.adaptive_floor.
+    adaptive_floor: bool = False
     confidence: float = 0.9
     anytime_from: int = 10
     seed: int = 20261202
@@ -152,6 +155,8 @@ class _Run:
     correction_low: list[float] = field(default_factory=list)
     correction_high: list[float] = field(default_factory=list)
     residual_second_moment: list[float] = field(default_factory=list)
+    floor: list[float] = field(default_factory=list)
+    remaining_count: list[int] = field(default_factory=list)
     sums_at: dict[int, PlugInSums] = field(default_factory=dict)
 
     def terms(self, losses: np.ndarray, count: int) -> DrawTerms:
@@ -198,8 +203,12 @@ def _plug_in_sums(scenario: Scenario, labeled: np.ndarray, scores: SurrogateScor
 
 
 def _subset(scores: SurrogateScores, idx: np.ndarray) -> SurrogateScores:
+    worst = scores.worst_squared_deviation
     return SurrogateScores(
-        scores.expected_loss[idx], scores.residual_second_moment[idx], scores.spread[idx]
+        scores.expected_loss[idx],
+        scores.residual_second_moment[idx],
+        scores.spread[idx],
+        None if worst is None else worst[idx],
     )
 
 
@@ -211,9 +220,11 @@ def _sequential_run(
     proposal: Callable[[SurrogateScores, np.ndarray, int], np.ndarray],
     floor: float,
     surrogate_for: Callable[[int, np.ndarray, list[int]], SurrogateScores],
+    adapt: bool = False,
 ) -> _Run:
     """Draw ``max_budget`` items in batches; ``surrogate_for(m, labeled, order)`` gives the
-    pool-wide scores current at draw m (fitted on labels before m only)."""
+    pool-wide scores current at draw m (fitted on labels before m only). ``adapt``: each
+    batch's floor from ``adaptive_floor`` over the draws so far (``floor`` the minimum)."""
     n = scenario.pool_size
     run = _Run(pool_size=n)
     labeled = np.zeros(n, dtype=bool)
@@ -224,17 +235,31 @@ def _sequential_run(
         candidates = np.flatnonzero(~labeled)
         cand_scores = _subset(scores, candidates)
         u = proposal(cand_scores, candidates, done)
+        batch_floor = floor
+        if adapt:
+            from benchmarks.experiments.adaptive_floor import adaptive_floor
+
+            order = np.asarray(run.order, dtype=np.int64)
+            batch_floor = adaptive_floor(
+                scenario.losses[order] - np.asarray(run.expected_loss),
+                np.asarray(run.probability),
+                np.asarray(run.floor),
+                np.asarray(run.remaining_count, dtype=float),
+                minimum=floor,
+            )
         batch = draw_batch(
             u,
             cand_scores.expected_loss,
             size,
-            floor=floor,
+            floor=batch_floor,
             loss_bound=bound,
             rng=rng,
         )
         items = candidates[batch.positions]
         run.order.extend(int(i) for i in items)
         run.probability.extend(batch.probabilities.tolist())
+        run.floor.extend([batch_floor] * size)
+        run.remaining_count.extend(int(c) for c in batch.remaining_counts)
         run.expected_loss.extend(cand_scores.expected_loss[batch.positions].tolist())
         run.remaining_expected_loss.extend(batch.remaining_expected_loss.tolist())
         run.correction_low.extend(batch.correction_low.tolist())
@@ -351,6 +376,7 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
         proposal=rule_on_pool,
         floor=config.floor,
         surrogate_for=own_surrogate,
+        adapt=config.adaptive_floor,
     )
     snapshot_points = sorted(snapshots)
 
@@ -387,6 +413,7 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             proposal=rule_on_pool,
             floor=config.gate_floor,
             surrogate_for=shared_surrogate,
+            adapt=config.adaptive_floor,
         )
 
     shape = (len(METHODS), len(budgets))

@@ -21,7 +21,7 @@ from collections.abc import Callable
 import numpy as np
 
 from benchmarks.harness import RuleContext, UsefulnessRule
-from leadline.service.estimation import SurrogateScores, usefulness
+from leadline.service.estimation import SurrogateScores, usefulness, worst_squared_deviation
 
 __all__ = ["USEFULNESS_RULES", "worst_case_second_moment"]
 
@@ -44,14 +44,9 @@ def _second(scores: SurrogateScores) -> np.ndarray:
 
 
 def worst_case_second_moment(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
-    """max over possible labels of (L - g)^2: classification from the loss table of each
-    item's output, regression (L in [0, cap]) from the ends of the range."""
-    g = scores.expected_loss
-    spec = context.spec
-    if spec.is_classification:
-        table = np.asarray(spec.loss_table(context.outputs), dtype=float)
-        return np.max((table - g[:, None]) ** 2, axis=1)
-    return np.maximum(g, spec.bound - g) ** 2
+    """max over possible labels of (L - g)^2: the core's ``worst_squared_deviation`` (loss
+    table for classification, the ends of [0, B] for regression)."""
+    return worst_squared_deviation(context.spec, context.outputs, scores.expected_loss)
 
 
 def _with_spread(weight: float) -> UsefulnessRule:
@@ -100,7 +95,7 @@ def _mixture(alpha: float | None, *, prior_labels: float = 10.0) -> UsefulnessRu
 
 def _mixture_bound(alpha: float) -> UsefulnessRule:
     # As _mixture, but the worst case from the loss bound alone, max(g, B - g)^2: needs
-    # only the scores and B (no loss table), so it fits the core's usefulness(scores).
+    # only g and B (no loss table); the core's rule before it used the loss table.
     def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
         g = scores.expected_loss
         worst = np.maximum(g, context.spec.bound - g) ** 2

@@ -58,6 +58,7 @@ from leadline.service.estimation import (
     SurrogateScores,
     SurrogateSettings,
     check_gate,
+    concatenate_scores,
     estimate_risk,
     fit_surrogate,
 )
@@ -91,11 +92,7 @@ def _score_rows(surrogate: Surrogate, features: np.ndarray, outputs: np.ndarray)
         surrogate.score(features[i : i + _SCORE_CHUNK], outputs[i : i + _SCORE_CHUNK])
         for i in range(0, n, _SCORE_CHUNK)
     ]
-    return SurrogateScores(
-        expected_loss=np.concatenate([p.expected_loss for p in parts]),
-        residual_second_moment=np.concatenate([p.residual_second_moment for p in parts]),
-        spread=np.concatenate([p.spread for p in parts]),
-    )
+    return concatenate_scores(parts)
 
 
 class Engine:
@@ -810,12 +807,11 @@ class Engine:
                     parts.append(
                         surrogate.score(pool.features.view[done:n], pool.outputs.view[done:n])
                     )
-                expected = np.concatenate([p.expected_loss for p in parts])
-                second = np.concatenate([p.residual_second_moment for p in parts])
-                spread = np.concatenate([p.spread for p in parts])
-                pool.expected_loss.replace(expected)
-                pool.second_moment.replace(second)
-                pool.spread.replace(spread)
+                rescored = concatenate_scores(parts)
+                pool.expected_loss.replace(rescored.expected_loss)
+                pool.second_moment.replace(rescored.residual_second_moment)
+                pool.spread.replace(rescored.spread)
+                pool.worst_deviation.replace(ingest.worst_deviation_of(rescored, pool.loss_bound))
                 pool.surrogate = surrogate
                 pool.surrogate_label_count = int(labels.shape[0])
                 pool.last_fit_time = time.monotonic()

@@ -26,6 +26,15 @@ def now_ms() -> int:
     return int(time.time() * 1000)
 
 
+def worst_deviation_of(scores: SurrogateScores, loss_bound: float) -> np.ndarray:
+    """The scores' worst-case squared deviation, or the loss-bound form max(g, B - g)^2
+    when the surrogate did not compute it (the selection hedge needs one or the other)."""
+    if scores.worst_squared_deviation is not None:
+        return scores.worst_squared_deviation
+    g = np.clip(scores.expected_loss, 0.0, loss_bound)
+    return np.maximum(g, loss_bound - g) ** 2
+
+
 def append_items(
     pool: PoolState,
     item_ids: list[str],
@@ -52,6 +61,7 @@ def append_items(
     pool.expected_loss.extend(current.expected_loss)
     pool.second_moment.extend(current.residual_second_moment)
     pool.spread.extend(current.spread)
+    pool.worst_deviation.extend(worst_deviation_of(current, pool.loss_bound))
     pool.status.extend(np.full(len(item_ids), AVAILABLE, dtype=np.int8))
     pool.item_draw.extend(np.full(len(item_ids), -1, dtype=np.int64))
 
@@ -117,6 +127,7 @@ def apply_batch(
                 expected_loss=scores.expected_loss[new_positions],
                 residual_second_moment=scores.residual_second_moment[new_positions],
                 spread=scores.spread[new_positions],
+                worst_squared_deviation=worst_deviation_of(scores, pool.loss_bound)[new_positions],
             )
 
         append_items(

@@ -229,6 +229,7 @@ def _new_draws(
         expected_loss=g,
         residual_second_moment=pool.second_moment.view[candidates],
         spread=pool.spread.view[candidates],
+        worst_squared_deviation=pool.worst_deviation.view[candidates],
     )
     start = len(pool.draws)
     rng = np.random.default_rng([pool.seed, start])

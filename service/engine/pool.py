@@ -214,6 +214,7 @@ class PoolState:
         self.expected_loss = Column(np.float64)  # current surrogate g
         self.second_moment = Column(np.float64)  # current E[(L - g)^2]
         self.spread = Column(np.float64)
+        self.worst_deviation = Column(np.float64)  # max (L - g)^2: the selection hedge
         self.status = Column(np.int8)
         self.item_draw = Column(np.int64, fill=-1)
         self.segment_names: list[str] = []

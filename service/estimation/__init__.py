@@ -30,7 +30,9 @@ from .surrogate import (
     SurrogateScores,
     SurrogateSettings,
     cold_start_surrogate,
+    concatenate_scores,
     fit_surrogate,
+    worst_squared_deviation,
 )
 from .terms import DRAW_LABELED, DRAW_PENDING, DRAW_SKIPPED, DrawTerms, PlugInSums
 
@@ -60,6 +62,7 @@ __all__ = [
     "anytime_path",
     "check_gate",
     "cold_start_surrogate",
+    "concatenate_scores",
     "draw_batch",
     "empirical_bernstein_path",
     "estimate_risk",
@@ -69,4 +72,5 @@ __all__ = [
     "normal_quantile",
     "selection_probabilities",
     "usefulness",
+    "worst_squared_deviation",
 ]

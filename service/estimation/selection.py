@@ -9,12 +9,16 @@ JASA 2000, for defensive mixtures).
 
 Hedge against an overconfident surrogate (``usefulness(scores, loss_bound=B)``): the
 second moment is taken under a mixture that gives weight a = ``WORST_CASE_WEIGHT`` to the
-worst case, u(j) = sqrt(E[(L_j - g_j)^2] + a max(g_j, B - g_j)^2). Where the surrogate
-calls an item safe (E[(L - g)^2] ~ 0) but a costly mistake is possible, the plain rule
-leaves it only the floor's share, and the rare mistake then arrives with weight ~ N/floor.
-The label-efficiency benchmark (BENCHMARKS.md, selection-rule experiments) measured the
-hedge: it removed most of that loss on a shifted pool with cross-entropy and kept almost
-all of the gain on well-fit pools. Without ``loss_bound`` the plain rule is used.
+worst case, u(j) = sqrt(E[(L_j - g_j)^2] + a W_j) with W_j = max (L_j - g_j)^2 over the
+losses item j can take: ``scores.worst_squared_deviation`` (the item's own loss table)
+when the surrogate computed it, else the bound form max(g_j, B - g_j)^2. Where the
+surrogate calls an item safe (E[(L - g)^2] ~ 0) but a costly mistake is possible, the plain
+rule leaves it only the floor's share, and the rare mistake then arrives with weight
+~ N/floor. The label-efficiency benchmark (BENCHMARKS.md, selection-rule experiments)
+measured the hedge: it removed most of that loss on a shifted pool with cross-entropy and
+kept almost all of the gain on well-fit pools; the loss-table form did better than the
+bound form there, because an overconfident prediction's mistake is sized by its own
+probability rather than by the clip. Without ``loss_bound`` the plain rule is used.
 
 Selection probabilities over the remaining set U_m (unlabeled, unassigned, present):
 
@@ -75,9 +79,11 @@ _REJECTION_LIMIT = 64  # rejected tries before the cumulative sum is rebuilt wit
 
 def usefulness(scores: SurrogateScores, *, loss_bound: float | None = None) -> np.ndarray:
     """Residual-spread rule, (n,) >= 0: sqrt(E[(L - g)^2]), or with ``loss_bound`` B the
-    hedged sqrt(E[(L - g)^2] + WORST_CASE_WEIGHT max(g, B - g)^2) (module docstring).
+    hedged sqrt(E[(L - g)^2] + WORST_CASE_WEIGHT W) (module docstring), W the scores'
+    ``worst_squared_deviation`` if present, else max(g, B - g)^2.
 
-    Raises ValueError on NaN/inf scores, a shape mismatch, or B not finite and > 0.
+    Raises ValueError on NaN/inf scores, a shape mismatch, B not finite and > 0, or a
+    worst-case deviation outside [0, B^2].
     """
     second = check_finite_array("residual_second_moment", scores.residual_second_moment, ndim=1)
     second = np.maximum(second, 0.0)
@@ -92,8 +98,25 @@ def usefulness(scores: SurrogateScores, *, loss_bound: float | None = None) -> n
             f"expected_loss has {g.shape[0]} entries, must match residual_second_moment "
             f"({second.shape[0]})."
         )
-    g = np.clip(g, 0.0, bound)
-    worst = np.maximum(g, bound - g) ** 2
+    if scores.worst_squared_deviation is not None:
+        worst = check_finite_array(
+            "worst_squared_deviation", scores.worst_squared_deviation, ndim=1
+        )
+        if worst.shape != second.shape:
+            raise ValueError(
+                f"worst_squared_deviation has {worst.shape[0]} entries, must match "
+                f"residual_second_moment ({second.shape[0]})."
+            )
+        tolerance = 1e-9 * bound**2
+        if worst.size and (worst.min() < -tolerance or worst.max() > bound**2 + tolerance):
+            raise ValueError(
+                f"worst_squared_deviation range [{describe(worst.min())}, "
+                f"{describe(worst.max())}], must lie in [0, {describe(bound**2)}] (B^2)."
+            )
+        worst = np.clip(worst, 0.0, bound**2)
+    else:
+        g = np.clip(g, 0.0, bound)
+        worst = np.maximum(g, bound - g) ** 2
     return np.sqrt(second + WORST_CASE_WEIGHT * worst)
 
 

@@ -58,6 +58,8 @@ __all__ = [
     "MIN_REGRESSION_LABELS",
     "SurrogateSettings",
     "cold_start_surrogate",
+    "concatenate_scores",
+    "worst_squared_deviation",
     "fit_surrogate",
 ]
 
@@ -73,11 +75,18 @@ MIN_REGRESSION_LABELS: int = 10
 
 @dataclass(frozen=True)
 class SurrogateScores:
-    """Per-item surrogate predictions, each (n,)."""
+    """Per-item surrogate predictions, each (n,).
+
+    ``worst_squared_deviation`` is max over the losses the item can take of (L - g)^2:
+    from the item's own loss table (classification: the loss of its prediction under each
+    possible label) or, for regression, max(g, B - g)^2. The hedged usefulness uses it;
+    None means "not computed" and the hedge falls back to the loss-bound form.
+    """
 
     expected_loss: np.ndarray
     residual_second_moment: np.ndarray
     spread: np.ndarray
+    worst_squared_deviation: np.ndarray | None = None
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -96,6 +105,9 @@ class SurrogateSettings:
     max_training_rows: int = 20_000
     #: With at least this many labels a 20% hold-out picks the number of rounds.
     early_stopping_min_labels: int = 200
+    #: Below that, each member's out-of-bag rows pick its number of rounds.
+    out_of_bag_stopping: bool = False
+    out_of_bag_patience: int = 5
     num_threads: int = 1
 
     def __post_init__(self) -> None:
@@ -192,6 +204,7 @@ class Surrogate:
             expected_loss=g,
             residual_second_moment=aleatoric + epistemic,
             spread=np.sqrt(epistemic),
+            worst_squared_deviation=worst_squared_deviation(self.spec, out, g),
         )
 
     def class_probabilities(self, features: np.ndarray, outputs: np.ndarray) -> np.ndarray:
@@ -276,7 +289,43 @@ def _cold_scores(spec: LossSpec, outputs: np.ndarray) -> SurrogateScores:
     else:
         first = np.full(n, spec.loss_cap / 2.0)
         residual = np.full(n, spec.loss_cap**2 / 4.0)
-    return SurrogateScores(expected_loss=first, residual_second_moment=residual, spread=np.zeros(n))
+    return SurrogateScores(
+        expected_loss=first,
+        residual_second_moment=residual,
+        spread=np.zeros(n),
+        worst_squared_deviation=worst_squared_deviation(spec, outputs, first),
+    )
+
+
+def concatenate_scores(parts: list[SurrogateScores]) -> SurrogateScores:
+    """Scores of consecutive row chunks joined into one (``worst_squared_deviation`` only
+    if every part has it)."""
+    worst = [p.worst_squared_deviation for p in parts]
+    return SurrogateScores(
+        expected_loss=np.concatenate([p.expected_loss for p in parts]),
+        residual_second_moment=np.concatenate([p.residual_second_moment for p in parts]),
+        spread=np.concatenate([p.spread for p in parts]),
+        worst_squared_deviation=(
+            None if any(w is None for w in worst) else np.concatenate(worst)  # type: ignore[arg-type]
+        ),
+    )
+
+
+def worst_squared_deviation(
+    spec: LossSpec, outputs: np.ndarray, expected: np.ndarray
+) -> np.ndarray:
+    """max over the losses each item can take of (L - g)^2, (n,).
+
+    Classification: over the item's loss-table row (its prediction's loss under each
+    label), so an overconfident prediction's costly mistake counts at its own size.
+    Regression: the loss can be anywhere in [0, B], so max(g, B - g)^2. ``outputs`` must
+    be validated by ``spec.check_outputs``.
+    """
+    g = np.clip(np.asarray(expected, dtype=np.float64), 0.0, spec.bound)
+    if spec.is_classification:
+        table = spec.loss_table(outputs)
+        return np.max((table - g[:, None]) ** 2, axis=1)
+    return np.maximum(g, spec.bound - g) ** 2
 
 
 def _design(features: object, outputs: np.ndarray, feature_dim: int) -> np.ndarray:
@@ -405,6 +454,21 @@ def _train_unlocked(
         valid_sets = [valid]
         callbacks = [lgb.early_stopping(5, verbose=False)]
     sample = rng.choice(rows, size=rows.size, replace=True)
+    if not valid_sets and settings.out_of_bag_stopping:
+        # Below the hold-out threshold the rows this member's bootstrap left out (about a
+        # third) pick its number of rounds: with tens of labels the full schedule can fit
+        # noise and predict held-out losses worse than the warm start it began from.
+        out_of_bag = np.setdiff1d(rows, sample)
+        if out_of_bag.size:
+            valid_sets = [
+                lgb.Dataset(
+                    x[out_of_bag],
+                    label=y[out_of_bag],
+                    init_score=None if init is None else init[out_of_bag],
+                    params={"verbose": -1},
+                )
+            ]
+            callbacks = [lgb.early_stopping(settings.out_of_bag_patience, verbose=False)]
     train = lgb.Dataset(
         x[sample],
         label=y[sample],

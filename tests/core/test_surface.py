@@ -18,7 +18,8 @@ _CONTRACT = {
 _ADDED = {
     "DEFAULT_FLOOR", "selection_probabilities", "normal_quantile", "normal_cdf",
     "empirical_bernstein_path", "BALANCED_MIN_LABELS", "BET_TRUNCATION", "MAX_LABELS_HINT",
-    "PROBABILITY_SUM_TOLERANCE",
+    "PROBABILITY_SUM_TOLERANCE", "concatenate_scores",
+    "worst_squared_deviation",
 }  # fmt: skip
 
 

@@ -9,8 +9,16 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from sklearn.metrics import log_loss
 
-from leadline.service.estimation import SurrogateScores, usefulness
+from leadline.service.estimation import (
+    LossKind,
+    LossSpec,
+    SurrogateScores,
+    cold_start_surrogate,
+    usefulness,
+    worst_squared_deviation,
+)
 from leadline.service.estimation.selection import WORST_CASE_WEIGHT
 
 
@@ -47,3 +55,47 @@ def test_without_bound_the_rule_is_the_plain_square_root():
 def test_bad_bound_is_rejected(bound: float, message: str):
     with pytest.raises(ValueError, match=message):
         usefulness(_scores([0.1], [0.01]), loss_bound=bound)
+
+
+def test_worst_deviation_from_loss_table_matches_sklearn_log_loss():
+    # Each item's possible losses are its cross-entropy under each label, computed here by
+    # scikit-learn's log_loss (the outside reference); the worst squared deviation from g
+    # is the largest of (loss - g)^2 over those labels.
+    spec = LossSpec(kind=LossKind.CROSS_ENTROPY, num_classes=3)
+    outputs = np.array([[0.98, 0.01, 0.01], [0.4, 0.35, 0.25]])
+    g = np.array([0.05, 1.0])
+    got = worst_squared_deviation(spec, outputs, g)
+    for i in range(2):
+        per_label = [log_loss([label], outputs[i : i + 1], labels=[0, 1, 2]) for label in range(3)]
+        assert got[i] == pytest.approx(max((loss - g[i]) ** 2 for loss in per_label))
+
+
+def test_loss_table_hedge_sizes_a_confident_mistake_by_its_own_probability():
+    # A 0.99-confident item's mistake costs -log(0.01) ~ 4.6, far below the clip's 13.8:
+    # the loss-table hedge gives it sqrt(a) * (4.6 - g), the bound form sqrt(a) * (13.8 - g).
+    spec = LossSpec(kind=LossKind.CROSS_ENTROPY, num_classes=2)
+    outputs = np.array([[0.99, 0.01]])
+    scores = cold_start_surrogate(spec).score(np.zeros((1, 1)), outputs)
+    assert scores.worst_squared_deviation is not None
+    g = scores.expected_loss[0]
+    hedged = usefulness(scores, loss_bound=spec.bound)[0]
+    by_table = np.sqrt(
+        scores.residual_second_moment[0] + WORST_CASE_WEIGHT * (-np.log(0.01) - g) ** 2
+    )
+    assert hedged == pytest.approx(by_table, rel=1e-9)
+    bound_form = usefulness(
+        SurrogateScores(scores.expected_loss, scores.residual_second_moment, scores.spread),
+        loss_bound=spec.bound,
+    )[0]
+    assert bound_form > 2 * hedged
+
+
+def test_worst_deviation_outside_the_squared_bound_is_rejected():
+    scores = SurrogateScores(
+        expected_loss=np.array([0.1]),
+        residual_second_moment=np.array([0.01]),
+        spread=np.zeros(1),
+        worst_squared_deviation=np.array([1.5]),
+    )
+    with pytest.raises(ValueError, match=r"worst_squared_deviation range \[1.5, 1.5\]"):
+        usefulness(scores, loss_bound=1.0)
