@@ -247,6 +247,7 @@ def _sequential_run(
                 np.asarray(run.remaining_count, dtype=float),
                 minimum=floor,
             )
+        worst = cand_scores.worst_squared_deviation
         batch = draw_batch(
             u,
             cand_scores.expected_loss,
@@ -254,6 +255,7 @@ def _sequential_run(
             floor=batch_floor,
             loss_bound=bound,
             rng=rng,
+            max_deviation=None if worst is None else np.sqrt(worst),
         )
         items = candidates[batch.positions]
         run.order.extend(int(i) for i in items)

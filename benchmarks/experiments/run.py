@@ -69,6 +69,13 @@ def _arms() -> dict[str, dict[str, Any]]:
         "ensemble_10": {"surrogate_settings": replace(base, ensemble_size=10)},
         "rounds_80": {"surrogate_settings": replace(base, num_rounds=80)},
         "rounds_20": {"surrogate_settings": replace(base, num_rounds=20)},
+        "core_pow_0.75": {"usefulness_rule": "core_pow_0.75"},
+        "core_pow_0.5": {"usefulness_rule": "core_pow_0.5"},
+        "floor_0.2": {"floor": 0.2},
+        "floor_0.15": {"floor": 0.15},
+        "adaptive_floor": {"adaptive_floor": True},
+        "adaptive_floor_0.1": {"adaptive_floor": True, "floor": 0.1},
+        "out_of_bag_stopping": {"surrogate_settings": replace(base, out_of_bag_stopping=True)},
     }
 
 

@@ -104,6 +104,15 @@ def _mixture_bound(alpha: float) -> UsefulnessRule:
     return rule
 
 
+def _core_power(exponent: float) -> UsefulnessRule:
+    # The core's hedged rule raised to a power < 1: flatter where the surrogate's spread
+    # tracks the residuals only loosely.
+    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+        return _core(scores, context) ** exponent
+
+    return rule
+
+
 USEFULNESS_RULES: dict[str, Callable[[SurrogateScores, RuleContext], np.ndarray]] = {
     "core": _core,
     "plain_square_root": _plain,
@@ -120,4 +129,6 @@ USEFULNESS_RULES: dict[str, Callable[[SurrogateScores, RuleContext], np.ndarray]
     "mixture_succession": _mixture(None),
     "mixture_bound_0.01": _mixture_bound(0.01),
     "mixture_bound_0.003": _mixture_bound(0.003),
+    "core_pow_0.5": _core_power(0.5),
+    "core_pow_0.75": _core_power(0.75),
 }

@@ -225,11 +225,12 @@ def _new_draws(
     if k == 0:
         return []
     g = pool.expected_loss.view[candidates]
+    worst = pool.worst_deviation.view[candidates]
     scores = SurrogateScores(
         expected_loss=g,
         residual_second_moment=pool.second_moment.view[candidates],
         spread=pool.spread.view[candidates],
-        worst_squared_deviation=pool.worst_deviation.view[candidates],
+        worst_squared_deviation=worst,
     )
     start = len(pool.draws)
     rng = np.random.default_rng([pool.seed, start])
@@ -243,6 +244,8 @@ def _new_draws(
         rng=rng,
         groups=pool.segment.view[candidates].astype(np.int64),
         num_groups=len(pool.segment_names),
+        # Each item's own reach |L - g| narrows the anytime bound's per-draw ranges.
+        max_deviation=np.sqrt(worst),
     )
     rows = candidates[batch.positions]
     by_group = batch.remaining_expected_loss_by_group

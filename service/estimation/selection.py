@@ -36,10 +36,11 @@ exactly from the u-proportional distribution over the remaining set; the uniform
 rejects drawn positions likewise.
 
 Per-draw ranges ``correction_low`` / ``correction_high`` bound (L - g) / q_m over the
-candidates. They are computed over the batch-start candidate set (a superset of U_m, so
-the range is valid, never narrower than the true one) with each draw's own q_m; q_m(j)
-only grows as items leave, which lets an O(n) prefilter find the few items that can attain
-the extreme for any draw of the batch.
+candidates (with ``max_deviation``, each item's own reach |L - g| instead of [0, B]). They
+are computed over the batch-start candidate set (a superset of U_m, so the range is valid,
+never narrower than the true one) with each draw's own q_m; q_m(j) only grows as items
+leave, which lets an O(n) prefilter find the few items that can attain the extreme for any
+draw of the batch.
 """
 
 from __future__ import annotations
@@ -165,13 +166,18 @@ def draw_batch(
     rng: np.random.Generator,
     groups: np.ndarray | None = None,
     num_groups: int = 0,
+    max_deviation: np.ndarray | None = None,
 ) -> DrawBatch:
     """Draw ``count`` distinct candidates; see the module docstring for the design.
 
     ``usefulness`` and ``expected_loss`` (g, in [0, loss_bound]) are (n,) over the current
     candidates U_0. ``groups`` (n,) integer codes in [0, num_groups) add per-group sums of g
-    over the remaining set. Raises ValueError (field, value, rule) on NaN/inf, shape
-    mismatch, floor outside (0, 1], count < 0 or count > n, g outside [0, loss_bound].
+    over the remaining set. ``max_deviation`` (n,) >= 0, optional: a bound on |L_j - g_j|
+    for each candidate (sqrt of ``SurrogateScores.worst_squared_deviation``); the per-draw
+    correction ranges then use min(B - g_j, d_j) and min(g_j, d_j) instead of B - g_j and
+    g_j, which narrows them where an item's own possible losses are far inside [0, B].
+    Raises ValueError (field, value, rule) on NaN/inf, shape mismatch, floor outside
+    (0, 1], count < 0 or count > n, g outside [0, loss_bound], a negative max_deviation.
     """
     u = _check_usefulness(usefulness)
     # Subnormal scores would overflow 1 / sum(u); they carry no usable weight anyway.
@@ -192,6 +198,21 @@ def draw_batch(
             "(loss_bound)."
         )
     g = np.clip(g, 0.0, bound)
+    reach_up, reach_down = bound - g, g
+    if max_deviation is not None:
+        deviation = check_finite_array("max_deviation", max_deviation, ndim=1)
+        if deviation.shape[0] != n:
+            raise ValueError(
+                f"max_deviation has {deviation.shape[0]} entries, must match usefulness ({n})."
+            )
+        if n and deviation.min() < 0.0:
+            i = int(np.argmin(deviation))
+            raise ValueError(f"max_deviation[{i}] = {describe(deviation[i])}, must be >= 0.")
+        # A hair of slack: the realised loss is recomputed from the same outputs and may
+        # differ from the table entry in the last bits.
+        deviation = deviation * (1.0 + 1e-9) + 1e-12 * bound
+        reach_up = np.minimum(reach_up, deviation)
+        reach_down = np.minimum(reach_down, deviation)
     if isinstance(count, bool) or int(count) != count or count < 0:
         raise ValueError(f"count = {describe(count)}, must be an integer >= 0.")
     count = int(count)
@@ -288,7 +309,7 @@ def draw_batch(
             step[np.arange(count), codes[positions]] = drawn_g
         prior = np.cumsum(step, axis=0) - step
         by_group = start[None, :] - prior
-    high, low, min_probability = _correction_ranges(u, g, bound, scale_u, scale_flat)
+    high, low, min_probability = _correction_ranges(u, reach_up, reach_down, scale_u, scale_flat)
     return DrawBatch(
         positions=positions,
         probabilities=probabilities,
@@ -302,10 +323,15 @@ def draw_batch(
 
 
 def _correction_ranges(
-    u: np.ndarray, g: np.ndarray, bound: float, scale_u: np.ndarray, scale_flat: np.ndarray
+    u: np.ndarray,
+    reach_up: np.ndarray,
+    reach_down: np.ndarray,
+    scale_u: np.ndarray,
+    scale_flat: np.ndarray,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per draw m: max_j (B - g_j)/q_m(j), -max_j g_j/q_m(j) and min_j q_m(j) over the
-    batch-start candidates, with q_m(j) = scale_u[m] u_j + scale_flat[m]."""
+    """Per draw m: max_j up_j/q_m(j), -max_j down_j/q_m(j) and min_j q_m(j) over the
+    batch-start candidates, with q_m(j) = scale_u[m] u_j + scale_flat[m]; up_j / down_j
+    bound how far L_j can lie above / below g_j (B - g_j and g_j without more knowledge)."""
     count = scale_u.shape[0]
     if count == 0:
         return np.zeros(0), np.zeros(0), np.zeros(0)
@@ -320,7 +346,7 @@ def _correction_ranges(
         ratios.append(np.zeros(1))
     kappa = float(max(r.max() for r in ratios)) * (1.0 + 1e-12)
     extremes = []
-    for value in (bound - g, g):
+    for value in (reach_up, reach_down):
         ratio = value / q0
         top = float(ratio.max())
         if top <= 0.0:

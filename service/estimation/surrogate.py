@@ -105,7 +105,8 @@ class SurrogateSettings:
     max_training_rows: int = 20_000
     #: With at least this many labels a 20% hold-out picks the number of rounds.
     early_stopping_min_labels: int = 200
-    #: Below that, each member's out-of-bag rows pick its number of rounds.
+    #: Below that, each member's out-of-bag rows pick its number of rounds. Off: it lost
+    #: in the label-efficiency experiments (benchmarks/experiments/NOTES.md).
     out_of_bag_stopping: bool = False
     out_of_bag_patience: int = 5
     num_threads: int = 1
@@ -119,6 +120,7 @@ class SurrogateSettings:
             "max_bin",
             "max_training_rows",
             "num_threads",
+            "out_of_bag_patience",
         ):
             value = getattr(self, name)
             if not isinstance(value, int) or value < 1:

@@ -193,3 +193,52 @@ def test_any_small_pool_logs_exact_probabilities_and_covering_ranges(data, n, fl
         assert batch.correction_low[m] <= np.min(-g[remaining] / q) * (1 - 1e-9)
         remaining.remove(int(item))
     assert sorted(set(batch.positions.tolist())) == sorted(batch.positions.tolist())
+
+
+def test_own_reach_ranges_cover_every_possible_loss_and_are_narrower():
+    # The betting confidence sequence needs each draw's correction inside a range known
+    # before the draw ("Estimating means of bounded random variables by betting", JRSS-B
+    # 2023). With max_deviation = sqrt(worst_squared_deviation) the logged range must still
+    # contain (L - g)/q for every candidate and every label it could get, computed here
+    # from scikit-learn's log_loss, and be no wider than the [0, B] range.
+    from sklearn.metrics import log_loss
+
+    from leadline.service.estimation import LossKind, LossSpec, cold_start_surrogate
+
+    spec = LossSpec(kind=LossKind.CROSS_ENTROPY, num_classes=3)
+    rng = np.random.default_rng(17)
+    outputs = rng.dirichlet([0.3, 0.3, 0.3], size=30)
+    outputs = np.clip(outputs, 1e-4, None)
+    outputs /= outputs.sum(axis=1, keepdims=True)
+    scores = cold_start_surrogate(spec).score(np.zeros((30, 1)), outputs)
+    g = scores.expected_loss
+    assert scores.worst_squared_deviation is not None
+    reach = np.sqrt(scores.worst_squared_deviation)
+    u = usefulness(scores, loss_bound=spec.bound)
+    narrow = draw_batch(
+        u, g, 12, floor=0.3, loss_bound=spec.bound, rng=np.random.default_rng(1),
+        max_deviation=reach,
+    )  # fmt: skip
+    wide = draw_batch(u, g, 12, floor=0.3, loss_bound=spec.bound, rng=np.random.default_rng(1))
+    np.testing.assert_array_equal(narrow.positions, wide.positions)
+    losses = np.array(
+        [[log_loss([y], outputs[j : j + 1], labels=[0, 1, 2]) for y in range(3)] for j in range(30)]
+    )
+    remaining = list(range(30))
+    for m, item in enumerate(narrow.positions):
+        q = selection_probabilities(u[remaining], floor=0.3)
+        corrections = (losses[remaining] - g[remaining, None]) / q[:, None]
+        assert corrections.max() <= narrow.correction_high[m] * (1 + 1e-9)
+        assert corrections.min() >= narrow.correction_low[m] * (1 + 1e-9)
+        assert narrow.correction_high[m] <= wide.correction_high[m]
+        assert narrow.correction_low[m] >= wide.correction_low[m]
+        remaining.remove(int(item))
+    assert narrow.correction_high[0] < 0.6 * wide.correction_high[0]
+
+
+def test_negative_max_deviation_is_rejected():
+    with pytest.raises(ValueError, match=r"max_deviation\[1\] = -0.5, must be >= 0"):
+        draw_batch(
+            np.ones(3), np.full(3, 0.2), 1, floor=0.3, loss_bound=1.0,
+            rng=np.random.default_rng(0), max_deviation=np.array([0.1, -0.5, 0.2]),
+        )  # fmt: skip
