@@ -101,6 +101,10 @@ class HarnessConfig:
     # Experiment (not adopted): leadline's runs raise the floor per batch with
     # benchmarks.experiments.adaptive_floor.
     adaptive_floor: bool = False
+    # Experiment: at each refit keep the cold start instead of the new fit when, on the
+    # draws made since the first refit, the fitted surrogates' honest predictions (each
+    # from a fit that had not seen the item) erred more than the cold start's.
+    cold_start_guard: bool = False
     confidence: float = 0.9
     anytime_from: int = 10
     seed: int = 20261202
@@ -342,6 +346,22 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
     refit_points = set(config.refit_at)
     fit_seed = int(rng.integers(2**31 - 1))
 
+    fitted: dict[int, SurrogateScores] = {}
+
+    def _cold_start_erred_less(m: int, order: list[int]) -> bool:
+        # Draws t >= the first refit point: the fit in force at t (fitted[p], p <= t) had
+        # not seen item order[t]; compare its squared error with the cold start's.
+        points = sorted(p for p in fitted if 0 < p < m)
+        if not points:
+            return False
+        fit_err = cold_err = 0.0
+        for t in range(points[0], m):
+            p = max(q for q in points if q <= t)
+            item = order[t]
+            fit_err += float(losses[item] - fitted[p].expected_loss[item]) ** 2
+            cold_err += float(losses[item] - fitted[0].expected_loss[item]) ** 2
+        return cold_err < fit_err
+
     def own_surrogate(m: int, labeled: np.ndarray, order: list[int]) -> SurrogateScores:
         nonlocal fit_seconds
         if m == 0 or m in refit_points:
@@ -361,6 +381,9 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
                 )
             scores = model.score(features, outputs)
             fit_seconds += time.perf_counter() - t0
+            fitted[m] = scores
+            if config.cold_start_guard and m > 0 and _cold_start_erred_less(m, order):
+                scores = fitted[0]
             snapshots[m] = scores
             current[:] = [scores]
         return current[0]

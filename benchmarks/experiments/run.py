@@ -73,6 +73,7 @@ def _arms() -> dict[str, dict[str, Any]]:
         "core_pow_0.5": {"usefulness_rule": "core_pow_0.5"},
         "floor_0.2": {"floor": 0.2},
         "floor_0.15": {"floor": 0.15},
+        "cold_start_guard": {"cold_start_guard": True},
         "adaptive_floor": {"adaptive_floor": True},
         "adaptive_floor_0.1": {"adaptive_floor": True, "floor": 0.1},
         "out_of_bag_stopping": {"surrogate_settings": replace(base, out_of_bag_stopping=True)},

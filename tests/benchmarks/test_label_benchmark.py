@@ -69,6 +69,22 @@ def test_repetition_runs_every_method_on_a_tiny_scenario() -> None:
     assert summary.cost.shape == (len(METHODS), 3)
 
 
+@pytest.mark.parametrize(
+    "option", [{"adaptive_floor": True}, {"cold_start_guard": True}], ids=lambda o: next(iter(o))
+)
+def test_experiment_options_keep_the_run_valid(option: dict) -> None:
+    # The experiment arms change only which predictable proposal / surrogate is used, so
+    # every method still yields finite estimates inside their intervals' ordering.
+    scenario = build_scenario("breast_cancer", quick=True)
+    config = HarnessConfig(
+        budgets=(10, 20, 40), refit_at=(10, 20, 40), batch_size=5, with_baselines=False, **option
+    )
+    result = run_repetition(scenario, 1, config)
+    leadline_rows = [METHODS.index(name) for name in ("unbiased", "balanced", "surrogate")]
+    assert np.all(np.isfinite(result.estimate[leadline_rows]))
+    assert np.all(result.lower[leadline_rows] <= result.upper[leadline_rows])
+
+
 def test_quick_command_writes_a_report(tmp_path: Path) -> None:
     output = tmp_path / "quick.md"
     code = main(
