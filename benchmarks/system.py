@@ -32,8 +32,6 @@ import platform
 import re
 import secrets
 import shlex
-import shutil
-import signal
 import sqlite3
 import subprocess
 import sys
@@ -53,7 +51,7 @@ if str(_ROOT) not in sys.path:  # run as a script: make `benchmarks` importable
     sys.path.insert(0, str(_ROOT))
 
 from benchmarks.markdown import replace_section  # noqa: E402
-from leadline.client import Client  # noqa: E402
+from leadline.client import Client, LocalServer  # noqa: E402
 from leadline.service.estimation import (  # noqa: E402
     DRAW_LABELED,
     DRAW_PENDING,
@@ -99,7 +97,6 @@ SEGMENT_NAMES = ("hall-a", "hall-b", "hall-c", "hall-d")
 # The server's default defensive floor (docs/operations.md); the bare draws use the same.
 SELECTION_FLOOR = 0.3
 CONFIDENCE = 0.95
-_LISTENING = re.compile(r"leadline listening on (\S+:\d+)")
 _METRICS = re.compile(r"metrics on (http://\S+:\d+/metrics)")
 _ARRIVAL_STEP_MS = 50  # one parcel every 50 ms
 _START_TIME_MS = 1_780_000_000_000
@@ -294,96 +291,44 @@ def make_pool_data(n: int, *, feature_dim: int, num_classes: int, seed: int) -> 
 # ---------------------------------------------------------------------------------------
 # the server child process
 # ---------------------------------------------------------------------------------------
-def _leadline_command() -> list[str]:
-    """The installed ``leadline`` script beside this interpreter, else the module form."""
-    beside = Path(sys.executable).with_name("leadline")
-    if beside.exists():
-        return [str(beside)]
-    found = shutil.which("leadline")
-    return [found] if found else [sys.executable, "-m", "leadline.client.cli"]
+class ServerProcess(LocalServer):
+    """``leadline serve`` on 127.0.0.1 port 0 with its data and token file under workdir
+    (the client's ``LocalServer``), plus what the benchmark reads from the process: CPU
+    time, resident memory and the server-side call times on its metrics page.
 
-
-class ServerProcess:
-    """``leadline serve`` on 127.0.0.1 port 0 with its data and token file under workdir.
-
-    Its stderr goes to ``workdir/server.log``; :meth:`start` waits for the listening line
-    and returns ``host:port``. The token holds every role, so one client does everything.
+    The token holds every role, so one client does everything.
     """
 
     def __init__(
         self, workdir: Path, *, extra_args: Sequence[str] = (), startup_timeout: float = 120.0
     ) -> None:
-        self.workdir = Path(workdir)
         self.token = "bench-" + secrets.token_hex(16)
-        self.extra_args = list(extra_args)
-        self.startup_timeout = startup_timeout
-        self.log_path = self.workdir / "server.log"
-        self.target = ""
+        super().__init__(
+            workdir,
+            tokens={self.token: ("admin", "ingest", "labeler", "reader")},
+            # Server-side call times (the request histogram's sums) split transport from work.
+            extra_args=["--metrics-listen", "127.0.0.1:0", *extra_args],
+            startup_timeout=startup_timeout,
+        )
         self.returncode: int | None = None
-        self._process: subprocess.Popen[bytes] | None = None
-
-    @property
-    def pid(self) -> int:
-        if self._process is None:
-            raise RuntimeError("server not started")
-        return self._process.pid
 
     def __enter__(self) -> ServerProcess:
         self.start()
         return self
 
-    def __exit__(self, *exc: object) -> None:
-        self.stop()
+    def stop(self, *, timeout: float = 60.0) -> int | None:
+        """SIGTERM and wait (SIGKILL after ``timeout``); the exit code, also kept."""
+        self.returncode = super().stop(timeout=timeout)
+        return self.returncode
 
-    def start(self) -> str:
-        data_dir = self.workdir / "data"
-        data_dir.mkdir(parents=True, exist_ok=True)
-        tokens = self.workdir / "tokens.toml"
-        roles = '["admin", "ingest", "labeler", "reader"]'
-        tokens.write_text(f'[tokens]\n"{self.token}" = {roles}\n', encoding="utf-8")
-        tokens.chmod(0o600)
-        argv = _leadline_command() + [
-            "serve",
-            "--data-dir",
-            str(data_dir),
-            "--listen",
-            "127.0.0.1:0",
-            "--tokens",
-            str(tokens),
-            # Server-side call times (the request histogram's sums) split transport from work.
-            "--metrics-listen",
-            "127.0.0.1:0",
-            *self.extra_args,
-        ]
-        with self.log_path.open("wb") as log:
-            self._process = subprocess.Popen(
-                argv, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=log
-            )
-        deadline = time.monotonic() + self.startup_timeout
-        while time.monotonic() < deadline:
-            match = _LISTENING.search(self.log())
-            if match:
-                self.target = match.group(1)
-                return self.target
-            if self._process.poll() is not None:
-                raise RuntimeError(
-                    f"leadline serve exited with code {self._process.returncode} before "
-                    f"listening:\n{self.log()[-4000:]}"
-                )
-            time.sleep(0.05)
-        self._process.kill()
-        self._process.wait()
-        raise RuntimeError(f"leadline serve did not listen within {self.startup_timeout} s")
-
-    def log(self) -> str:
-        try:
-            return self.log_path.read_text(encoding="utf-8", errors="replace")
-        except FileNotFoundError:
-            return ""
+    def _proc_file(self, name: str) -> str:
+        if self.pid is None:
+            raise RuntimeError("server not started")
+        return Path(f"/proc/{self.pid}/{name}").read_text(encoding="ascii")
 
     def cpu_seconds(self) -> float:
         """User + system CPU time of the server process so far (/proc/PID/stat)."""
-        stat = Path(f"/proc/{self.pid}/stat").read_text(encoding="ascii")
+        stat = self._proc_file("stat")
         fields = stat.rsplit(")", 1)[1].split()
         # Fields 14 and 15 of proc(5) (utime, stime); fields[0] here is field 3.
         return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
@@ -415,27 +360,11 @@ class ServerProcess:
 
     def rss_bytes(self) -> int:
         """Resident memory of the server process (VmRSS of /proc/PID/status)."""
-        status = Path(f"/proc/{self.pid}/status").read_text(encoding="ascii")
+        status = self._proc_file("status")
         match = re.search(r"^VmRSS:\s+(\d+)\s+kB", status, re.MULTILINE)
         if match is None:
             raise RuntimeError(f"no VmRSS line in /proc/{self.pid}/status")
         return int(match.group(1)) * 1024
-
-    def stop(self, timeout: float = 60.0) -> int | None:
-        """SIGTERM and wait (SIGKILL after ``timeout``); the exit code."""
-        process = self._process
-        if process is None:
-            return None
-        if process.poll() is None:
-            process.send_signal(signal.SIGTERM)
-            try:
-                process.wait(timeout=timeout)
-            except subprocess.TimeoutExpired:
-                _LOG.warning("server ignored SIGTERM for %s s; killing it", timeout)
-                process.kill()
-                process.wait()
-        self.returncode = process.returncode
-        return self.returncode
 
 
 # ---------------------------------------------------------------------------------------
