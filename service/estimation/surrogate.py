@@ -440,37 +440,21 @@ def _train_unlocked(
     rng: np.random.Generator,
 ) -> lgb.Booster:
     n = x.shape[0]
-    callbacks: list[Any] = []
-    valid_sets = []
     rows = np.arange(n)
+    stop_rows: np.ndarray | None = None  # rows that pick the number of rounds, if any
+    patience = 5
     if n >= settings.early_stopping_min_labels:
         order = rng.permutation(n)
         cut = n // 5
-        hold, rows = order[:cut], order[cut:]
-        valid = lgb.Dataset(
-            x[hold],
-            label=y[hold],
-            init_score=None if init is None else init[hold],
-            params={"verbose": -1},
-        )
-        valid_sets = [valid]
-        callbacks = [lgb.early_stopping(5, verbose=False)]
+        stop_rows, rows = order[:cut], order[cut:]
     sample = rng.choice(rows, size=rows.size, replace=True)
-    if not valid_sets and settings.out_of_bag_stopping:
+    if stop_rows is None and settings.out_of_bag_stopping:
         # Below the hold-out threshold the rows this member's bootstrap left out (about a
         # third) pick its number of rounds: with tens of labels the full schedule can fit
         # noise and predict held-out losses worse than the warm start it began from.
         out_of_bag = np.setdiff1d(rows, sample)
         if out_of_bag.size:
-            valid_sets = [
-                lgb.Dataset(
-                    x[out_of_bag],
-                    label=y[out_of_bag],
-                    init_score=None if init is None else init[out_of_bag],
-                    params={"verbose": -1},
-                )
-            ]
-            callbacks = [lgb.early_stopping(settings.out_of_bag_patience, verbose=False)]
+            stop_rows, patience = out_of_bag, settings.out_of_bag_patience
     train = lgb.Dataset(
         x[sample],
         label=y[sample],
@@ -478,15 +462,24 @@ def _train_unlocked(
         params={"verbose": -1, "min_data_in_bin": 1, "max_bin": settings.max_bin},
         free_raw_data=True,
     )
-    if valid_sets:
-        valid_sets = [valid_sets[0]]
-        valid_sets[0].reference = train
+    valid_sets: list[lgb.Dataset] | None = None
+    callbacks: list[Any] | None = None
+    if stop_rows is not None:
+        valid = lgb.Dataset(
+            x[stop_rows],
+            label=y[stop_rows],
+            init_score=None if init is None else init[stop_rows],
+            params={"verbose": -1},
+            reference=train,
+        )
+        valid_sets = [valid]
+        callbacks = [lgb.early_stopping(patience, verbose=False)]
     return lgb.train(
         params,
         train,
         num_boost_round=settings.num_rounds,
-        valid_sets=valid_sets or None,
-        callbacks=callbacks or None,
+        valid_sets=valid_sets,
+        callbacks=callbacks,
     )
 
 
