@@ -6,7 +6,8 @@ refused call). ``leadline gate`` adds 1 for FAIL and 2 for UNDECIDED (0 is PASS)
 Connection settings come from flags or the environment: ``--target`` /
 ``LEADLINE_TARGET`` (host:port), ``--token`` / ``LEADLINE_TOKEN`` (or ``--token-file``),
 ``--tls`` / ``--tls-ca`` / ``--tls-cert`` / ``--tls-key`` for TLS and mutual TLS.
-``leadline serve`` runs the server itself and takes the server's own flags.
+``leadline serve`` runs the server itself and takes the server's own flags; ``leadline
+check --data-dir DIR`` checks a server's database (both need the server's dependencies).
 """
 
 from __future__ import annotations
@@ -95,6 +96,11 @@ def build_parser() -> argparse.ArgumentParser:
 
     commands.add_parser(
         "serve", add_help=False, help="run the server (see `leadline serve --help`)"
+    )
+    commands.add_parser(
+        "check",
+        add_help=False,
+        help="check a data directory's database (see `leadline check --help`)",
     )
 
     pool = commands.add_parser("pool", help="create, list, show or delete pools")
@@ -474,6 +480,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         from leadline.service.server import main as serve
 
         return int(serve(arguments[1:]))
+    if arguments and arguments[0] == "check":
+        # Like serve: a server-side tool (it opens the data directory), imported lazily.
+        from leadline.service.check import main as check
+
+        return int(check(arguments[1:]))
     try:
         args = build_parser().parse_args(arguments)
     except _UsageError as error:

@@ -30,6 +30,8 @@ class ServerConfig:
     data_dir: Path
     listen: str = "127.0.0.1:50051"
     tokens: Path | None = None
+    # Start even if other users may read the token file (e.g. a container's secret mount).
+    allow_readable_tokens: bool = False
     insecure_no_auth: bool = False
     tls_cert: Path | None = None
     tls_key: Path | None = None
@@ -54,6 +56,8 @@ class ServerConfig:
     # 0: every new pool gets a random seed. Otherwise pool seeds derive from this value and
     # the pool id, so the same calls replay the same draws (audits, benchmarks, tests).
     draw_seed: int = 0
+    # A write's request_id is remembered (for retries) this long, then forgotten.
+    request_retention_hours: float = 168.0
     extra: Mapping[str, Any] = field(default_factory=dict, repr=False)
 
     def __post_init__(self) -> None:
@@ -93,6 +97,8 @@ def _check(config: ServerConfig) -> None:
         raise bad("log_format", "must be 'text' or 'json'")
     if config.draw_seed < 0:
         raise bad("draw_seed", "must be >= 0 (0 = random seeds)")
+    if not config.request_retention_hours > 0:
+        raise bad("request_retention_hours", "must be > 0")
     if not 1 <= config.surrogate_threads <= 2:
         raise bad("surrogate_threads", "must be 1 or 2")
 

@@ -1,6 +1,7 @@
 """Prometheus text exposition (format 0.0.4) on a separate loopback port, stdlib only.
 
-Request counters and latency histograms are fed by the auth interceptor; pool gauges
+Request counters and latency histograms are fed by the auth interceptor, labelled by
+method from a closed set (:func:`method_label`); pool gauges
 (items, labels, pending, skipped, draws, surrogate version, whole-pool risk estimate),
 refit and commit counters are read from the engine at scrape time.
 """
@@ -18,13 +19,32 @@ import grpc
 from leadline.service.engine import Engine, Scope
 from leadline.service.errors import ServiceError
 from leadline.service.store import Database
+from leadline.v1 import leadline_pb2 as pb
 
-__all__ = ["Metrics", "MetricsServer"]
+__all__ = ["UNKNOWN_METHOD", "Metrics", "MetricsServer", "method_label"]
 
 _LOG = logging.getLogger(__name__)
 
 # Seconds; common practice for RPC latencies (no source).
 _BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
+
+
+# Label values come from a closed set: the server's own methods and one bucket for the
+# rest, so calls with made-up method names (refused without a token) cannot add series.
+UNKNOWN_METHOD = "unknown"
+_KNOWN_METHODS = frozenset(
+    {
+        f"/{service.full_name}/{method.name}"
+        for service in pb.DESCRIPTOR.services_by_name.values()
+        for method in service.methods
+    }
+    | {"/grpc.health.v1.Health/Check", "/grpc.health.v1.Health/Watch"}
+)
+
+
+def method_label(method: str) -> str:
+    """The ``method`` label of a call: its path if it is one of ours, else "unknown"."""
+    return method if method in _KNOWN_METHODS else UNKNOWN_METHOD
 
 
 def _label(value: str) -> str:
@@ -45,6 +65,7 @@ class Metrics:
 
     def observe(self, method: str, code: grpc.StatusCode, seconds: float) -> None:
         """Count one finished call (wired as the interceptor's ``observe``)."""
+        method = method_label(method)
         with self._lock:
             key = (method, code.name)
             self._requests[key] = self._requests.get(key, 0) + 1

@@ -12,6 +12,7 @@ import dataclasses
 import json
 import logging
 import signal
+import ssl
 import sys
 import threading
 import time
@@ -27,7 +28,9 @@ from leadline.service.api import Authenticator, AuthInterceptor, add_servicers, 
 from leadline.service.config import ServerConfig, is_loopback_host, load_config, split_host_port
 from leadline.service.engine import Engine, RefitWorker
 from leadline.service.metrics import Metrics, MetricsServer
-from leadline.service.store import Database
+from leadline.service.store import Database, DataDirectoryError
+from leadline.service.store import records as store_records
+from leadline.service.store.directory import restore_hint
 
 __all__ = ["RunningServer", "ServerConfig", "main", "start_server"]
 
@@ -75,11 +78,12 @@ class RunningServer:
         _LOG.info("stopped in %.2f s", time.monotonic() - started)
 
 
-def _authenticator(config: ServerConfig, host: str) -> Authenticator:
+def _token_table(config: ServerConfig, host: str) -> dict[str, frozenset[str]] | None:
+    """The tokens to accept, or None when authentication is off (loopback only)."""
     if config.tokens is not None:
-        tokens = load_tokens(config.tokens)
+        tokens = load_tokens(config.tokens, allow_readable=config.allow_readable_tokens)
         _LOG.info("loaded %d tokens from %s", len(tokens), config.tokens)
-        return Authenticator(tokens)
+        return tokens
     if not config.insecure_no_auth:
         raise ValueError(
             "tokens: no token file given; pass --tokens FILE, or --insecure-no-auth on a "
@@ -94,7 +98,38 @@ def _authenticator(config: ServerConfig, host: str) -> Authenticator:
         "AUTHENTICATION IS OFF (--insecure-no-auth): every caller gets every role. "
         "Use only for local experiments."
     )
-    return Authenticator(None)
+    return None
+
+
+def _check_key_pair(cert: Path, key: Path) -> None:
+    """ValueError when the key does not belong to the certificate, or either is not PEM.
+
+    gRPC reports these only as a failure to bind the port; Python's ssl module (OpenSSL)
+    names the actual problem.
+    """
+
+    def no_password() -> bytes:
+        raise ValueError("encrypted key")
+
+    context = ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER)
+    try:
+        context.load_cert_chain(cert, key, password=no_password)
+    except ValueError:
+        raise ValueError(
+            f"tls_key = {str(key)!r}: the key is encrypted; gRPC needs an unencrypted PEM key "
+            "(protect it with file permissions instead)."
+        ) from None
+    except ssl.SSLError as error:
+        if "KEY_VALUES_MISMATCH" in str(error) or "key values mismatch" in str(error):
+            raise ValueError(
+                f"tls_cert = {str(cert)!r}, tls_key = {str(key)!r}: the key does not belong to "
+                "the certificate (their public keys differ); give the key the certificate "
+                "was issued for."
+            ) from None
+        raise ValueError(
+            f"tls_cert = {str(cert)!r}, tls_key = {str(key)!r}: not a usable PEM certificate "
+            f"chain and private key ({error.reason or error})."
+        ) from None
 
 
 def _credentials(config: ServerConfig) -> grpc.ServerCredentials | None:
@@ -106,20 +141,45 @@ def _credentials(config: ServerConfig) -> grpc.ServerCredentials | None:
         client_ca = config.tls_client_ca.read_bytes() if config.tls_client_ca else None
     except OSError as error:
         raise ValueError(f"TLS files: cannot read ({error}).") from None
+    _check_key_pair(config.tls_cert, config.tls_key)
     return grpc.ssl_server_credentials(
         [(key, cert)], root_certificates=client_ca, require_client_auth=client_ca is not None
     )
 
 
+def _open_engine(config: ServerConfig, database: Database, auth: Authenticator) -> Engine:
+    """Rebuild the pools from the database; DataDirectoryError when its content does not
+    hold together (a damaged file SQLite's quick check did not catch)."""
+    renames = auth.legacy_renames()
+    if renames:
+        renamed = database.write(store_records.rename_holders(renames))
+        if renamed:
+            _LOG.info("gave %d assignments keyed holder ids (data directory upgrade)", renamed)
+    engine = Engine(database, config)
+    try:
+        engine.load()
+    except Exception as error:
+        _LOG.exception("loading the pools from %s failed", database.path)
+        raise DataDirectoryError(
+            f"{str(database.path)!r}: the stored pools do not load ({error}). "
+            f"{restore_hint(database.data_dir)}"
+        ) from None
+    return engine
+
+
 def start_server(config: ServerConfig) -> RunningServer:
-    """Open the data dir, rebuild the pools, start serving. Raises ValueError on bad config."""
+    """Open the data dir, rebuild the pools, start serving.
+
+    Raises ValueError on bad configuration, DataDirectoryError when the data directory is
+    in use by another server, damaged, or cannot be read.
+    """
     host, port = split_host_port(config.listen)
-    auth = _authenticator(config, host)
+    tokens = _token_table(config, host)
     credentials = _credentials(config)
     database = Database(config.data_dir)
     try:
-        engine = Engine(database, config)
-        engine.load()
+        auth = Authenticator(tokens, holder_key=database.holder_key)
+        engine = _open_engine(config, database, auth)
     except BaseException:
         database.close()
         raise
@@ -217,6 +277,7 @@ _HELP = {
     "data_dir": "directory of the database (created if missing)",
     "listen": "gRPC address HOST:PORT; port 0 picks a free port",
     "tokens": "TOML token file: [tokens] token = [roles]",
+    "allow_readable_tokens": "start even if other users may read the token file",
     "insecure_no_auth": "no authentication (loopback addresses only)",
     "tls_cert": "PEM certificate chain: serve TLS",
     "tls_key": "PEM private key of --tls-cert",
@@ -236,6 +297,7 @@ _HELP = {
     "log_format": "text or json",
     "surrogate_threads": "LightGBM threads of a refit (1 or 2)",
     "draw_seed": "0 = random pool seeds; else seeds derive from it (reproducible draws)",
+    "request_retention_hours": "how long a write's request_id is remembered (default 168)",
 }
 
 
@@ -267,7 +329,8 @@ def _parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     """``leadline serve ...``: run until SIGTERM / SIGINT, then shut down gracefully; 0 on a
-    clean stop, 2 on a configuration error."""
+    clean stop, 2 on a configuration error, 3 when the data directory cannot be served
+    (in use by another server, damaged, unreadable)."""
     args = list(sys.argv[1:] if argv is None else argv)
     if args[:1] == ["serve"]:
         args = args[1:]
@@ -292,6 +355,9 @@ def main(argv: list[str] | None = None) -> int:
         except ValueError as error:
             print(f"leadline serve: {error}", file=sys.stderr)
             return 2
+        except DataDirectoryError as error:
+            print(f"leadline serve: {error}", file=sys.stderr)
+            return 3
         print(f"leadline listening on {running.address}", file=sys.stderr, flush=True)
         while not stop.wait(0.5):
             pass

@@ -17,6 +17,8 @@ from __future__ import annotations
 import hashlib
 import hmac
 import logging
+import os
+import stat
 import time
 import tomllib
 from collections.abc import Callable, Mapping
@@ -30,6 +32,7 @@ __all__ = [
     "ANONYMOUS",
     "AuthInterceptor",
     "Authenticator",
+    "holder_id",
     "load_tokens",
     "required_roles",
 ]
@@ -64,8 +67,25 @@ def required_roles(method: str) -> frozenset[str] | None:
     return _SERVICE_ROLES.get(service, frozenset())
 
 
-def load_tokens(path: Path) -> dict[str, frozenset[str]]:
-    """Read a token file; ValueError naming the token entry and the rule if malformed."""
+def load_tokens(path: Path, *, allow_readable: bool = False) -> dict[str, frozenset[str]]:
+    """Read a token file; ValueError naming the token entry and the rule if malformed.
+
+    A file other users may read is refused unless ``allow_readable`` (every token in it
+    grants its roles to whoever reads it).
+    """
+    try:
+        mode = stat.S_IMODE(os.stat(path).st_mode)
+    except OSError as error:
+        raise ValueError(f"tokens file {str(path)!r}: cannot read ({error}).") from None
+    if mode & 0o004:
+        if not allow_readable:
+            raise ValueError(
+                f"tokens file {str(path)!r}: mode {mode:04o} lets every user on this machine "
+                f"read the tokens; run `chmod 600 {path}` (or 640 with the server's group), "
+                "or pass --allow-readable-tokens where only the server can reach the file "
+                "anyway (e.g. a container's mounted secret)."
+            )
+        _LOG.warning("tokens file %s has mode %04o (readable by other users)", path, mode)
     try:
         with open(path, "rb") as handle:
             document = tomllib.load(handle)
@@ -90,19 +110,37 @@ def load_tokens(path: Path) -> dict[str, frozenset[str]]:
     return tokens
 
 
+def holder_id(token: str, key: bytes) -> str:
+    """The id under which a token's assignments and request ids are stored: HMAC-SHA256
+    of the token keyed with the data directory's secret (``leadline.key``), 32 hex digits.
+    Without the key, the database does not let anyone test a guessed token."""
+    return hmac.new(key, token.encode(), hashlib.sha256).hexdigest()[:32]
+
+
+def legacy_holder_id(token: str) -> str:
+    """The unkeyed id older servers stored (16 hex digits of SHA-256 of the token)."""
+    return hashlib.sha256(token.encode()).hexdigest()[:16]
+
+
 class Authenticator:
     """Maps a call's ``authorization`` metadata to (holder id, roles).
 
     ``tokens=None`` means authentication is off (``--insecure-no-auth``): every call gets
-    every role and the holder id ``anonymous``.
+    every role and the holder id ``anonymous``. ``holder_key`` is the data directory's
+    secret (see :func:`holder_id`).
     """
 
-    def __init__(self, tokens: Mapping[str, frozenset[str]] | None) -> None:
+    def __init__(
+        self, tokens: Mapping[str, frozenset[str]] | None, *, holder_key: bytes = b""
+    ) -> None:
         self._tokens = dict(tokens) if tokens is not None else None
-        # Holder ids: a stable digest of the token, never the token itself (logs, database).
-        self._holders = {
-            token: hashlib.sha256(token.encode()).hexdigest()[:16] for token in self._tokens or {}
-        }
+        # Holder ids: a keyed digest of the token, never the token itself (logs, database).
+        self._holders = {token: holder_id(token, holder_key) for token in self._tokens or {}}
+
+    def legacy_renames(self) -> list[tuple[str, str]]:
+        """(unkeyed id, keyed id) for every known token: what a data directory written by
+        an older server needs renamed so open assignments stay with their holders."""
+        return [(legacy_holder_id(token), held) for token, held in self._holders.items()]
 
     @property
     def enabled(self) -> bool:

@@ -4,17 +4,19 @@ from __future__ import annotations
 
 import base64
 import binascii
+import hashlib
 import logging
 from collections.abc import Callable
 
 import grpc
+from google.protobuf.message import Message
 
 from leadline.service import errors
 from leadline.service.api import convert, validation
 from leadline.service.api.auth import Authenticator
 from leadline.service.api.errors import rpc_method
 from leadline.service.config import ServerConfig
-from leadline.service.engine import Engine, OutcomeResult
+from leadline.service.engine import Engine, OutcomeResult, WriteCall
 from leadline.v1 import leadline_pb2 as pb
 from leadline.v1 import leadline_pb2_grpc as pb_grpc
 
@@ -50,6 +52,17 @@ def _decode_token(token: str, *, field: str = "page_token") -> str:
         ) from None
 
 
+def _write_call(
+    auth: Authenticator, context: grpc.ServicerContext, request: Message, request_id: str
+) -> WriteCall:
+    """The calling token's holder id, the request id and a digest of the whole request
+    (deterministic serialization: the same request always gives the same digest)."""
+    if not request_id:
+        return WriteCall(holder=auth.holder(context))
+    digest = hashlib.sha256(request.SerializeToString(deterministic=True)).hexdigest()[:32]
+    return WriteCall(holder=auth.holder(context), request_id=request_id, digest=digest)
+
+
 def _raise_if_nothing_applied(result: OutcomeResult) -> None:
     """A call where no submission was applied fails with its first problem's status."""
     if result.accepted == 0 and result.errors:
@@ -61,14 +74,16 @@ def _raise_if_nothing_applied(result: OutcomeResult) -> None:
 
 
 class PoolServicer(pb_grpc.PoolServiceServicer):
-    def __init__(self, engine: Engine) -> None:
+    def __init__(self, engine: Engine, auth: Authenticator) -> None:
         self._engine = engine
+        self._auth = auth
 
     @rpc_method
     def CreatePool(self, request: pb.CreatePoolRequest, context: grpc.ServicerContext) -> pb.Pool:
         settings = validation.pool_settings(request.pool_id, request.pool)
         request_id = validation.check_request_id(request.request_id)
-        return convert.pool_message(self._engine.create_pool(settings, request_id=request_id))
+        call = _write_call(self._auth, context, request, request_id)
+        return convert.pool_message(self._engine.create_pool(settings, call=call))
 
     @rpc_method
     def GetPool(self, request: pb.GetPoolRequest, context: grpc.ServicerContext) -> pb.Pool:
@@ -93,13 +108,15 @@ class PoolServicer(pb_grpc.PoolServiceServicer):
     ) -> pb.DeletePoolResponse:
         pool_id = validation.parse_pool_name(request.name, field="name")
         request_id = validation.check_request_id(request.request_id)
-        self._engine.delete_pool(pool_id, request_id=request_id)
+        call = _write_call(self._auth, context, request, request_id)
+        self._engine.delete_pool(pool_id, call=call)
         return pb.DeletePoolResponse()
 
 
 class IngestServicer(pb_grpc.IngestServiceServicer):
-    def __init__(self, engine: Engine, config: ServerConfig) -> None:
+    def __init__(self, engine: Engine, config: ServerConfig, auth: Authenticator) -> None:
         self._engine = engine
+        self._auth = auth
         self._max_items = config.max_batch_items
 
     @rpc_method
@@ -108,7 +125,8 @@ class IngestServicer(pb_grpc.IngestServiceServicer):
         request_id = validation.check_request_id(request.request_id)
         settings = self._engine.pool(pool_id).settings
         batch = validation.item_batch(request, settings, max_items=self._max_items)
-        result = self._engine.ingest(pool_id, batch, request_id=request_id)
+        call = _write_call(self._auth, context, request, request_id)
+        result = self._engine.ingest(pool_id, batch, call=call)
         return pb.IngestSummary(
             accepted=result.accepted,
             duplicates=result.duplicates,
@@ -132,13 +150,14 @@ class LabelingServicer(pb_grpc.LabelingServiceServicer):
     ) -> pb.AcquireItemsResponse:
         pool_id = validation.parse_pool_name(request.pool)
         validation.check_acquire(request)
+        call = _write_call(self._auth, context, request, request.request_id)
         assignments = self._engine.acquire(
             pool_id,
             count=request.count,
             labeler=request.labeler,
-            holder=self._auth.holder(context),
+            holder=call.holder,
             lease_seconds=request.lease_seconds,
-            request_id=request.request_id,
+            call=call,
         )
         return pb.AcquireItemsResponse(
             assignments=[convert.assignment_message(a) for a in assignments]
@@ -150,12 +169,9 @@ class LabelingServicer(pb_grpc.LabelingServiceServicer):
     ) -> pb.SubmitLabelsResponse:
         pool_id = validation.parse_pool_name(request.pool)
         labels = validation.check_labels(request)
+        call = _write_call(self._auth, context, request, request.request_id)
         result = self._engine.submit(
-            pool_id,
-            labeler=request.labeler,
-            holder=self._auth.holder(context),
-            labels=labels,
-            request_id=request.request_id,
+            pool_id, labeler=request.labeler, holder=call.holder, labels=labels, call=call
         )
         if result.accepted:
             self._on_labels()
@@ -170,12 +186,9 @@ class LabelingServicer(pb_grpc.LabelingServiceServicer):
     ) -> pb.ReleaseItemsResponse:
         pool_id = validation.parse_pool_name(request.pool)
         ids = validation.check_release(request)
+        call = _write_call(self._auth, context, request, request.request_id)
         result = self._engine.release(
-            pool_id,
-            labeler=request.labeler,
-            holder=self._auth.holder(context),
-            assignment_ids=ids,
-            request_id=request.request_id,
+            pool_id, labeler=request.labeler, holder=call.holder, assignment_ids=ids, call=call
         )
         _raise_if_nothing_applied(result)
         return pb.ReleaseItemsResponse(
@@ -266,8 +279,8 @@ def add_servicers(
     on_labels: Callable[[], None],
 ) -> list[str]:
     """Register the four services; return their full names (for health and reflection)."""
-    pb_grpc.add_PoolServiceServicer_to_server(PoolServicer(engine), server)
-    pb_grpc.add_IngestServiceServicer_to_server(IngestServicer(engine, config), server)
+    pb_grpc.add_PoolServiceServicer_to_server(PoolServicer(engine, auth), server)
+    pb_grpc.add_IngestServiceServicer_to_server(IngestServicer(engine, config, auth), server)
     pb_grpc.add_LabelingServiceServicer_to_server(
         LabelingServicer(engine, auth, on_labels=on_labels), server
     )

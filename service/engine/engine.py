@@ -6,7 +6,10 @@ state (nothing changes if it is refused), change the in-memory state, queue the 
 write on the single writer; then, outside the lock, wait for that write's commit before
 returning. The writer commits in queue order, so a reply never depends on data that is not
 yet durable. A ``request_id`` is remembered with the result in the same transaction, so a
-retry is answered from the first result (also after a restart).
+retry is answered from the first result (also after a restart). Remembered ids belong to
+the token that sent them (its holder id) and keep a digest of the request: the same id with
+other content is refused (InvalidArgument), never answered with another call's result.
+They expire after ``request_retention_hours`` (:meth:`Engine.prune_requests`).
 
 A failed commit must not leave memory ahead of disk: each pool's writes share one store
 lane, so once one fails every later write of the pool fails unrun (it may build on the
@@ -25,6 +28,7 @@ import threading
 import time
 from collections.abc import Callable, Sequence
 from concurrent.futures import Future
+from dataclasses import dataclass
 from typing import Any, NoReturn
 
 import numpy as np
@@ -64,15 +68,37 @@ from leadline.service.estimation import (
 )
 from leadline.service.store import Database, EarlierWriteFailed
 from leadline.service.store import records as store
-from leadline.service.store.records import Write
+from leadline.service.store.records import RememberedRequest, Write
 
-__all__ = ["Engine"]
+__all__ = ["Engine", "WriteCall"]
 
 _LOG = logging.getLogger(__name__)
 
 _SCORE_CHUNK = 100_000
 # A refit scores at most this many late-arriving items while holding the pool lock.
 _CATCH_UP_UNDER_LOCK = 5_000
+
+
+@dataclass(frozen=True)
+class WriteCall:
+    """Who sent a write call and what it was, for its request id: the holder id of the
+    calling token, the request id ('' = none) and a digest of the whole request."""
+
+    holder: str = ""
+    request_id: str = ""
+    digest: str = ""
+
+
+_NO_ID = WriteCall()
+
+
+def _reused(request_id: str) -> InvalidArgument:
+    return InvalidArgument(
+        f"request_id = {request_id!r}: was used for a different request (same token, other "
+        "content); a request id names one request and its retries. Use a new request_id "
+        "for new content.",
+        field="request_id",
+    )
 
 
 def _combine(writes: Sequence[Callable[[sqlite3.Connection], Any]]) -> Callable[..., None]:
@@ -104,10 +130,16 @@ class Engine:
         self._pools: dict[str, PoolState] = {}
         self._pools_lock = threading.Lock()
         # CreatePool / DeletePool request ids in flight (see _claim_server_request).
-        self._server_requests: dict[tuple[str, str], threading.Event] = {}
+        self._server_requests: dict[tuple[str, str, str], threading.Event] = {}
         self._closed = False
+        self._retention_ms = int(config.request_retention_hours * 3_600_000)
+        # Prune remembered request ids this often (a quarter of the retention, 10 min at most).
+        self._prune_every = min(config.request_retention_hours * 900.0, 600.0)
+        self._last_prune = -float("inf")
         self.refit_count = 0
         self.refit_seconds_total = 0.0
+        self.reload_count = 0
+        self.pruned_requests = 0
 
     # ------------------------------------------------------------------------------------
     # start-up
@@ -209,6 +241,7 @@ class Engine:
                     _LOG.error("pool %s: a write failed (%s); reloading", pool.pool_id, error)
                 pool.reload_pending = True
                 self._db.reopen(pool.lane).result()
+                self.reload_count += 1
                 self._reload(pool)
         cause = (
             "an earlier write of this pool failed"
@@ -246,17 +279,19 @@ class Engine:
         with self._pools_lock:
             return [self._pools[key] for key in sorted(self._pools)]
 
-    def create_pool(self, settings: PoolSettings, *, request_id: str = "") -> PoolInfo:
+    def create_pool(self, settings: PoolSettings, *, call: WriteCall = _NO_ID) -> PoolInfo:
         """Create an empty pool; AlreadyExists if the id is in use.
 
-        With a ``request_id`` seen before (also before a restart) the pool that request
-        created is returned: its current state, or the first reply if it is gone.
+        With a request id this token sent before (also before a restart) the pool that
+        request created is returned: its current state, or the first reply if it is gone.
         """
         self._check_open()
+        self._check_writable(f"pool_id = {settings.pool_id!r}")
         pool_id = settings.pool_id
         method = "create_pool"
+        request_id = call.request_id
         if request_id:
-            remembered = self._claim_server_request(method, request_id, pool_id)
+            remembered = self._claim_server_request(method, call, pool_id)
             if remembered is not None:
                 first = decode_pool_info(remembered)
                 with self._pools_lock:
@@ -269,12 +304,12 @@ class Engine:
                     return self.pool_info(current)
                 return first
         try:
-            return self._create_pool(settings, method=method, request_id=request_id)
+            return self._create_pool(settings, method=method, call=call)
         finally:
             if request_id:
-                self._release_server_request(method, request_id)
+                self._release_server_request(method, call)
 
-    def _create_pool(self, settings: PoolSettings, *, method: str, request_id: str) -> PoolInfo:
+    def _create_pool(self, settings: PoolSettings, *, method: str, call: WriteCall) -> PoolInfo:
         created = now_ms()
         if self._config.draw_seed:
             digest = hashlib.sha256(f"{self._config.draw_seed}:{settings.pool_id}".encode())
@@ -285,10 +320,18 @@ class Engine:
         info = self.pool_info(pool)
         row = store.PoolRow(settings.pool_id, settings.to_json(), pool.seed, created)
         writes = [store.insert_pool(row)]
-        if request_id:
+        if call.request_id:
             writes.append(
                 store.insert_server_request(
-                    method, request_id, settings.pool_id, encode(info), created
+                    method,
+                    RememberedRequest(
+                        holder=call.holder,
+                        request_id=call.request_id,
+                        digest=call.digest,
+                        response=encode(info),
+                        time_ms=created,
+                        pool_id=settings.pool_id,
+                    ),
                 )
             )
         # Under the new pool's lock until its row is queued: a write to the pool queued
@@ -320,35 +363,43 @@ class Engine:
         _LOG.info("created pool %s (%s, loss %s)", settings.pool_id, settings.task, settings.loss)
         return info
 
-    def _claim_server_request(self, method: str, request_id: str, pool_id: str) -> bytes | None:
+    def _claim_server_request(self, method: str, call: WriteCall, pool_id: str) -> bytes | None:
         """The remembered reply of a pool-level request id, or None after claiming it.
 
         A claimed id is in flight until :meth:`_release_server_request`; the same id
         arriving meanwhile waits for it, then finds the committed reply (or claims it in
-        turn if the first call failed). Reusing an id for another pool is InvalidArgument.
+        turn if the first call failed). Reusing an id for another request is InvalidArgument.
         """
-        key = (method, request_id)
+        key = (method, call.holder, call.request_id)
         while True:
             with self._pools_lock:
                 running = self._server_requests.get(key)
                 if running is None:
-                    found = store.find_server_request(self._db.reader(), method, request_id)
+                    found = store.find_server_request(
+                        self._db.reader(),
+                        method,
+                        call.holder,
+                        call.request_id,
+                        not_before_ms=now_ms() - self._retention_ms,
+                    )
                     if found is None:
                         self._server_requests[key] = threading.Event()
                         return None
-                    first_pool, reply = found
-                    if first_pool != pool_id:
+                    if found.pool_id != pool_id:
                         raise InvalidArgument(
-                            f"request_id = {request_id!r}: already used for pool "
-                            f"'pools/{first_pool}', not 'pools/{pool_id}'; use a new id.",
+                            f"request_id = {call.request_id!r}: was used for a different "
+                            f"request (for pool 'pools/{found.pool_id}', not "
+                            f"'pools/{pool_id}'); use a new request_id.",
                             field="request_id",
                         )
-                    return reply
+                    if found.digest and found.digest != call.digest:
+                        raise _reused(call.request_id)
+                    return found.response
             running.wait()
 
-    def _release_server_request(self, method: str, request_id: str) -> None:
+    def _release_server_request(self, method: str, call: WriteCall) -> None:
         with self._pools_lock:
-            running = self._server_requests.pop((method, request_id), None)
+            running = self._server_requests.pop((method, call.holder, call.request_id), None)
         if running is not None:
             running.set()
 
@@ -385,24 +436,25 @@ class Engine:
         more = len(chosen) > limit
         return infos, (page[-1] if more and page else "")
 
-    def delete_pool(self, pool_id: str, *, request_id: str = "") -> None:
+    def delete_pool(self, pool_id: str, *, call: WriteCall = _NO_ID) -> None:
         """Delete the pool and everything in it; NotFound if there is none.
 
-        With a ``request_id`` seen before (also before a restart) nothing is done and the
-        call succeeds, even if a new pool took the id meanwhile.
+        With a request id this token sent before (also before a restart) nothing is done
+        and the call succeeds, even if a new pool took the id meanwhile.
         """
         self._check_open()
+        self._check_writable(f"pool = 'pools/{pool_id}'")
         method = "delete_pool"
-        if request_id:
-            if self._claim_server_request(method, request_id, pool_id) is not None:
+        if call.request_id:
+            if self._claim_server_request(method, call, pool_id) is not None:
                 return
         try:
-            self._delete_pool(pool_id, method=method, request_id=request_id)
+            self._delete_pool(pool_id, method=method, call=call)
         finally:
-            if request_id:
-                self._release_server_request(method, request_id)
+            if call.request_id:
+                self._release_server_request(method, call)
 
-    def _delete_pool(self, pool_id: str, *, method: str, request_id: str) -> None:
+    def _delete_pool(self, pool_id: str, *, method: str, call: WriteCall) -> None:
         pool = self.pool(pool_id)
         with pool.lock:
             if pool.deleted:
@@ -411,9 +463,19 @@ class Engine:
             pool.deleted = True
             epoch = pool.epoch
             writes = [store.delete_pool(pool_id)]
-            if request_id:
+            if call.request_id:
                 writes.append(
-                    store.insert_server_request(method, request_id, pool_id, b"{}", now_ms())
+                    store.insert_server_request(
+                        method,
+                        RememberedRequest(
+                            holder=call.holder,
+                            request_id=call.request_id,
+                            digest=call.digest,
+                            response=b"{}",
+                            time_ms=now_ms(),
+                            pool_id=pool_id,
+                        ),
+                    )
                 )
             future = self._db.submit(_combine(writes), lane=pool.lane)
         self._wait(pool, future, epoch)
@@ -429,13 +491,69 @@ class Engine:
         if self._closed:
             raise Unavailable("the server is shutting down; retry on another replica or later.")
 
-    def _prior(self, pool: PoolState, method: str, request_id: str) -> Any:
-        """A remembered (future, payload, epoch) or committed payload for this request id."""
-        remembered = pool.requests.get((method, request_id))
+    def _check_writable(self, what: str) -> None:
+        """Unavailable, before anything changes, while the store refuses writes (a failure
+        episode, see Database.write_refusal): no memory change, so no reload either."""
+        refusal = self._db.write_refusal()
+        if refusal is not None:
+            raise Unavailable(
+                f"{what}: the write was not saved ({refusal}). Retry with the same "
+                "request_id; see the server log."
+            )
+
+    def _prior(
+        self, pool: PoolState, method: str, call: WriteCall, *, memory_only: bool = False
+    ) -> Any:
+        """A remembered (future, payload, epoch) of this token's request id, or None.
+
+        InvalidArgument if the id was used for a request with other content.
+        """
+        oldest = now_ms() - self._retention_ms
+        remembered = pool.requests.get((method, call.holder, call.request_id))
         if remembered is not None:
-            return remembered
-        data = store.find_request(self._db.reader(), pool.pool_id, method, request_id)
-        return None if data is None else (None, data, pool.epoch)
+            future, payload, epoch, digest, time_ms = remembered
+            if time_ms >= oldest:
+                if digest != call.digest:
+                    raise _reused(call.request_id)
+                return future, payload, epoch
+        if memory_only:
+            return None
+        found = store.find_request(
+            self._db.reader(),
+            pool.pool_id,
+            method,
+            call.holder,
+            call.request_id,
+            not_before_ms=oldest,
+        )
+        if found is None:
+            return None
+        if found.digest and found.digest != call.digest:
+            raise _reused(call.request_id)
+        return None, found.response, pool.epoch
+
+    def prune_requests(self, now: float | None = None, *, force: bool = False) -> int:
+        """Forget request ids older than the retention (database and memory); returns how
+        many rows went. Runs at most every ``_prune_every`` seconds unless ``force``."""
+        now = time.monotonic() if now is None else now
+        if not force and now - self._last_prune < self._prune_every:
+            return 0
+        if self._closed or self._db.failure is not None:
+            return 0
+        self._last_prune = now
+        oldest = now_ms() - self._retention_ms
+        for pool in self.pools():
+            with pool.lock:
+                pool.forget_requests(before_ms=oldest)
+        try:
+            pruned = int(self._db.write(store.prune_requests(oldest)))
+        except Exception:  # noqa: BLE001 - retried at the next prune
+            _LOG.exception("pruning remembered request ids failed")
+            return 0
+        if pruned:
+            _LOG.info("forgot %d request ids older than the retention", pruned)
+        self.pruned_requests += pruned
+        return pruned
 
     def _wait(self, pool: PoolState, future: Future[Any], epoch: int) -> None:
         """Wait for the commit of a write of ``pool`` queued in ``epoch``; recover if it failed."""
@@ -448,35 +566,57 @@ class Engine:
         self,
         pool_id: str,
         method: str,
-        request_id: str,
+        call: WriteCall,
         work: Callable[[PoolState], tuple[Any, list[Callable[[sqlite3.Connection], Any]]]],
         decode: Callable[[bytes], Any],
     ) -> Any:
         """Run ``work`` under the pool lock, queue its writes, wait for their commit.
 
         ``work`` returns (result, writes) and must raise before changing anything if the
-        request is refused. With a ``request_id`` seen before, the first result is decoded
-        and returned instead (after its commit, if that is still in flight). If the commit
+        request is refused. With a request id this token sent before for the same request,
+        the first result is decoded and returned instead (after its commit, if that is
+        still in flight); for another request, InvalidArgument. While the store refuses
+        writes the call fails with Unavailable before anything changes; if the commit
         fails, the pool is reloaded from the store and the call fails with Unavailable.
         """
         self._check_open()
         pool = self.pool(pool_id)
+        request_id = call.request_id
         with pool.lock:
             if pool.deleted:
                 raise NotFound(f"pool = 'pools/{pool_id}': no such pool.", field="pool")
             self._check_loaded(pool)
-            prior = self._prior(pool, method, request_id) if request_id else None
-            epoch = pool.epoch
-            if prior is None:
-                result, writes = work(pool)
+            prior = self._prior(pool, method, call) if request_id else None
+        if prior is None:
+            self._check_writable(f"pool = 'pools/{pool_id}'")
+            with pool.lock:
+                if pool.deleted:
+                    raise NotFound(f"pool = 'pools/{pool_id}': no such pool.", field="pool")
+                self._check_loaded(pool)
                 if request_id:
-                    payload = encode(result)
-                    writes.append(store.insert_request(pool_id, method, request_id, payload))
-                future: Future[None] | None = (
-                    self._db.submit(_combine(writes), lane=pool.lane) if writes else None
-                )
-                if request_id:
-                    pool.remember_request(method, request_id, (future, payload, epoch))
+                    # A call with this id may have started while the lock was free.
+                    prior = self._prior(pool, method, call, memory_only=True)
+                epoch = pool.epoch
+                if prior is None:
+                    result, writes = work(pool)
+                    if request_id:
+                        payload = encode(result)
+                        remembered = RememberedRequest(
+                            holder=call.holder,
+                            request_id=request_id,
+                            digest=call.digest,
+                            response=payload,
+                            time_ms=now_ms(),
+                        )
+                        writes.append(store.insert_request(pool_id, method, remembered))
+                    future: Future[None] | None = (
+                        self._db.submit(_combine(writes), lane=pool.lane) if writes else None
+                    )
+                    if request_id:
+                        pool.remember_request(
+                            (method, call.holder, request_id),
+                            (future, payload, epoch, call.digest, remembered.time_ms),
+                        )
         if prior is not None:
             earlier, payload, earlier_epoch = prior
             if earlier is not None:
@@ -489,7 +629,7 @@ class Engine:
     # ------------------------------------------------------------------------------------
     # ingest
     # ------------------------------------------------------------------------------------
-    def ingest(self, pool_id: str, batch: ItemBatch, *, request_id: str = "") -> IngestResult:
+    def ingest(self, pool_id: str, batch: ItemBatch, *, call: WriteCall = _NO_ID) -> IngestResult:
         """Add a validated batch; identical re-sent ids are duplicates, conflicting ones
         rejected (listed per item)."""
         pool = self.pool(pool_id)
@@ -502,7 +642,7 @@ class Engine:
         result: IngestResult = self._write(
             pool_id,
             "ingest",
-            request_id,
+            call,
             lambda p: ingest.apply_batch(
                 p, batch, scored_with=surrogate, cold=cold, current=current
             ),
@@ -521,7 +661,7 @@ class Engine:
         labeler: str,
         holder: str,
         lease_seconds: int = 0,
-        request_id: str = "",
+        call: WriteCall = _NO_ID,
     ) -> list[AssignmentInfo]:
         """Re-offer waiting draws first, then make new draws; each with a lease."""
 
@@ -538,7 +678,7 @@ class Engine:
             )
 
         result: list[AssignmentInfo] = self._write(
-            pool_id, "acquire", request_id, work, decode_assignments
+            pool_id, "acquire", call, work, decode_assignments
         )
         return result
 
@@ -549,13 +689,13 @@ class Engine:
         labeler: str,
         holder: str,
         labels: Sequence[LabelInput],
-        request_id: str = "",
+        call: WriteCall = _NO_ID,
     ) -> OutcomeResult:
         """Record labels and skips of held assignments; per-item problems come back listed."""
         result: OutcomeResult = self._write(
             pool_id,
             "submit",
-            request_id,
+            call,
             lambda p: labeling.submit(p, labeler=labeler, holder=holder, labels=labels),
             decode_outcome,
         )
@@ -568,13 +708,13 @@ class Engine:
         labeler: str,
         holder: str,
         assignment_ids: Sequence[str],
-        request_id: str = "",
+        call: WriteCall = _NO_ID,
     ) -> OutcomeResult:
         """Give held assignments back unlabeled: they become WAITING and are re-offered."""
         result: OutcomeResult = self._write(
             pool_id,
             "release",
-            request_id,
+            call,
             lambda p: labeling.release(
                 p, labeler=labeler, holder=holder, assignment_ids=assignment_ids
             ),
@@ -728,6 +868,8 @@ class Engine:
         with pool.lock:
             if pool.deleted or pool.refitting or pool.reload_pending:
                 return False
+            if self._db.failure is not None:
+                return False  # the store refuses writes: the fit could not be saved
             labeled, _, _ = pool.draw_counts()
             new_labels = labeled - pool.surrogate_label_count
             if new_labels <= 0 or labeled <= pool.failed_fit_labels:

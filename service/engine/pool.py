@@ -224,7 +224,7 @@ class PoolState:
         # Bumped on every change that can move an estimate; keys the query cache.
         self.state_version = 0
         self.cache: dict[Any, Any] = {}
-        self.requests: OrderedDict[tuple[str, str], Any] = OrderedDict()
+        self.requests: OrderedDict[tuple[str, str, str], Any] = OrderedDict()
         self.refitting = False
         # Label count at the last failed refit (-1: none failed).
         self.failed_fit_labels = -1
@@ -278,11 +278,19 @@ class PoolState:
         self.state_version += 1
         self.cache.clear()
 
-    def remember_request(self, method: str, request_id: str, value: Any) -> None:
-        self.requests[(method, request_id)] = value
-        self.requests.move_to_end((method, request_id))
+    def remember_request(self, key: tuple[str, str, str], value: Any) -> None:
+        """Keep a (method, holder, request_id) call's (future, payload, epoch, digest,
+        time_ms) at hand: the newest few thousand; older ones are read from the store."""
+        self.requests[key] = value
+        self.requests.move_to_end(key)
         while len(self.requests) > _REQUEST_MEMORY:
             self.requests.popitem(last=False)
+
+    def forget_requests(self, *, before_ms: int) -> None:
+        """Drop remembered calls made before ``before_ms`` (retention)."""
+        stale = [key for key, value in self.requests.items() if value[4] < before_ms]
+        for key in stale:
+            del self.requests[key]
 
     def draw_counts(self) -> tuple[int, int, int]:
         """(labeled, pending, skipped) draws."""

@@ -2,9 +2,10 @@
 
 The worker wakes every ``poll_seconds`` (or when :meth:`RefitWorker.nudge` is called after
 new labels), refits every pool whose new-label count or time since the last fit calls for
-it (:meth:`Engine.refit_due`), one pool at a time. Fitting and rescoring run outside the
-pool lock; only the final swap of the score arrays takes it, so ingest and queries never
-wait for a fit.
+it (:meth:`Engine.refit_due`), one pool at a time, then forgets request ids past their
+retention (:meth:`Engine.prune_requests`, itself rate-limited). Fitting and rescoring run
+outside the pool lock; only the final swap of the score arrays takes it, so ingest and
+queries never wait for a fit.
 """
 
 from __future__ import annotations
@@ -56,3 +57,5 @@ class RefitWorker:
                         self._engine.refit(pool)
                 except Exception:  # noqa: BLE001 - the worker must survive any one pool
                     _LOG.exception("refit check of pool %s failed", pool.pool_id)
+            # Housekeeping rides on the same thread: forget expired request ids.
+            self._engine.prune_requests(time.monotonic())

@@ -20,6 +20,7 @@ __all__ = [
     "DRAW_UPDATE_COLUMNS",
     "ItemChunk",
     "PoolRow",
+    "RememberedRequest",
     "delete_pool",
     "find_request",
     "find_server_request",
@@ -36,6 +37,8 @@ __all__ = [
     "load_pool",
     "load_pools",
     "load_segments",
+    "prune_requests",
+    "rename_holders",
     "update_draws",
 ]
 
@@ -198,51 +201,146 @@ def insert_model(
     return write
 
 
-def insert_request(pool_id: str, method: str, request_id: str, response: bytes) -> Write:
+@dataclass(frozen=True)
+class RememberedRequest:
+    """A write call that carried a request_id: who sent it, what it was, what it answered."""
+
+    holder: str
+    request_id: str
+    digest: str
+    response: bytes
+    time_ms: int
+    pool_id: str = ""
+
+
+def insert_request(pool_id: str, method: str, remembered: RememberedRequest) -> Write:
+    """Remember a pool's call (replacing an expired row with the same key)."""
+
     def write(connection: sqlite3.Connection) -> None:
         connection.execute(
-            "INSERT OR REPLACE INTO requests (pool_id, method, request_id, response)"
-            " VALUES (?, ?, ?, ?)",
-            (pool_id, method, request_id, response),
+            "INSERT OR REPLACE INTO requests (pool_id, method, holder, request_id, digest,"
+            " response, time_ms) VALUES (?, ?, ?, ?, ?, ?, ?)",
+            (
+                pool_id,
+                method,
+                remembered.holder,
+                remembered.request_id,
+                remembered.digest,
+                remembered.response,
+                remembered.time_ms,
+            ),
         )
 
     return write
 
 
 def find_request(
-    connection: sqlite3.Connection, pool_id: str, method: str, request_id: str
-) -> bytes | None:
+    connection: sqlite3.Connection,
+    pool_id: str,
+    method: str,
+    holder: str,
+    request_id: str,
+    *,
+    not_before_ms: int,
+) -> RememberedRequest | None:
+    """The call remembered for this holder and id since ``not_before_ms``, or None.
+
+    Rows written before ids were scoped to tokens (holder '') match every holder.
+    """
     row = connection.execute(
-        "SELECT response FROM requests WHERE pool_id = ? AND method = ? AND request_id = ?",
-        (pool_id, method, request_id),
+        "SELECT holder, digest, response, time_ms FROM requests WHERE pool_id = ? AND"
+        " method = ? AND holder IN (?, '') AND request_id = ? AND time_ms >= ?"
+        " ORDER BY holder DESC LIMIT 1",
+        (pool_id, method, holder, request_id, not_before_ms),
     ).fetchone()
-    return None if row is None else bytes(row[0])
+    if row is None:
+        return None
+    return RememberedRequest(
+        holder=row[0],
+        request_id=request_id,
+        digest=row[1],
+        response=bytes(row[2]),
+        time_ms=int(row[3]),
+        pool_id=pool_id,
+    )
 
 
-def insert_server_request(
-    method: str, request_id: str, pool_id: str, response: bytes, time_ms: int
-) -> Write:
+def insert_server_request(method: str, remembered: RememberedRequest) -> Write:
     """Remember a pool-level call (CreatePool, DeletePool) outside the pool's own rows."""
 
     def write(connection: sqlite3.Connection) -> None:
         connection.execute(
-            "INSERT INTO server_requests (method, request_id, pool_id, response, time_ms)"
-            " VALUES (?, ?, ?, ?, ?)",
-            (method, request_id, pool_id, response, time_ms),
+            "INSERT OR REPLACE INTO server_requests (method, holder, request_id, digest,"
+            " pool_id, response, time_ms) VALUES (?, ?, ?, ?, ?, ?, ?)",
+            (
+                method,
+                remembered.holder,
+                remembered.request_id,
+                remembered.digest,
+                remembered.pool_id,
+                remembered.response,
+                remembered.time_ms,
+            ),
         )
 
     return write
 
 
 def find_server_request(
-    connection: sqlite3.Connection, method: str, request_id: str
-) -> tuple[str, bytes] | None:
-    """(pool_id, response) of a remembered pool-level call, or None."""
+    connection: sqlite3.Connection,
+    method: str,
+    holder: str,
+    request_id: str,
+    *,
+    not_before_ms: int,
+) -> RememberedRequest | None:
+    """A remembered pool-level call of this holder since ``not_before_ms``, or None."""
     row = connection.execute(
-        "SELECT pool_id, response FROM server_requests WHERE method = ? AND request_id = ?",
-        (method, request_id),
+        "SELECT holder, digest, pool_id, response, time_ms FROM server_requests WHERE"
+        " method = ? AND holder IN (?, '') AND request_id = ? AND time_ms >= ?"
+        " ORDER BY holder DESC LIMIT 1",
+        (method, holder, request_id, not_before_ms),
     ).fetchone()
-    return None if row is None else (str(row[0]), bytes(row[1]))
+    if row is None:
+        return None
+    return RememberedRequest(
+        holder=row[0],
+        request_id=request_id,
+        digest=row[1],
+        response=bytes(row[3]),
+        time_ms=int(row[4]),
+        pool_id=str(row[2]),
+    )
+
+
+def prune_requests(before_ms: int) -> Write:
+    """Forget remembered calls older than ``before_ms`` (pool-level ones too)."""
+
+    def write(connection: sqlite3.Connection) -> int:
+        pruned = connection.execute("DELETE FROM requests WHERE time_ms < ?", (before_ms,))
+        count = pruned.rowcount
+        pruned = connection.execute("DELETE FROM server_requests WHERE time_ms < ?", (before_ms,))
+        return int(count + pruned.rowcount)
+
+    return write
+
+
+def rename_holders(renames: Sequence[tuple[str, str]]) -> Write:
+    """Replace holder ids (old, new) of draws; returns the number of draws changed."""
+
+    def write(connection: sqlite3.Connection) -> int:
+        if (
+            connection.execute("SELECT 1 FROM draws WHERE length(holder) = 16 LIMIT 1").fetchone()
+            is None
+        ):
+            return 0  # nothing written by an older server
+        changed = 0
+        for old, new in renames:
+            cursor = connection.execute("UPDATE draws SET holder = ? WHERE holder = ?", (new, old))
+            changed += cursor.rowcount
+        return changed
+
+    return write
 
 
 def load_pools(connection: sqlite3.Connection) -> list[PoolRow]:

@@ -1,7 +1,8 @@
 """SQLite schema of the data directory and its migrations.
 
 The database holds one row per pool, item, draw, surrogate version and remembered request
-(per pool, and at server level for creating and deleting pools).
+(per pool, and at server level for creating and deleting pools; each with the holder of
+the token that sent it, a digest of the request and its time).
 ``schema_version`` records the last migration applied; :func:`migrate` applies the missing
 ones in order inside one transaction, so a data dir written by an older server opens in a
 newer one, and a newer data dir is refused by an older server.
@@ -96,6 +97,46 @@ _MIGRATIONS: tuple[tuple[str, ...], ...] = (
             time_ms INTEGER NOT NULL,
             PRIMARY KEY (method, request_id)
         )""",
+    ),
+    # 3: a remembered request id belongs to the token that sent it (holder) and keeps a
+    # digest of the request, so the same id with other content is refused instead of
+    # answered; time_ms lets ids expire after the retention. Rows from before carry holder
+    # '' and digest '' (matched as before). write_probe takes the store's probe writes.
+    (
+        """CREATE TABLE requests_v3 (
+            pool_id TEXT NOT NULL,
+            method TEXT NOT NULL,
+            holder TEXT NOT NULL,
+            request_id TEXT NOT NULL,
+            digest TEXT NOT NULL,
+            response BLOB NOT NULL,
+            time_ms INTEGER NOT NULL,
+            PRIMARY KEY (pool_id, method, holder, request_id)
+        )""",
+        """INSERT INTO requests_v3 (pool_id, method, holder, request_id, digest, response, time_ms)
+            SELECT pool_id, method, '', request_id, '', response,
+                CAST(strftime('%s', 'now') AS INTEGER) * 1000
+            FROM requests""",
+        "DROP TABLE requests",
+        "ALTER TABLE requests_v3 RENAME TO requests",
+        "CREATE INDEX requests_by_time ON requests (time_ms)",
+        """CREATE TABLE server_requests_v3 (
+            method TEXT NOT NULL,
+            holder TEXT NOT NULL,
+            request_id TEXT NOT NULL,
+            digest TEXT NOT NULL,
+            pool_id TEXT NOT NULL,
+            response BLOB NOT NULL,
+            time_ms INTEGER NOT NULL,
+            PRIMARY KEY (method, holder, request_id)
+        )""",
+        """INSERT INTO server_requests_v3
+            (method, holder, request_id, digest, pool_id, response, time_ms)
+            SELECT method, '', request_id, '', pool_id, response, time_ms FROM server_requests""",
+        "DROP TABLE server_requests",
+        "ALTER TABLE server_requests_v3 RENAME TO server_requests",
+        "CREATE INDEX server_requests_by_time ON server_requests (time_ms)",
+        "CREATE TABLE write_probe (data BLOB NOT NULL)",
     ),
 )
 

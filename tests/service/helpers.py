@@ -48,6 +48,7 @@ def write_tokens(path: Path) -> Path:
         roles = ", ".join(f'"{role}"' for role in _TOKEN_ROLES[name])
         lines.append(f'"{token}" = [{roles}]')
     path.write_text("\n".join(lines) + "\n")
+    path.chmod(0o600)  # the server refuses a token file other users can read
     return path
 
 

@@ -152,6 +152,7 @@ def test_config_precedence_file_then_environment_then_flags(tmp_path: Path) -> N
 def test_malformed_token_file_is_refused(tmp_path: Path, text: str, message: str) -> None:
     path = tmp_path / "tokens.toml"
     path.write_text(text)
+    path.chmod(0o600)
     with pytest.raises(ValueError, match=message.replace("[", r"\[").replace("]", r"\]")):
         start_server(ServerConfig(data_dir=tmp_path / "d", listen="127.0.0.1:0", tokens=path))
 

@@ -103,16 +103,26 @@ def test_lane_fails_later_writes_until_reopened(tmp_path: Path) -> None:
         database.close()
 
 
-def test_version_one_data_dir_gains_the_server_requests_table(tmp_path: Path) -> None:
-    """A data dir written before pool-level request ids (schema 1) opens and is upgraded."""
-    Database(tmp_path).close()
+def test_version_one_data_dir_is_upgraded_and_keeps_its_request_ids(tmp_path: Path) -> None:
+    """A data dir written before pool-level request ids (schema 1) opens and is upgraded:
+    its remembered request ids stay (holder '' and digest '': they match as before)."""
+    from leadline.service.store.schema import _MIGRATIONS
+
     with contextlib.closing(sqlite3.connect(tmp_path / DATABASE_FILE)) as connection:
-        connection.execute("DROP TABLE server_requests")
-        connection.execute("UPDATE schema_version SET version = 1")
+        connection.execute("PRAGMA journal_mode=WAL")
+        for statement in _MIGRATIONS[0]:
+            connection.execute(statement)
+        connection.execute("CREATE TABLE schema_version (version INTEGER NOT NULL)")
+        connection.execute("INSERT INTO schema_version VALUES (1)")
+        connection.execute("INSERT INTO requests VALUES ('p', 'ingest', 'id-1', x'7b7d')")
         connection.commit()
     Database(tmp_path).close()
     with contextlib.closing(sqlite3.connect(tmp_path / DATABASE_FILE)) as connection:
         (version,) = connection.execute("SELECT version FROM schema_version").fetchone()
         columns = [row[1] for row in connection.execute("PRAGMA table_info(server_requests)")]
-    assert version == SCHEMA_VERSION == 2
-    assert columns == ["method", "request_id", "pool_id", "response", "time_ms"]
+        rows = connection.execute(
+            "SELECT pool_id, method, holder, request_id, digest, response FROM requests"
+        ).fetchall()
+    assert version == SCHEMA_VERSION == 3
+    assert columns == ["method", "holder", "request_id", "digest", "pool_id", "response", "time_ms"]
+    assert rows == [("p", "ingest", "", "id-1", "", b"{}")]
