@@ -98,7 +98,7 @@ class LocalServer:
         if self.running:
             raise RuntimeError(f"server already running at {self.target}")
         self.workdir.mkdir(parents=True, exist_ok=True)
-        self.data_dir.mkdir(parents=True, exist_ok=True)
+        self.data_dir.mkdir(mode=0o700, parents=True, exist_ok=True)
         if self.tokens is not None:
             write_tokens_file(self.workdir / "tokens.toml", self.tokens)
         offset = self.log_path.stat().st_size if self.log_path.exists() else 0

@@ -83,7 +83,8 @@ def restore_hint(data_dir: Path) -> str:
 
 
 def make_data_dir(data_dir: Path) -> None:
-    """Create the directory (0700) if missing; warn when an existing one is open to others."""
+    """Create the directory (0700) if missing; warn when an existing one is open to every
+    user (group access is left alone: container volumes and service managers use it)."""
     try:
         data_dir.mkdir(mode=0o700, parents=True, exist_ok=True)
     except OSError as error:
@@ -93,10 +94,10 @@ def make_data_dir(data_dir: Path) -> None:
     if not data_dir.is_dir():
         raise DataDirectoryError(f"data_dir = {str(data_dir)!r}: not a directory.")
     mode = stat.S_IMODE(data_dir.stat().st_mode)
-    if mode & 0o077:
+    if mode & 0o007:
         _LOG.warning(
-            "data_dir %s has mode %04o: other users can list or read the data directory, "
-            "which holds every item's features and outputs; run `chmod 700 %s`.",
+            "data_dir %s has mode %04o: every user can enter the data directory, which "
+            "holds every item's features and outputs; run `chmod 700 %s`.",
             data_dir,
             mode,
             data_dir,
