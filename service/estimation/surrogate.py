@@ -21,7 +21,18 @@ With labels (``fit_surrogate``): LightGBM boosting that starts from the model's 
   loss moments follow in closed form (``LossSpec.expected_losses``).
 E[(L - g)^2] = mean over members of (E[L^2] - g^2) + variance over members of g.
 
-Refit cost is bounded: at most ``max_training_rows`` labels (a seeded subsample beyond),
+Validation rows (``ValidationRows``): labeled rows from outside the pool (the team's
+validation split, or out-of-fold outputs on its training data) join the pool labels in
+every member's training set. They do not depend on the draws, so a surrogate fitted on
+them is as predictable as the cold start (docs/estimation.md). Pool labels describe the
+pool and come to dominate as they accrue: the validation rows share a fixed total weight
+(``SurrogateSettings.validation_weight``), and the temperature is fitted on the pool labels
+once there are ``temperature_min_pool_labels`` of them, on the validation rows before
+(benchmarks/experiments/NOTES.md, "Validation rows", has the measurements behind both).
+At most ``max_validation_rows`` of them are used (a seeded subsample beyond).
+
+Refit cost is bounded: at most ``max_training_rows`` labels and ``max_validation_rows``
+validation rows (seeded subsamples beyond),
 ``num_rounds`` rounds of ``num_leaves`` leaves per member (times K classes), and
 ``ensemble_size`` members; scoring costs ensemble_size x num_rounds (x K) tree walks per
 item. Everything is deterministic given ``seed`` (LightGBM runs with
@@ -57,6 +68,7 @@ __all__ = [
     "SurrogateScores",
     "MIN_REGRESSION_LABELS",
     "SurrogateSettings",
+    "ValidationRows",
     "cold_start_surrogate",
     "concatenate_scores",
     "worst_squared_deviation",
@@ -110,6 +122,19 @@ class SurrogateSettings:
     out_of_bag_stopping: bool = False
     out_of_bag_patience: int = 5
     num_threads: int = 1
+    # -- validation rows (used only when a fit is given ``ValidationRows``) --------------
+    #: At most this many validation rows per fit (a seeded subsample beyond).
+    max_validation_rows: int = 5_000
+    #: Total weight the validation rows share (each row min(1, this / rows used); a pool
+    #: label weighs 1), so pool labels outweigh them once there are more than this many.
+    #: ``math.inf`` gives every validation row the weight of a pool label.
+    validation_weight: float = 300.0
+    #: Append a "from the pool" column (1 for pool labels and scored items, 0 for
+    #: validation rows) that the trees can split on.
+    pool_indicator: bool = False
+    #: With validation rows, the temperature is fitted on the pool labels from this many
+    #: on, on the validation rows before.
+    temperature_min_pool_labels: int = 30
 
     def __post_init__(self) -> None:
         for name in (
@@ -121,6 +146,8 @@ class SurrogateSettings:
             "max_training_rows",
             "num_threads",
             "out_of_bag_patience",
+            "max_validation_rows",
+            "temperature_min_pool_labels",
         ):
             value = getattr(self, name)
             if not isinstance(value, int) or value < 1:
@@ -133,11 +160,40 @@ class SurrogateSettings:
             raise ValueError(f"learning_rate = {describe(self.learning_rate)}, must be in (0, 1].")
         if not (self.lambda_l2 >= 0.0):
             raise ValueError(f"lambda_l2 = {describe(self.lambda_l2)}, must be >= 0.")
+        if not (self.validation_weight > 0.0):
+            raise ValueError(
+                f"validation_weight = {describe(self.validation_weight)}, must be > 0 "
+                "(math.inf: every validation row weighs as much as a pool label)."
+            )
+
+
+@dataclass(frozen=True)
+class ValidationRows:
+    """Labeled rows from outside the pool that teach the surrogate: the team's validation
+    split, or out-of-fold outputs on its training data.
+
+    ``features`` (n, d) as the pool's; ``outputs`` the model's held-out outputs for these
+    rows ((n, K) probabilities or (n,) predictions); ``labels`` (n,) class indices or real
+    targets. Their outputs must be held-out ones (the model did not train on the row), or
+    the surrogate learns the model's training-set confidence. They never enter an
+    estimate: only the surrogate sees them.
+    """
+
+    features: np.ndarray
+    outputs: np.ndarray
+    labels: np.ndarray
+
+    def __len__(self) -> int:
+        return int(np.shape(self.labels)[0])
 
 
 class Surrogate:
     """A fitted, immutable surrogate. Build with ``cold_start_surrogate`` or
-    ``fit_surrogate``; ``version`` 0 is the cold start."""
+    ``fit_surrogate``; ``version`` 0 is the cold start.
+
+    What it was fitted on: ``label_count`` pool labels and ``validation_count`` validation
+    rows given (``validation_used`` of them after the cap).
+    """
 
     def __init__(
         self,
@@ -150,6 +206,9 @@ class Surrogate:
         seen_classes: tuple[int, ...] = (),
         feature_dim: int = -1,
         temperature: float = 1.0,
+        validation_count: int = 0,
+        validation_used: int = 0,
+        pool_indicator: bool = False,
     ) -> None:
         self.spec = spec
         self.version = int(version)
@@ -159,10 +218,14 @@ class Surrogate:
         self._seen_classes = seen_classes
         self._feature_dim = feature_dim
         self.temperature = float(temperature)
+        self.validation_count = int(validation_count)
+        self.validation_used = int(validation_used)
+        self._pool_indicator = bool(pool_indicator)
 
     def __repr__(self) -> str:
         return (
             f"Surrogate(version={self.version}, label_count={self.label_count}, "
+            f"validation_count={self.validation_count}, "
             f"members={len(self._boosters)}, spec={describe(self.spec)})"
         )
 
@@ -178,7 +241,7 @@ class Surrogate:
         n = out.shape[0]
         if self.is_cold_start:
             return _cold_scores(self.spec, out)
-        x = _design(features, out, self._feature_dim)
+        x = _design(features, out, self._feature_dim, indicator=self._pool_indicator)
         if x.shape[0] != n:
             raise ValueError(f"features has {x.shape[0]} rows, must match outputs ({n}).")
         firsts, seconds = [], []
@@ -216,7 +279,7 @@ class Surrogate:
         out = self.spec.check_outputs(outputs)
         if self.is_cold_start:
             return out.copy()
-        x = _design(features, out, self._feature_dim)
+        x = _design(features, out, self._feature_dim, indicator=self._pool_indicator)
         init = _log_init(out, self.temperature)
         members = [
             _class_probabilities(b, x, out, self._seen_classes, init) for b in self._boosters
@@ -237,6 +300,9 @@ class Surrogate:
             "feature_dim": self._feature_dim,
             "seen_classes": list(self._seen_classes),
             "temperature": self.temperature,
+            "validation_count": self.validation_count,
+            "validation_used": self.validation_used,
+            "pool_indicator": self._pool_indicator,
             "boosters": [b.model_to_string() for b in self._boosters],
             "variance_boosters": [b.model_to_string() for b in self._variance_boosters],
         }
@@ -275,6 +341,10 @@ class Surrogate:
             seen_classes=tuple(int(c) for c in envelope["seen_classes"]),
             feature_dim=int(envelope["feature_dim"]),
             temperature=float(envelope["temperature"]),
+            # Envelopes written before validation rows existed lack these keys.
+            validation_count=int(envelope.get("validation_count", 0)),
+            validation_used=int(envelope.get("validation_used", 0)),
+            pool_indicator=bool(envelope.get("pool_indicator", False)),
         )
 
 
@@ -330,14 +400,25 @@ def worst_squared_deviation(
     return np.maximum(g, spec.bound - g) ** 2
 
 
-def _design(features: object, outputs: np.ndarray, feature_dim: int) -> np.ndarray:
-    x = check_finite_array("features", features, ndim=2)
+def _design(
+    features: object,
+    outputs: np.ndarray,
+    feature_dim: int,
+    *,
+    indicator: bool = False,
+    from_pool: bool = True,
+    name: str = "features",
+) -> np.ndarray:
+    """The trees' inputs: features, model outputs and, with ``indicator``, a "from the
+    pool" column (1 for pool rows, 0 for validation rows)."""
+    x = check_finite_array(name, features, ndim=2)
     if feature_dim >= 0 and x.shape[1] != feature_dim:
-        raise ValueError(
-            f"features has {x.shape[1]} columns, surrogate was fitted on {feature_dim}."
-        )
+        raise ValueError(f"{name} has {x.shape[1]} columns, surrogate was fitted on {feature_dim}.")
     columns = outputs if outputs.ndim == 2 else outputs[:, None]
-    return np.hstack([x, columns])
+    parts = [x, columns]
+    if indicator:
+        parts.append(np.full((x.shape[0], 1), 1.0 if from_pool else 0.0))
+    return np.hstack(parts)
 
 
 def _log_init(outputs: np.ndarray, temperature: float = 1.0) -> np.ndarray:
@@ -425,9 +506,10 @@ def _train(
     *,
     settings: SurrogateSettings,
     rng: np.random.Generator,
+    weight: np.ndarray | None = None,
 ) -> lgb.Booster:
     with _NATIVE_CALLS:
-        return _train_unlocked(params, x, y, init, settings=settings, rng=rng)
+        return _train_unlocked(params, x, y, init, settings=settings, rng=rng, weight=weight)
 
 
 def _train_unlocked(
@@ -438,6 +520,7 @@ def _train_unlocked(
     *,
     settings: SurrogateSettings,
     rng: np.random.Generator,
+    weight: np.ndarray | None = None,
 ) -> lgb.Booster:
     n = x.shape[0]
     rows = np.arange(n)
@@ -459,6 +542,7 @@ def _train_unlocked(
         x[sample],
         label=y[sample],
         init_score=None if init is None else init[sample],
+        weight=None if weight is None else weight[sample],
         params={"verbose": -1, "min_data_in_bin": 1, "max_bin": settings.max_bin},
         free_raw_data=True,
     )
@@ -469,6 +553,7 @@ def _train_unlocked(
             x[stop_rows],
             label=y[stop_rows],
             init_score=None if init is None else init[stop_rows],
+            weight=None if weight is None else weight[stop_rows],
             params={"verbose": -1},
             reference=train,
         )
@@ -492,9 +577,16 @@ def fit_surrogate(
     version: int,
     seed: int,
     settings: SurrogateSettings | None = None,
+    validation: ValidationRows | None = None,
 ) -> Surrogate:
-    """Fit the warm-started LightGBM ensemble on labeled items (features (n, d), outputs,
-    labels). With no labels it returns the cold start under ``version``."""
+    """Fit the warm-started LightGBM ensemble on labeled pool items (features (n, d),
+    outputs, labels) and, if given, on ``validation`` rows from outside the pool.
+
+    With neither it returns the cold start under ``version`` (regression: below
+    MIN_REGRESSION_LABELS rows in all). Without validation rows (None or empty) the fit is
+    exactly the pool-labels-only one. ValueError names the argument and the rule when
+    shapes, outputs or labels are invalid.
+    """
     settings = settings or SurrogateSettings()
     if int(version) != version or version < 0:
         raise ValueError(f"version = {describe(version)}, must be an integer >= 0.")
@@ -505,6 +597,18 @@ def fit_surrogate(
         raise ValueError(f"features has {x.shape[0]} rows, must match outputs ({out.shape[0]}).")
     feature_dim = x.shape[1] - (out.shape[1] if out.ndim == 2 else 1)
     n = out.shape[0]
+    if validation is not None and len(validation):
+        return _fit_with_validation(
+            spec,
+            features,
+            out,
+            y,
+            validation,
+            feature_dim=feature_dim,
+            version=version,
+            seed=seed,
+            settings=settings,
+        )
     if n == 0 or (not spec.is_classification and n < MIN_REGRESSION_LABELS):
         # Regression has no label-free spread signal: a boosted fit on a handful of labels
         # would be confidently wrong, so the pessimistic cold start stays until there are
@@ -514,17 +618,144 @@ def fit_surrogate(
     if n > settings.max_training_rows:
         keep = np.sort(rng.choice(n, size=settings.max_training_rows, replace=False))
         x, out, y = x[keep], out[keep], y[keep]
+    temperature = _fit_temperature(out, y) if spec.is_classification else 1.0
+    boosters, variance_boosters, seen = _fit_members(
+        spec, x, out, y, temperature, None, seed=seed, settings=settings, rng=rng
+    )
+    _LOG.debug("fitted surrogate version %s on %s labels", version, n)
+    return Surrogate(
+        spec,
+        version=version,
+        label_count=n,
+        boosters=boosters,
+        variance_boosters=variance_boosters,
+        seen_classes=seen,
+        feature_dim=feature_dim,
+        temperature=temperature,
+    )
+
+
+def _fit_with_validation(
+    spec: LossSpec,
+    features: object,
+    out: np.ndarray,
+    y: np.ndarray,
+    validation: ValidationRows,
+    *,
+    feature_dim: int,
+    version: int,
+    seed: int,
+    settings: SurrogateSettings,
+) -> Surrogate:
+    """Pool labels (out, y; features checked by the caller) plus validation rows."""
+    n = out.shape[0]
+    indicator = settings.pool_indicator
+    x = _design(features, out, feature_dim, indicator=indicator)
+    rng = np.random.default_rng(seed)
+    if n > settings.max_training_rows:
+        keep = np.sort(rng.choice(n, size=settings.max_training_rows, replace=False))
+        x, out, y = x[keep], out[keep], y[keep]
+    given = len(validation)
+    # Subsample before checking and copying: 100k rows cost no more than the cap.
+    rows: np.ndarray | slice = slice(None)
+    if given > settings.max_validation_rows:
+        rows = np.sort(rng.choice(given, size=settings.max_validation_rows, replace=False))
+    v_out = spec.check_outputs(_rows(validation.outputs, rows), name="validation outputs")
+    used = v_out.shape[0]
+    v_y = spec.check_labels(_rows(validation.labels, rows), used, name="validation labels")
+    v_x = _design(
+        _rows(validation.features, rows),
+        v_out,
+        feature_dim,
+        indicator=indicator,
+        from_pool=False,
+        name="validation features",
+    )
+    if v_x.shape[0] != used:
+        raise ValueError(
+            f"validation features has {v_x.shape[0]} rows, must match validation outputs ({used})."
+        )
+    if not spec.is_classification and n + used < MIN_REGRESSION_LABELS:
+        return Surrogate(
+            spec,
+            version=version,
+            label_count=n,
+            feature_dim=feature_dim,
+            validation_count=given,
+            validation_used=used,
+        )
+    temperature = 1.0
+    if spec.is_classification:
+        # The model's calibration on the pool is what matters; the validation rows stand
+        # in for it until the pool labels can say.
+        if n >= settings.temperature_min_pool_labels:
+            temperature = _fit_temperature(out, y)
+        else:
+            temperature = _fit_temperature(v_out, v_y)
+    per_row = min(1.0, settings.validation_weight / used)
+    weight = np.concatenate([np.ones(n), np.full(used, per_row)])
+    boosters, variance_boosters, seen = _fit_members(
+        spec,
+        np.vstack([x, v_x]),
+        np.concatenate([out, v_out]),
+        np.concatenate([y, v_y]),
+        temperature,
+        weight,
+        seed=seed,
+        settings=settings,
+        rng=rng,
+    )
+    _LOG.debug(
+        "fitted surrogate version %s on %s labels and %s of %s validation rows",
+        version,
+        n,
+        used,
+        given,
+    )
+    return Surrogate(
+        spec,
+        version=version,
+        label_count=n,
+        boosters=boosters,
+        variance_boosters=variance_boosters,
+        seen_classes=seen,
+        feature_dim=feature_dim,
+        temperature=temperature,
+        validation_count=given,
+        validation_used=used,
+        pool_indicator=indicator,
+    )
+
+
+def _rows(values: object, rows: np.ndarray | slice) -> np.ndarray:
+    return np.asarray(values)[rows]
+
+
+def _fit_members(
+    spec: LossSpec,
+    x: np.ndarray,
+    out: np.ndarray,
+    y: np.ndarray,
+    temperature: float,
+    weight: np.ndarray | None,
+    *,
+    seed: int,
+    settings: SurrogateSettings,
+    rng: np.random.Generator,
+) -> tuple[tuple[lgb.Booster, ...], tuple[lgb.Booster, ...], tuple[int, ...]]:
+    """The bootstrap ensemble: (boosters, variance boosters, classes seen)."""
     boosters = []
     variance_boosters = []
     if spec.is_classification:
         k = spec.num_classes
-        temperature = _fit_temperature(out, y)
         init = _log_init(out, temperature)
         params = _params(settings, "multiclass", seed, num_class=k)
         for member in range(settings.ensemble_size):
             params["seed"] = seed + member
             boosters.append(
-                _train(params, x, y.astype(np.float64), init, settings=settings, rng=rng)
+                _train(
+                    params, x, y.astype(np.float64), init, settings=settings, rng=rng, weight=weight
+                )
             )
         seen = tuple(int(c) for c in np.unique(y))
     else:
@@ -538,19 +769,12 @@ def fit_surrogate(
         params = _params(settings, "regression", seed)
         for member in range(settings.ensemble_size):
             params["seed"] = seed + member
-            boosters.append(_train(params, x, target, out, settings=settings, rng=rng))
+            boosters.append(
+                _train(params, x, target, out, settings=settings, rng=rng, weight=weight)
+            )
             # No init_score: LightGBM starts from the mean squared error by itself.
-            variance_boosters.append(_train(params, x, squared, None, settings=settings, rng=rng))
+            variance_boosters.append(
+                _train(params, x, squared, None, settings=settings, rng=rng, weight=weight)
+            )
         seen = ()
-        temperature = 1.0
-    _LOG.debug("fitted surrogate version %s on %s labels", version, n)
-    return Surrogate(
-        spec,
-        version=version,
-        label_count=n,
-        boosters=tuple(boosters),
-        variance_boosters=tuple(variance_boosters),
-        seen_classes=seen,
-        feature_dim=feature_dim,
-        temperature=temperature,
-    )
+    return tuple(boosters), tuple(variance_boosters), seen
