@@ -8,8 +8,10 @@ roles::
     "s3cr3t-ops" = ["admin", "reader"]
 
 Each service maps to one role (admin: CreatePool / DeletePool; ingest: IngestService;
-labeler: LabelingService; reader: EstimateService). GetPool and ListPools are open to every
-role; the health service and reflection need no token.
+labeler: LabelingService; reader: EstimateService), with one exception:
+AddValidationItems takes ingest or admin (the rows often come from whoever set the pool
+up). GetPool and ListPools are open to every role; the health service and reflection need
+no token.
 """
 
 from __future__ import annotations
@@ -48,6 +50,10 @@ _SERVICE_ROLES = {
     "LabelingService": frozenset({"labeler"}),
     "EstimateService": frozenset({"reader"}),
 }
+# Methods whose roles differ from their service's.
+_METHOD_ROLES = {
+    "IngestService/AddValidationItems": frozenset({"ingest", "admin"}),
+}
 _POOL_METHOD_ROLES = {
     "CreatePool": frozenset({"admin"}),
     "DeletePool": frozenset({"admin"}),
@@ -60,7 +66,10 @@ def required_roles(method: str) -> frozenset[str] | None:
     """Roles any one of which may call ``method`` (a full gRPC method path); None = open."""
     if not method.startswith(_PACKAGE):
         return None  # health, reflection
-    service, _, name = method[len(_PACKAGE) :].partition("/")
+    path = method[len(_PACKAGE) :]
+    if path in _METHOD_ROLES:
+        return _METHOD_ROLES[path]
+    service, _, name = path.partition("/")
     if service == "PoolService":
         return _POOL_METHOD_ROLES.get(name, frozenset({"admin"}))
     # Unknown leadline services are closed to everyone rather than open.

@@ -68,6 +68,9 @@ def pool_message(info: PoolInfo) -> pb.Pool:
         pending_count=info.pending_count,
         skipped_count=info.skipped_count,
         segments=list(info.segments),
+        validation_count=info.validation_count,
+        surrogate_label_count=info.surrogate_label_count,
+        surrogate_validation_count=info.surrogate_validation_count,
     )
 
 

@@ -114,10 +114,18 @@ class PoolServicer(pb_grpc.PoolServiceServicer):
 
 
 class IngestServicer(pb_grpc.IngestServiceServicer):
-    def __init__(self, engine: Engine, config: ServerConfig, auth: Authenticator) -> None:
+    def __init__(
+        self,
+        engine: Engine,
+        config: ServerConfig,
+        auth: Authenticator,
+        *,
+        on_validation: Callable[[], None] = lambda: None,
+    ) -> None:
         self._engine = engine
         self._auth = auth
         self._max_items = config.max_batch_items
+        self._on_validation = on_validation
 
     @rpc_method
     def IngestItems(self, request: pb.ItemBatch, context: grpc.ServicerContext) -> pb.IngestSummary:
@@ -127,6 +135,26 @@ class IngestServicer(pb_grpc.IngestServiceServicer):
         batch = validation.item_batch(request, settings, max_items=self._max_items)
         call = _write_call(self._auth, context, request, request_id)
         result = self._engine.ingest(pool_id, batch, call=call)
+        return pb.IngestSummary(
+            accepted=result.accepted,
+            duplicates=result.duplicates,
+            rejected=result.rejected,
+            errors=[convert.item_error(problem) for problem in result.errors],
+            item_count=result.item_count,
+        )
+
+    @rpc_method
+    def AddValidationItems(
+        self, request: pb.ValidationBatch, context: grpc.ServicerContext
+    ) -> pb.IngestSummary:
+        pool_id = validation.parse_pool_name(request.pool)
+        request_id = validation.check_request_id(request.request_id)
+        settings = self._engine.pool(pool_id).settings
+        batch = validation.validation_batch(request, settings, max_items=self._max_items)
+        call = _write_call(self._auth, context, request, request_id)
+        result = self._engine.add_validation(pool_id, batch, call=call)
+        if result.accepted:
+            self._on_validation()  # the refit that covers them starts now
         return pb.IngestSummary(
             accepted=result.accepted,
             duplicates=result.duplicates,
@@ -278,9 +306,14 @@ def add_servicers(
     *,
     on_labels: Callable[[], None],
 ) -> list[str]:
-    """Register the four services; return their full names (for health and reflection)."""
+    """Register the four services; return their full names (for health and reflection).
+
+    ``on_labels`` wakes the refit worker; it is called after labels or validation items
+    were accepted."""
     pb_grpc.add_PoolServiceServicer_to_server(PoolServicer(engine, auth), server)
-    pb_grpc.add_IngestServiceServicer_to_server(IngestServicer(engine, config, auth), server)
+    pb_grpc.add_IngestServiceServicer_to_server(
+        IngestServicer(engine, config, auth, on_validation=on_labels), server
+    )
     pb_grpc.add_LabelingServiceServicer_to_server(
         LabelingServicer(engine, auth, on_labels=on_labels), server
     )

@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 
-from leadline.service.engine import ItemBatch, LabelInput, PoolSettings, Scope
+from leadline.service.engine import ItemBatch, LabelInput, PoolSettings, Scope, ValidationItems
 from leadline.service.errors import InvalidArgument, ResourceExhausted
 from leadline.service.estimation import BoundKind, EstimatorMode
 from leadline.v1 import leadline_pb2 as pb
@@ -34,6 +34,7 @@ __all__ = [
     "item_batch",
     "parse_pool_name",
     "pool_settings",
+    "validation_batch",
 ]
 
 POOL_ID_PATTERN = re.compile(r"[a-z][a-z0-9-]{0,62}")
@@ -264,9 +265,8 @@ def _strings(field: str, values: Any, n: int, *, max_length: int, allow_empty: b
     return items
 
 
-def item_batch(batch: pb.ItemBatch, settings: PoolSettings, *, max_items: int) -> ItemBatch:
-    """Validate an ingest batch whole (nothing is written if any rule fails)."""
-    ids = list(batch.item_ids)
+def _check_item_ids(values: Any, *, max_items: int) -> list[str]:
+    ids = list(values)
     n = len(ids)
     if n == 0:
         raise _bad("item_ids", "item_ids is empty: a batch needs at least one item.")
@@ -293,8 +293,13 @@ def item_batch(batch: pb.ItemBatch, settings: PoolSettings, *, max_items: int) -
                     "may appear once per batch.",
                 )
             seen.add(item_id)
+    return ids
+
+
+def _check_features(values: Any, ids: list[str], settings: PoolSettings) -> np.ndarray:
+    n = len(ids)
     d = settings.feature_dim
-    features = np.asarray(batch.features, dtype=np.float32)
+    features = np.asarray(values, dtype=np.float32)
     if features.shape[0] != n * d:
         raise _bad(
             "features",
@@ -310,7 +315,12 @@ def item_batch(batch: pb.ItemBatch, settings: PoolSettings, *, max_items: int) -
             f"features of item {ids[row]!r} (row {row}): every value must be finite "
             "(no NaN or infinity).",
         )
-    outputs = np.asarray(batch.model_outputs, dtype=np.float32)
+    return features
+
+
+def _check_outputs(values: Any, ids: list[str], settings: PoolSettings) -> np.ndarray:
+    n = len(ids)
+    outputs = np.asarray(values, dtype=np.float32)
     if settings.is_classification:
         k = settings.num_classes
         if outputs.shape[0] != n * k:
@@ -339,21 +349,29 @@ def item_batch(batch: pb.ItemBatch, settings: PoolSettings, *, max_items: int) -
             )
         # Rows are renormalised to sum to 1 (the core checks sums to a tighter tolerance);
         # the stored outputs are the renormalised ones.
-        outputs = (wide / totals[:, None]).astype(np.float32)
-    else:
-        if outputs.shape[0] != n:
-            raise _bad(
-                "model_outputs",
-                f"model_outputs has {outputs.shape[0]} values: a regression pool takes one "
-                f"prediction per item ({n}).",
-            )
-        finite_outputs = np.isfinite(outputs)
-        if not finite_outputs.all():
-            row = _first(~finite_outputs)
-            raise _bad(
-                "model_outputs",
-                f"model_outputs of item {ids[row]!r} (row {row}) = {outputs[row]}: must be finite.",
-            )
+        return (wide / totals[:, None]).astype(np.float32)
+    if outputs.shape[0] != n:
+        raise _bad(
+            "model_outputs",
+            f"model_outputs has {outputs.shape[0]} values: a regression pool takes one "
+            f"prediction per item ({n}).",
+        )
+    finite_outputs = np.isfinite(outputs)
+    if not finite_outputs.all():
+        row = _first(~finite_outputs)
+        raise _bad(
+            "model_outputs",
+            f"model_outputs of item {ids[row]!r} (row {row}) = {outputs[row]}: must be finite.",
+        )
+    return outputs
+
+
+def item_batch(batch: pb.ItemBatch, settings: PoolSettings, *, max_items: int) -> ItemBatch:
+    """Validate an ingest batch whole (nothing is written if any rule fails)."""
+    ids = _check_item_ids(batch.item_ids, max_items=max_items)
+    n = len(ids)
+    features = _check_features(batch.features, ids, settings)
+    outputs = _check_outputs(batch.model_outputs, ids, settings)
     payload_refs = (
         _strings(
             "payload_refs", batch.payload_refs, n, max_length=MAX_PAYLOAD_REF, allow_empty=True
@@ -388,6 +406,74 @@ def item_batch(batch: pb.ItemBatch, settings: PoolSettings, *, max_items: int) -
         payload_refs=payload_refs,
         segments=segments,
         event_time_ms=event_times,
+    )
+
+
+def validation_batch(
+    batch: pb.ValidationBatch, settings: PoolSettings, *, max_items: int
+) -> ValidationItems:
+    """Validate an AddValidationItems batch whole (nothing is written if any rule fails):
+    the ingest rules, plus exactly one label column by task (class_labels for
+    classification, values for regression), one label per item."""
+    ids = _check_item_ids(batch.item_ids, max_items=max_items)
+    n = len(ids)
+    features = _check_features(batch.features, ids, settings)
+    outputs = _check_outputs(batch.model_outputs, ids, settings)
+    pool = f"pool 'pools/{settings.pool_id}'"
+    if settings.is_classification:
+        if len(batch.values):
+            raise _bad(
+                "values",
+                f"values has {len(batch.values)} entries: {pool} is a classification pool; "
+                "send the labels as class_labels and leave values empty.",
+            )
+        if len(batch.class_labels) != n:
+            raise _bad(
+                "class_labels",
+                f"class_labels has {len(batch.class_labels)} entries for {n} item ids: a "
+                "classification pool needs one class label per item.",
+            )
+        labels = np.asarray(batch.class_labels, dtype=np.int64)
+        k = settings.num_classes
+        outside = (labels < 0) | (labels >= k)
+        if outside.any():
+            row = _first(outside)
+            raise _bad(
+                "class_labels",
+                f"class_labels[{row}] = {labels[row]} (item {ids[row]!r}): must be in 0..{k - 1}.",
+            )
+    else:
+        if len(batch.class_labels):
+            raise _bad(
+                "class_labels",
+                f"class_labels has {len(batch.class_labels)} entries: {pool} is a regression "
+                "pool; send the targets as values and leave class_labels empty.",
+            )
+        if len(batch.values) != n:
+            raise _bad(
+                "values",
+                f"values has {len(batch.values)} entries for {n} item ids: a regression pool "
+                "needs one target value per item.",
+            )
+        labels = np.asarray(batch.values, dtype=np.float64)
+        finite = np.isfinite(labels)
+        if not finite.all():
+            row = _first(~finite)
+            raise _bad(
+                "values",
+                f"values[{row}] = {labels[row]} (item {ids[row]!r}): must be finite.",
+            )
+    segments = (
+        _strings("segments", batch.segments, n, max_length=MAX_SEGMENT, allow_empty=True)
+        if len(batch.segments)
+        else None
+    )
+    return ValidationItems(
+        item_ids=ids,
+        features=features,
+        outputs=outputs,
+        labels=labels.astype(np.float64),
+        segments=segments,
     )
 
 

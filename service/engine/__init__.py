@@ -14,6 +14,7 @@ from leadline.service.engine.results import (
     LabelInput,
     OutcomeResult,
     PoolInfo,
+    ValidationItems,
 )
 from leadline.service.engine.scopes import Scope
 
@@ -33,5 +34,6 @@ __all__ = [
     "PoolState",
     "RefitWorker",
     "Scope",
+    "ValidationItems",
     "WriteCall",
 ]

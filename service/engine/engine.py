@@ -47,6 +47,7 @@ from leadline.service.engine.results import (
     LabelInput,
     OutcomeResult,
     PoolInfo,
+    ValidationItems,
     decode_assignments,
     decode_ingest,
     decode_outcome,
@@ -61,6 +62,7 @@ from leadline.service.estimation import (
     Surrogate,
     SurrogateScores,
     SurrogateSettings,
+    ValidationRows,
     check_gate,
     concatenate_scores,
     estimate_risk,
@@ -77,6 +79,10 @@ _LOG = logging.getLogger(__name__)
 _SCORE_CHUNK = 100_000
 # A refit scores at most this many late-arriving items while holding the pool lock.
 _CATCH_UP_UNDER_LOCK = 5_000
+# A draw waits at most this long for the refit that covers newly added validation items
+# (so the first draw after an upload uses them); after that it draws with the surrogate
+# it has, which is just as valid, only less informed.
+VALIDATION_REFIT_WAIT_SECONDS = 30.0
 
 
 @dataclass(frozen=True)
@@ -163,6 +169,15 @@ class Engine:
         pool = PoolState(settings=settings, seed=row.seed, create_time_ms=row.create_time_ms)
         for name in store.load_segments(reader, settings.pool_id):
             pool.add_segments([name])
+        for rows in store.load_validation_items(
+            reader,
+            settings.pool_id,
+            feature_dim=settings.feature_dim,
+            output_width=settings.output_width,
+        ):
+            ingest.append_validation(
+                pool, rows.item_ids, rows.features, rows.outputs, rows.labels, rows.segments
+            )
         model = store.load_latest_model(reader, settings.pool_id)
         if model is not None:
             version, label_count, data = model
@@ -194,9 +209,11 @@ class Engine:
         pool.mark_drawn_items(0)
         pool.last_fit_time = time.monotonic()
         _LOG.info(
-            "loaded pool %s: %d items, %d draws, surrogate version %d in %.2f s",
+            "loaded pool %s: %d items, %d validation items, %d draws, surrogate version %d"
+            " in %.2f s",
             settings.pool_id,
             pool.item_count,
+            pool.validation_count,
             len(pool.draws),
             pool.surrogate_version,
             time.monotonic() - started,
@@ -416,6 +433,9 @@ class Engine:
                 pending_count=pending,
                 skipped_count=skipped,
                 segments=tuple(sorted(name for name in pool.segment_names if name)),
+                validation_count=pool.validation_count,
+                surrogate_label_count=pool.surrogate.label_count,
+                surrogate_validation_count=pool.surrogate.validation_count,
             )
 
     def get_pool(self, pool_id: str) -> PoolInfo:
@@ -650,6 +670,21 @@ class Engine:
         )
         return result
 
+    def add_validation(
+        self, pool_id: str, batch: ValidationItems, *, call: WriteCall = _NO_ID
+    ) -> IngestResult:
+        """Add validated validation items; identical re-sent ids are duplicates, conflicting
+        ones rejected (listed per item). The caller nudges the refit worker when any were
+        accepted: a refit then covers them before the next draw (see :meth:`acquire`)."""
+        result: IngestResult = self._write(
+            pool_id,
+            "add_validation",
+            call,
+            lambda p: ingest.apply_validation(p, batch),
+            decode_ingest,
+        )
+        return result
+
     # ------------------------------------------------------------------------------------
     # labeling
     # ------------------------------------------------------------------------------------
@@ -663,7 +698,12 @@ class Engine:
         lease_seconds: int = 0,
         call: WriteCall = _NO_ID,
     ) -> list[AssignmentInfo]:
-        """Re-offer waiting draws first, then make new draws; each with a lease."""
+        """Re-offer waiting draws first, then make new draws; each with a lease.
+
+        If validation items arrived that the surrogate does not cover yet, first wait (up
+        to VALIDATION_REFIT_WAIT_SECONDS) for the refit that will.
+        """
+        self._wait_for_validation_refit(self.pool(pool_id))
 
         def work(pool: PoolState) -> tuple[list[AssignmentInfo], list[Write]]:
             return labeling.acquire(
@@ -681,6 +721,25 @@ class Engine:
             pool_id, "acquire", call, work, decode_assignments
         )
         return result
+
+    def _wait_for_validation_refit(self, pool: PoolState) -> None:
+        deadline = time.monotonic() + VALIDATION_REFIT_WAIT_SECONDS
+        with pool.lock:
+            while (
+                pool.validation_refit_pending()
+                and not pool.deleted
+                and not self._closed
+                and self._db.failure is None  # no refit can be saved meanwhile
+            ):
+                remaining = deadline - time.monotonic()
+                if remaining <= 0:
+                    _LOG.warning(
+                        "pool %s: drawing before the refit on %d validation items finished",
+                        pool.pool_id,
+                        pool.validation_count,
+                    )
+                    return
+                pool.refit_done.wait(remaining)
 
     def submit(
         self,
@@ -870,6 +929,8 @@ class Engine:
                 return False
             if self._db.failure is not None:
                 return False  # the store refuses writes: the fit could not be saved
+            if pool.validation_refit_pending():
+                return True  # at once: the next draw waits for it
             labeled, _, _ = pool.draw_counts()
             new_labels = labeled - pool.surrogate_label_count
             if new_labels <= 0 or labeled <= pool.failed_fit_labels:
@@ -889,6 +950,12 @@ class Engine:
             labeled = np.flatnonzero(draws.status.view == LABELED)
             rows = draws.row.view[labeled]
             labels = draws.label.view[labeled].copy()
+            # Views of rows that never change once written (append-only columns).
+            validation = ValidationRows(
+                features=pool.validation_features.view,
+                outputs=pool.validation_outputs.view,
+                labels=pool.validation_labels.view,
+            )
             features = pool.features.view
             outputs = pool.outputs.view
             n0 = pool.item_count
@@ -896,7 +963,14 @@ class Engine:
             epoch = pool.epoch
             seed = int((pool.seed + version) % (2**31 - 1))
         try:
-            typed = labels.astype(np.int64) if pool.settings.is_classification else labels
+            classification = pool.settings.is_classification
+            typed = labels.astype(np.int64) if classification else labels
+            if classification:
+                validation = ValidationRows(
+                    features=validation.features,
+                    outputs=validation.outputs,
+                    labels=validation.labels.astype(np.int64),
+                )
             surrogate = fit_surrogate(
                 pool.spec,
                 features[rows],
@@ -905,6 +979,7 @@ class Engine:
                 version=version,
                 seed=seed,
                 settings=SurrogateSettings(num_threads=self._config.surrogate_threads),
+                validation=validation,
             )
             scores = _score_rows(surrogate, features[:n0], outputs[:n0])
             data = surrogate.to_bytes()
@@ -961,21 +1036,26 @@ class Engine:
         except Exception:
             _LOG.exception("refit of pool %s (version %d) failed", pool.pool_id, version)
             with pool.lock:
-                # Retry only once more labels arrived: the same labels would fail again.
+                # Retry only once more labels (or validation items) arrived: the same
+                # data would fail again.
                 pool.failed_fit_labels = int(labels.shape[0])
+                pool.failed_fit_validation = len(validation)
                 pool.last_fit_time = time.monotonic()
             return False
         finally:
             with pool.lock:
                 pool.refitting = False
+                pool.refit_done.notify_all()
         elapsed = time.monotonic() - started
         self.refit_count += 1
         self.refit_seconds_total += elapsed
         _LOG.info(
-            "refit pool %s: surrogate version %d on %d labels, %d items rescored in %.2f s",
+            "refit pool %s: surrogate version %d on %d labels and %d validation items,"
+            " %d items rescored in %.2f s",
             pool.pool_id,
             version,
             labels.shape[0],
+            len(validation),
             n0,
             elapsed,
         )

@@ -1,5 +1,7 @@
 """Ingest: append a validated batch to a pool's arrays; duplicates and conflicts.
 
+Validation items (``apply_validation``) follow the same rules in their own arrays.
+
 Work here runs under the pool lock and only touches memory; it returns the store writes
 for the caller to queue (see :mod:`leadline.service.engine.engine`).
 """
@@ -11,12 +13,25 @@ import time
 import numpy as np
 
 from leadline.service.engine.pool import AVAILABLE, PoolState
-from leadline.service.engine.results import IngestResult, ItemBatch, ItemProblem
+from leadline.service.engine.results import (
+    IngestResult,
+    ItemBatch,
+    ItemProblem,
+    ValidationItems,
+)
 from leadline.service.estimation import Surrogate, SurrogateScores
 from leadline.service.store import records as store
 from leadline.service.store.records import Write
 
-__all__ = ["MAX_ITEM_ERRORS", "append_items", "apply_batch", "compare_duplicates", "now_ms"]
+__all__ = [
+    "MAX_ITEM_ERRORS",
+    "append_items",
+    "append_validation",
+    "apply_batch",
+    "apply_validation",
+    "compare_duplicates",
+    "now_ms",
+]
 
 # At most this many per-item problems travel back in one reply.
 MAX_ITEM_ERRORS = 20
@@ -192,6 +207,106 @@ def compare_duplicates(
             reason=(
                 f"item_ids[{p}] = {batch.item_ids[p]!r}: already in the pool with a different "
                 f"{name}; an item id may not change content (use a new id)."
+            ),
+            field=name,
+            kind="InvalidArgument",
+        )
+        for p, name in zip(positions, conflict_field, strict=True)
+        if name
+    ]
+    return int(positions.shape[0]) - len(problems), problems
+
+
+def append_validation(
+    pool: PoolState,
+    item_ids: list[str],
+    features: np.ndarray,
+    outputs: np.ndarray,
+    labels: np.ndarray,
+    segments: list[str],
+) -> None:
+    start = pool.validation_count
+    pool.validation_ids.extend(item_ids)
+    pool.validation_index.update(zip(item_ids, range(start, start + len(item_ids)), strict=True))
+    pool.validation_features.extend(features)
+    pool.validation_outputs.extend(outputs)
+    pool.validation_labels.extend(labels)
+    pool.validation_segments.extend(segments)
+
+
+def apply_validation(pool: PoolState, batch: ValidationItems) -> tuple[IngestResult, list[Write]]:
+    """Add the batch's new validation items (call with ``pool.lock`` held).
+
+    Same semantics as :func:`apply_batch`: identical re-sent ids are duplicates, an id
+    re-sent with different content is rejected per item, the rest is kept. The result's
+    ``item_count`` is the pool's validation count after the batch. Nothing here touches
+    the pool's items, scores or estimates, so the query caches stay valid.
+    """
+    known = [pool.validation_index.get(item_id) for item_id in batch.item_ids]
+    existing = np.array([-1 if k is None else k for k in known], dtype=np.int64)
+    problems: list[ItemProblem] = []
+    duplicates = 0
+    if (existing >= 0).any():
+        duplicates, problems = _compare_validation(pool, batch, existing)
+    new_positions = np.flatnonzero(existing < 0)
+    accepted = int(new_positions.shape[0])
+    writes: list[Write] = []
+    if accepted:
+        ids = [batch.item_ids[i] for i in new_positions]
+        segments = [batch.segments[i] for i in new_positions] if batch.segments else [""] * accepted
+        chunk = store.ValidationChunk(
+            start=pool.validation_count,
+            item_ids=ids,
+            features=batch.features[new_positions],
+            outputs=batch.outputs[new_positions],
+            labels=batch.labels[new_positions],
+            segments=segments,
+            ingest_time_ms=np.full(accepted, now_ms(), dtype=np.int64),
+        )
+        writes.append(store.insert_validation_items(pool.pool_id, chunk))
+        append_validation(pool, ids, chunk.features, chunk.outputs, chunk.labels, segments)
+    result = IngestResult(
+        accepted=accepted,
+        duplicates=duplicates,
+        rejected=len(problems),
+        errors=tuple(problems[:MAX_ITEM_ERRORS]),
+        item_count=pool.validation_count,
+    )
+    return result, writes
+
+
+def _compare_validation(
+    pool: PoolState, batch: ValidationItems, existing: np.ndarray
+) -> tuple[int, list[ItemProblem]]:
+    """Count identical re-sent validation items; list the conflicting ones."""
+    positions = np.flatnonzero(existing >= 0)
+    rows = existing[positions]
+    same_features = np.all(pool.validation_features.view[rows] == batch.features[positions], axis=1)
+    stored = pool.validation_outputs.view[rows]
+    sent = batch.outputs[positions]
+    same_outputs = np.all(stored == sent, axis=1) if stored.ndim == 2 else stored == sent
+    label_field = "class_labels" if pool.settings.is_classification else "values"
+    checks: list[tuple[str, np.ndarray]] = [
+        ("features", same_features),
+        ("model_outputs", same_outputs),
+        (label_field, pool.validation_labels.view[rows] == batch.labels[positions]),
+    ]
+    if batch.segments is not None:
+        same = [
+            pool.validation_segments[r] == batch.segments[p]
+            for r, p in zip(rows, positions, strict=True)
+        ]
+        checks.append(("segments", np.array(same, dtype=bool)))
+    conflict_field = np.full(positions.shape, "", dtype=object)
+    for name, same_values in reversed(checks):
+        conflict_field[~same_values] = name
+    problems = [
+        ItemProblem(
+            item_id=batch.item_ids[p],
+            reason=(
+                f"item_ids[{p}] = {batch.item_ids[p]!r}: already among the pool's validation "
+                f"items with a different {name}; an item id may not change content (use a "
+                "new id)."
             ),
             field=name,
             kind="InvalidArgument",

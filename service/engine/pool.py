@@ -221,13 +221,25 @@ class PoolState:
         self.segment_codes: dict[str, int] = {}
         self.draws = DrawLog()
         self.assignments: dict[str, int] = {}
+        # Validation items: labeled rows from outside the pool that only the surrogate
+        # sees (never drawn, never in an estimate, a scope or the item count).
+        self.validation_ids: list[str] = []
+        self.validation_index: dict[str, int] = {}
+        self.validation_features = Column(np.float32, (d,))
+        self.validation_outputs = Column(np.float32, width)
+        self.validation_labels = Column(np.float64)
+        self.validation_segments: list[str] = []
+        # Notified (under ``lock``) whenever a refit ends: a draw waiting for the surrogate
+        # to cover newly added validation items waits on it.
+        self.refit_done = threading.Condition(self.lock)
         # Bumped on every change that can move an estimate; keys the query cache.
         self.state_version = 0
         self.cache: dict[Any, Any] = {}
         self.requests: OrderedDict[tuple[str, str, str], Any] = OrderedDict()
         self.refitting = False
-        # Label count at the last failed refit (-1: none failed).
+        # Label and validation-item counts at the last failed refit (-1: none failed).
         self.failed_fit_labels = -1
+        self.failed_fit_validation = -1
         # The store lane of this pool's writes (see Database.submit) and the number of
         # reloads after a failed write: a write remembers the epoch it was queued in.
         self.lane = object()
@@ -240,11 +252,13 @@ class PoolState:
     _KEPT_ON_RELOAD = frozenset(
         {
             "lock",
+            "refit_done",
             "lane",
             "epoch",
             "state_version",
             "refitting",
             "failed_fit_labels",
+            "failed_fit_validation",
             "last_fit_time",
         }
     )
@@ -273,6 +287,16 @@ class PoolState:
     @property
     def surrogate_version(self) -> int:
         return int(self.surrogate.version)
+
+    @property
+    def validation_count(self) -> int:
+        return len(self.validation_ids)
+
+    def validation_refit_pending(self) -> bool:
+        """Validation items arrived that the current surrogate was not fitted on, and no
+        refit failed on exactly these (a failed one is retried only after more arrive)."""
+        count = self.validation_count
+        return count > self.surrogate.validation_count and count != self.failed_fit_validation
 
     def touch(self) -> None:
         self.state_version += 1

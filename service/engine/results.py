@@ -22,6 +22,7 @@ __all__ = [
     "LabelInput",
     "OutcomeResult",
     "PoolInfo",
+    "ValidationItems",
     "decode_assignments",
     "decode_ingest",
     "decode_outcome",
@@ -40,6 +41,17 @@ class ItemBatch:
     payload_refs: list[str] | None = None
     segments: list[str] | None = None
     event_time_ms: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class ValidationItems:
+    """A validated AddValidationItems batch: n labeled rows from outside the pool."""
+
+    item_ids: list[str]
+    features: np.ndarray  # (n, d) float32
+    outputs: np.ndarray  # (n, K) or (n,) float32
+    labels: np.ndarray  # (n,) float64: class indices (classification) or targets
+    segments: list[str] | None = None
 
 
 @dataclass(frozen=True)
@@ -101,6 +113,10 @@ class PoolInfo:
     pending_count: int
     skipped_count: int
     segments: tuple[str, ...] = field(default=())
+    validation_count: int = 0
+    # What the current surrogate was fitted on.
+    surrogate_label_count: int = 0
+    surrogate_validation_count: int = 0
 
 
 @dataclass(frozen=True)

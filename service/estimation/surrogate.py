@@ -135,6 +135,7 @@ class SurrogateSettings:
     #: With validation rows, the temperature is fitted on the pool labels from this many
     #: on, on the validation rows before.
     temperature_min_pool_labels: int = 30
+    weighted_temperature: bool = False
 
     def __post_init__(self) -> None:
         for name in (
@@ -428,7 +429,9 @@ def _log_init(outputs: np.ndarray, temperature: float = 1.0) -> np.ndarray:
     return logits - np.log(np.exp(logits).sum(axis=1, keepdims=True))
 
 
-def _fit_temperature(outputs: np.ndarray, labels: np.ndarray) -> float:
+def _fit_temperature(
+    outputs: np.ndarray, labels: np.ndarray, weight: np.ndarray | None = None
+) -> float:
     """One temperature T for softmax(log p / T), by penalised likelihood on a grid.
 
     Temperature scaling ("On Calibration of Modern Neural Networks", ICML 2017) needs one
@@ -444,7 +447,8 @@ def _fit_temperature(outputs: np.ndarray, labels: np.ndarray) -> float:
         scaled = logs / temperature
         scaled = scaled - scaled.max(axis=1, keepdims=True)
         log_norm = np.log(np.exp(scaled).sum(axis=1))
-        nll = float(np.sum(log_norm - scaled[rows, labels]))
+        terms = log_norm - scaled[rows, labels]
+        nll = float(np.sum(terms if weight is None else weight * terms))
         value = nll + np.log(temperature) ** 2 / (2 * 0.5**2)
         if value < best_value:
             best, best_value = float(temperature), value
@@ -685,15 +689,19 @@ def _fit_with_validation(
             validation_used=used,
         )
     temperature = 1.0
+    per_row = min(1.0, settings.validation_weight / used)
+    weight = np.concatenate([np.ones(n), np.full(used, per_row)])
     if spec.is_classification:
         # The model's calibration on the pool is what matters; the validation rows stand
         # in for it until the pool labels can say.
-        if n >= settings.temperature_min_pool_labels:
+        if settings.weighted_temperature:
+            temperature = _fit_temperature(
+                np.concatenate([out, v_out]), np.concatenate([y, v_y]), weight
+            )
+        elif n >= settings.temperature_min_pool_labels:
             temperature = _fit_temperature(out, y)
         else:
             temperature = _fit_temperature(v_out, v_y)
-    per_row = min(1.0, settings.validation_weight / used)
-    weight = np.concatenate([np.ones(n), np.full(used, per_row)])
     boosters, variance_boosters, seen = _fit_members(
         spec,
         np.vstack([x, v_x]),

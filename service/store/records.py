@@ -21,6 +21,7 @@ __all__ = [
     "ItemChunk",
     "PoolRow",
     "RememberedRequest",
+    "ValidationChunk",
     "delete_pool",
     "find_request",
     "find_server_request",
@@ -31,6 +32,7 @@ __all__ = [
     "insert_request",
     "insert_server_request",
     "insert_segments",
+    "insert_validation_items",
     "load_draws",
     "load_items",
     "load_latest_model",
@@ -39,6 +41,7 @@ __all__ = [
     "load_segments",
     "prune_requests",
     "rename_holders",
+    "load_validation_items",
     "update_draws",
 ]
 
@@ -105,6 +108,19 @@ class ItemChunk:
     ingest_time_ms: np.ndarray  # int64
 
 
+@dataclass(frozen=True)
+class ValidationChunk:
+    """Validation rows ``start .. start + len(item_ids)`` of one pool, as stored."""
+
+    start: int
+    item_ids: list[str]
+    features: np.ndarray  # (n, d) float32
+    outputs: np.ndarray  # (n, K) or (n,) float32
+    labels: np.ndarray  # (n,) float64: class index or target value
+    segments: list[str]
+    ingest_time_ms: np.ndarray  # int64
+
+
 def insert_pool(row: PoolRow) -> Write:
     def write(connection: sqlite3.Connection) -> None:
         connection.execute(
@@ -117,7 +133,8 @@ def insert_pool(row: PoolRow) -> Write:
 
 def delete_pool(pool_id: str) -> Write:
     def write(connection: sqlite3.Connection) -> None:
-        for table in ("items", "draws", "segments", "models", "requests", "pools"):
+        tables = ("items", "validation_items", "draws", "segments", "models", "requests", "pools")
+        for table in tables:
             connection.execute(f"DELETE FROM {table} WHERE pool_id = ?", (pool_id,))
 
     return write
@@ -157,6 +174,34 @@ def insert_items(pool_id: str, chunk: ItemChunk) -> Write:
         connection.executemany(
             "INSERT INTO items (pool_id, row, item_id, features, outputs, payload_ref, segment,"
             " event_time_ms, ingest_time_ms) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            rows,
+        )
+
+    return write
+
+
+def insert_validation_items(pool_id: str, chunk: ValidationChunk) -> Write:
+    n = len(chunk.item_ids)
+    feature_rows = np.ascontiguousarray(chunk.features, dtype=np.float32).reshape(n, -1)
+    output_rows = np.ascontiguousarray(chunk.outputs, dtype=np.float32).reshape(n, -1)
+    rows = [
+        (
+            pool_id,
+            chunk.start + i,
+            chunk.item_ids[i],
+            feature_rows[i].tobytes(),
+            output_rows[i].tobytes(),
+            float(chunk.labels[i]),
+            chunk.segments[i],
+            int(chunk.ingest_time_ms[i]),
+        )
+        for i in range(n)
+    ]
+
+    def write(connection: sqlite3.Connection) -> None:
+        connection.executemany(
+            "INSERT INTO validation_items (pool_id, row, item_id, features, outputs, label,"
+            " segment, ingest_time_ms) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
             rows,
         )
 
@@ -403,6 +448,45 @@ def load_items(
             segments=np.fromiter((r[5] for r in rows), dtype=np.int32, count=n),
             event_time_ms=np.fromiter((r[6] for r in rows), dtype=np.int64, count=n),
             ingest_time_ms=np.fromiter((r[7] for r in rows), dtype=np.int64, count=n),
+        )
+        expected += n
+
+
+def load_validation_items(
+    connection: sqlite3.Connection,
+    pool_id: str,
+    *,
+    feature_dim: int,
+    output_width: int,
+    chunk_rows: int = 100_000,
+) -> Iterator[ValidationChunk]:
+    """All validation items of the pool in row order, ``chunk_rows`` at a time."""
+    cursor = connection.execute(
+        "SELECT row, item_id, features, outputs, label, segment, ingest_time_ms"
+        " FROM validation_items WHERE pool_id = ? ORDER BY row",
+        (pool_id,),
+    )
+    expected = 0
+    while True:
+        rows = cursor.fetchmany(chunk_rows)
+        if not rows:
+            return
+        n = len(rows)
+        rows_seen = np.fromiter((r[0] for r in rows), dtype=np.int64, count=n)
+        if not np.array_equal(rows_seen, np.arange(expected, expected + n)):
+            raise RuntimeError(
+                f"pool {pool_id!r}: validation rows are not contiguous near {expected}"
+            )
+        features = np.frombuffer(b"".join(r[2] for r in rows), dtype=np.float32)
+        outputs = np.frombuffer(b"".join(r[3] for r in rows), dtype=np.float32)
+        yield ValidationChunk(
+            start=expected,
+            item_ids=[r[1] for r in rows],
+            features=features.reshape(n, feature_dim),
+            outputs=outputs.reshape(n, output_width) if output_width > 1 else outputs,
+            labels=np.fromiter((r[4] for r in rows), dtype=np.float64, count=n),
+            segments=[r[5] for r in rows],
+            ingest_time_ms=np.fromiter((r[6] for r in rows), dtype=np.int64, count=n),
         )
         expected += n
 

@@ -1,8 +1,8 @@
 """SQLite schema of the data directory and its migrations.
 
-The database holds one row per pool, item, draw, surrogate version and remembered request
-(per pool, and at server level for creating and deleting pools; each with the holder of
-the token that sent it, a digest of the request and its time).
+The database holds one row per pool, item, validation item, draw, surrogate version and
+remembered request (per pool, and at server level for creating and deleting pools; each
+with the holder of the token that sent it, a digest of the request and its time).
 ``schema_version`` records the last migration applied; :func:`migrate` applies the missing
 ones in order inside one transaction, so a data dir written by an older server opens in a
 newer one, and a newer data dir is refused by an older server.
@@ -137,6 +137,21 @@ _MIGRATIONS: tuple[tuple[str, ...], ...] = (
         "ALTER TABLE server_requests_v3 RENAME TO server_requests",
         "CREATE INDEX server_requests_by_time ON server_requests (time_ms)",
         "CREATE TABLE write_probe (data BLOB NOT NULL)",
+    ),
+    # 4: validation items (AddValidationItems): labeled rows from outside the pool that
+    # teach the surrogate; never drawn, never counted among the pool's items.
+    (
+        """CREATE TABLE validation_items (
+            pool_id TEXT NOT NULL,
+            row INTEGER NOT NULL,
+            item_id TEXT NOT NULL,
+            features BLOB NOT NULL,
+            outputs BLOB NOT NULL,
+            label REAL NOT NULL,
+            segment TEXT NOT NULL,
+            ingest_time_ms INTEGER NOT NULL,
+            PRIMARY KEY (pool_id, row)
+        )""",
     ),
 )
 

@@ -17,7 +17,7 @@ _FILE = leadline_pb2.DESCRIPTOR
 # service -> methods (shared/API.md)
 _SERVICES = {
     "PoolService": ["CreatePool", "GetPool", "ListPools", "DeletePool"],
-    "IngestService": ["IngestItems"],
+    "IngestService": ["IngestItems", "AddValidationItems"],
     "LabelingService": ["AcquireItems", "SubmitLabels", "ReleaseItems"],
     "EstimateService": ["GetEstimate", "CheckGate"],
 }
@@ -35,6 +35,7 @@ _MESSAGES = {
         "default_mode",
         "item_count",
         "labeled_count",
+        "validation_count",
     ],
     "CreatePoolRequest": ["pool_id", "pool"],
     "GetPoolRequest": ["name"],
@@ -53,6 +54,17 @@ _MESSAGES = {
         "event_time_ms",
     ],
     "IngestSummary": ["accepted", "duplicates", "rejected", "errors"],
+    # Validation items (shared/API.md, second wave).
+    "ValidationBatch": [
+        "pool",
+        "item_ids",
+        "features",
+        "model_outputs",
+        "class_labels",
+        "values",
+        "segments",
+        "request_id",
+    ],
     "ItemError": ["item_id", "reason"],
     "AcquireItemsRequest": ["pool", "count", "labeler", "lease_seconds", "request_id"],
     "Assignment": [
@@ -168,9 +180,34 @@ def test_rpc_types_match_the_agreement() -> None:
     assert pools["GetPool"].input_type.name == "GetPoolRequest"
     ingest = _FILE.services_by_name["IngestService"].methods_by_name["IngestItems"]
     assert (ingest.input_type.name, ingest.output_type.name) == ("ItemBatch", "IngestSummary")
+    validation = _FILE.services_by_name["IngestService"].methods_by_name["AddValidationItems"]
+    assert (validation.input_type.name, validation.output_type.name) == (
+        "ValidationBatch",
+        "IngestSummary",
+    )
     estimates = _FILE.services_by_name["EstimateService"].methods_by_name
     assert estimates["GetEstimate"].output_type.name == "Estimate"
     assert estimates["CheckGate"].output_type.name == "GateResult"
+
+
+def test_validation_batch_field_numbers_and_types_match_the_agreement() -> None:
+    # shared/API.md, "Validation items": exact numbers and types.
+    fields = _FILE.message_types_by_name["ValidationBatch"].fields_by_name
+    expected = {
+        "pool": (1, descriptor.FieldDescriptor.TYPE_STRING, False),
+        "item_ids": (2, descriptor.FieldDescriptor.TYPE_STRING, True),
+        "features": (3, descriptor.FieldDescriptor.TYPE_FLOAT, True),
+        "model_outputs": (4, descriptor.FieldDescriptor.TYPE_FLOAT, True),
+        "class_labels": (5, descriptor.FieldDescriptor.TYPE_INT32, True),
+        "values": (6, descriptor.FieldDescriptor.TYPE_DOUBLE, True),
+        "segments": (7, descriptor.FieldDescriptor.TYPE_STRING, True),
+        "request_id": (8, descriptor.FieldDescriptor.TYPE_STRING, False),
+    }
+    for name, (number, kind, repeated) in expected.items():
+        field = fields[name]
+        assert (field.number, field.type, field.is_repeated) == (number, kind, repeated), name
+    count = _FILE.message_types_by_name["Pool"].fields_by_name["validation_count"]
+    assert count.type == descriptor.FieldDescriptor.TYPE_INT64
 
 
 def _upper_snake(name: str) -> str:

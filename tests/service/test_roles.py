@@ -25,6 +25,7 @@ _CALLS = {
     "ListPools": ("pools", lambda: pb.ListPoolsRequest()),
     "DeletePool": ("pools", lambda: pb.DeletePoolRequest(name="pools/absent")),
     "IngestItems": ("ingest", lambda: pb.ItemBatch(pool=_POOL)),
+    "AddValidationItems": ("ingest", lambda: pb.ValidationBatch(pool=_POOL)),
     "AcquireItems": (
         "labeling",
         lambda: pb.AcquireItemsRequest(pool=_POOL, count=1, labeler="vendor-a"),
@@ -37,8 +38,9 @@ _CALLS = {
     "GetEstimateTrace": ("estimates", lambda: pb.GetEstimateTraceRequest(pool=_POOL)),
 }
 _ALLOWED = {
-    "admin": {"CreatePool", "DeletePool", "GetPool", "ListPools"},
-    "ingest": {"IngestItems", "GetPool", "ListPools"},
+    # AddValidationItems: ingest or admin (shared/API.md, "Validation items").
+    "admin": {"CreatePool", "DeletePool", "AddValidationItems", "GetPool", "ListPools"},
+    "ingest": {"IngestItems", "AddValidationItems", "GetPool", "ListPools"},
     "labeler": {"AcquireItems", "SubmitLabels", "ReleaseItems", "GetPool", "ListPools"},
     "reader": {
         "GetEstimate",

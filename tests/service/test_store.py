@@ -123,6 +123,42 @@ def test_version_one_data_dir_is_upgraded_and_keeps_its_request_ids(tmp_path: Pa
         rows = connection.execute(
             "SELECT pool_id, method, holder, request_id, digest, response FROM requests"
         ).fetchall()
-    assert version == SCHEMA_VERSION == 3
+    assert version == SCHEMA_VERSION
     assert columns == ["method", "holder", "request_id", "digest", "pool_id", "response", "time_ms"]
     assert rows == [("p", "ingest", "", "id-1", "", b"{}")]
+
+
+def test_version_three_data_dir_gains_the_validation_items_table_and_keeps_its_rows(
+    tmp_path: Path,
+) -> None:
+    """A data dir written before validation items (schema 3) opens with its rows intact."""
+    from leadline.service.store.schema import _MIGRATIONS
+
+    with contextlib.closing(sqlite3.connect(tmp_path / DATABASE_FILE)) as connection:
+        connection.execute("PRAGMA journal_mode=WAL")
+        for migration in _MIGRATIONS[:3]:
+            for statement in migration:
+                connection.execute(statement)
+        connection.execute("CREATE TABLE schema_version (version INTEGER NOT NULL)")
+        connection.execute("INSERT INTO schema_version VALUES (3)")
+        connection.execute(
+            "INSERT INTO pools (pool_id, settings, seed, create_time_ms) VALUES ('p', '{}', 1, 2)"
+        )
+        connection.commit()
+    Database(tmp_path).close()
+    with contextlib.closing(sqlite3.connect(tmp_path / DATABASE_FILE)) as connection:
+        (version,) = connection.execute("SELECT version FROM schema_version").fetchone()
+        columns = [row[1] for row in connection.execute("PRAGMA table_info(validation_items)")]
+        pools = connection.execute("SELECT pool_id FROM pools").fetchall()
+    assert version == SCHEMA_VERSION == 4
+    assert columns == [
+        "pool_id",
+        "row",
+        "item_id",
+        "features",
+        "outputs",
+        "label",
+        "segment",
+        "ingest_time_ms",
+    ]
+    assert pools == [("p",)]

@@ -78,7 +78,7 @@ DRAW_STATUS_SKIPPED: DrawStatus
 DRAW_STATUS_WAITING: DrawStatus
 
 class Pool(_message.Message):
-    __slots__ = ("name", "task", "num_classes", "feature_dim", "loss", "cost_matrix", "loss_cap", "default_mode", "item_count", "labeled_count", "create_time_ms", "description", "selection_floor", "default_lease_seconds", "default_confidence", "refit_every_labels", "surrogate_version", "draw_count", "pending_count", "skipped_count", "segments")
+    __slots__ = ("name", "task", "num_classes", "feature_dim", "loss", "cost_matrix", "loss_cap", "default_mode", "item_count", "labeled_count", "create_time_ms", "description", "selection_floor", "default_lease_seconds", "default_confidence", "refit_every_labels", "surrogate_version", "draw_count", "pending_count", "skipped_count", "segments", "validation_count", "surrogate_label_count", "surrogate_validation_count")
     NAME_FIELD_NUMBER: _ClassVar[int]
     TASK_FIELD_NUMBER: _ClassVar[int]
     NUM_CLASSES_FIELD_NUMBER: _ClassVar[int]
@@ -100,6 +100,9 @@ class Pool(_message.Message):
     PENDING_COUNT_FIELD_NUMBER: _ClassVar[int]
     SKIPPED_COUNT_FIELD_NUMBER: _ClassVar[int]
     SEGMENTS_FIELD_NUMBER: _ClassVar[int]
+    VALIDATION_COUNT_FIELD_NUMBER: _ClassVar[int]
+    SURROGATE_LABEL_COUNT_FIELD_NUMBER: _ClassVar[int]
+    SURROGATE_VALIDATION_COUNT_FIELD_NUMBER: _ClassVar[int]
     name: str
     task: TaskType
     num_classes: int
@@ -121,7 +124,10 @@ class Pool(_message.Message):
     pending_count: int
     skipped_count: int
     segments: _containers.RepeatedScalarFieldContainer[str]
-    def __init__(self, name: _Optional[str] = ..., task: _Optional[_Union[TaskType, str]] = ..., num_classes: _Optional[int] = ..., feature_dim: _Optional[int] = ..., loss: _Optional[_Union[LossKind, str]] = ..., cost_matrix: _Optional[_Iterable[float]] = ..., loss_cap: _Optional[float] = ..., default_mode: _Optional[_Union[EstimatorMode, str]] = ..., item_count: _Optional[int] = ..., labeled_count: _Optional[int] = ..., create_time_ms: _Optional[int] = ..., description: _Optional[str] = ..., selection_floor: _Optional[float] = ..., default_lease_seconds: _Optional[int] = ..., default_confidence: _Optional[float] = ..., refit_every_labels: _Optional[int] = ..., surrogate_version: _Optional[int] = ..., draw_count: _Optional[int] = ..., pending_count: _Optional[int] = ..., skipped_count: _Optional[int] = ..., segments: _Optional[_Iterable[str]] = ...) -> None: ...
+    validation_count: int
+    surrogate_label_count: int
+    surrogate_validation_count: int
+    def __init__(self, name: _Optional[str] = ..., task: _Optional[_Union[TaskType, str]] = ..., num_classes: _Optional[int] = ..., feature_dim: _Optional[int] = ..., loss: _Optional[_Union[LossKind, str]] = ..., cost_matrix: _Optional[_Iterable[float]] = ..., loss_cap: _Optional[float] = ..., default_mode: _Optional[_Union[EstimatorMode, str]] = ..., item_count: _Optional[int] = ..., labeled_count: _Optional[int] = ..., create_time_ms: _Optional[int] = ..., description: _Optional[str] = ..., selection_floor: _Optional[float] = ..., default_lease_seconds: _Optional[int] = ..., default_confidence: _Optional[float] = ..., refit_every_labels: _Optional[int] = ..., surrogate_version: _Optional[int] = ..., draw_count: _Optional[int] = ..., pending_count: _Optional[int] = ..., skipped_count: _Optional[int] = ..., segments: _Optional[_Iterable[str]] = ..., validation_count: _Optional[int] = ..., surrogate_label_count: _Optional[int] = ..., surrogate_validation_count: _Optional[int] = ...) -> None: ...
 
 class CreatePoolRequest(_message.Message):
     __slots__ = ("pool_id", "pool", "request_id")
@@ -186,6 +192,26 @@ class ItemBatch(_message.Message):
     event_time_ms: _containers.RepeatedScalarFieldContainer[int]
     request_id: str
     def __init__(self, pool: _Optional[str] = ..., item_ids: _Optional[_Iterable[str]] = ..., features: _Optional[_Iterable[float]] = ..., model_outputs: _Optional[_Iterable[float]] = ..., payload_refs: _Optional[_Iterable[str]] = ..., segments: _Optional[_Iterable[str]] = ..., event_time_ms: _Optional[_Iterable[int]] = ..., request_id: _Optional[str] = ...) -> None: ...
+
+class ValidationBatch(_message.Message):
+    __slots__ = ("pool", "item_ids", "features", "model_outputs", "class_labels", "values", "segments", "request_id")
+    POOL_FIELD_NUMBER: _ClassVar[int]
+    ITEM_IDS_FIELD_NUMBER: _ClassVar[int]
+    FEATURES_FIELD_NUMBER: _ClassVar[int]
+    MODEL_OUTPUTS_FIELD_NUMBER: _ClassVar[int]
+    CLASS_LABELS_FIELD_NUMBER: _ClassVar[int]
+    VALUES_FIELD_NUMBER: _ClassVar[int]
+    SEGMENTS_FIELD_NUMBER: _ClassVar[int]
+    REQUEST_ID_FIELD_NUMBER: _ClassVar[int]
+    pool: str
+    item_ids: _containers.RepeatedScalarFieldContainer[str]
+    features: _containers.RepeatedScalarFieldContainer[float]
+    model_outputs: _containers.RepeatedScalarFieldContainer[float]
+    class_labels: _containers.RepeatedScalarFieldContainer[int]
+    values: _containers.RepeatedScalarFieldContainer[float]
+    segments: _containers.RepeatedScalarFieldContainer[str]
+    request_id: str
+    def __init__(self, pool: _Optional[str] = ..., item_ids: _Optional[_Iterable[str]] = ..., features: _Optional[_Iterable[float]] = ..., model_outputs: _Optional[_Iterable[float]] = ..., class_labels: _Optional[_Iterable[int]] = ..., values: _Optional[_Iterable[float]] = ..., segments: _Optional[_Iterable[str]] = ..., request_id: _Optional[str] = ...) -> None: ...
 
 class ItemError(_message.Message):
     __slots__ = ("item_id", "reason", "field")

@@ -245,7 +245,7 @@ class PoolService:
 
 class IngestServiceStub:
     """---------------------------------------------------------------------------------------
-    Ingest (role: ingest)
+    Ingest (role: ingest; AddValidationItems: ingest or admin)
     ---------------------------------------------------------------------------------------
 
     """
@@ -261,11 +261,16 @@ class IngestServiceStub:
                 request_serializer=leadline_dot_v1_dot_leadline__pb2.ItemBatch.SerializeToString,
                 response_deserializer=leadline_dot_v1_dot_leadline__pb2.IngestSummary.FromString,
                 _registered_method=True)
+        self.AddValidationItems = channel.unary_unary(
+                '/leadline.v1.IngestService/AddValidationItems',
+                request_serializer=leadline_dot_v1_dot_leadline__pb2.ValidationBatch.SerializeToString,
+                response_deserializer=leadline_dot_v1_dot_leadline__pb2.IngestSummary.FromString,
+                _registered_method=True)
 
 
 class IngestServiceServicer:
     """---------------------------------------------------------------------------------------
-    Ingest (role: ingest)
+    Ingest (role: ingest; AddValidationItems: ingest or admin)
     ---------------------------------------------------------------------------------------
 
     """
@@ -281,12 +286,31 @@ class IngestServiceServicer:
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
+    def AddValidationItems(self, request, context):
+        """Adds validation items: labeled rows from outside the pool (the team's validation
+        split, or out-of-fold outputs on its training data) that teach the surrogate before
+        the first pool label. They are never drawn and never enter an estimate or a count of
+        pool items; a surrogate refit starts right after a batch adds any. Same rules as
+        IngestItems: validated whole (INVALID_ARGUMENT, nothing kept), identical re-sent ids
+        are duplicates, an id re-sent with different content is rejected per item, durable
+        once counted as accepted. The summary's item_count is the pool's validation_count
+        after the batch. Roles: ingest or admin.
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
 
 def add_IngestServiceServicer_to_server(servicer, server):
     rpc_method_handlers = {
             'IngestItems': grpc.unary_unary_rpc_method_handler(
                     servicer.IngestItems,
                     request_deserializer=leadline_dot_v1_dot_leadline__pb2.ItemBatch.FromString,
+                    response_serializer=leadline_dot_v1_dot_leadline__pb2.IngestSummary.SerializeToString,
+            ),
+            'AddValidationItems': grpc.unary_unary_rpc_method_handler(
+                    servicer.AddValidationItems,
+                    request_deserializer=leadline_dot_v1_dot_leadline__pb2.ValidationBatch.FromString,
                     response_serializer=leadline_dot_v1_dot_leadline__pb2.IngestSummary.SerializeToString,
             ),
     }
@@ -299,7 +323,7 @@ def add_IngestServiceServicer_to_server(servicer, server):
  # This class is part of an EXPERIMENTAL API.
 class IngestService:
     """---------------------------------------------------------------------------------------
-    Ingest (role: ingest)
+    Ingest (role: ingest; AddValidationItems: ingest or admin)
     ---------------------------------------------------------------------------------------
 
     """
@@ -320,6 +344,33 @@ class IngestService:
             target,
             '/leadline.v1.IngestService/IngestItems',
             leadline_dot_v1_dot_leadline__pb2.ItemBatch.SerializeToString,
+            leadline_dot_v1_dot_leadline__pb2.IngestSummary.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def AddValidationItems(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/leadline.v1.IngestService/AddValidationItems',
+            leadline_dot_v1_dot_leadline__pb2.ValidationBatch.SerializeToString,
             leadline_dot_v1_dot_leadline__pb2.IngestSummary.FromString,
             options,
             channel_credentials,

@@ -1,0 +1,308 @@
+"""How the surrogate should weigh validation rows against pool labels (exact one-draw cost).
+
+Each benchmark scenario is rebuilt with its training part, and the main model's
+out-of-fold outputs on it (``sklearn.model_selection.cross_val_predict``, 5 folds) become
+the scenario's validation rows: rows from outside the pool, as a team would upload them.
+For pool-label sets drawn uniformly (several sizes and seeds) each arm fits the core's
+surrogate and the table gives the exact one-draw variance of the importance-weighted
+difference term under the core's hedged usefulness, relative to one uniform draw (the
+formula of ``exact_variance.py``; "Monte Carlo theory, methods and examples", 2013, §9.1).
+Below 1 beats i.i.d. sampling. A second table gives the plug-in's squared bias,
+(mean g - R)^2, relative to i.i.d. sampling's variance at 100 labels (var(L) / 100): how
+much room BALANCED has.
+
+Arms (``SurrogateSettings`` fields): pool labels only (today's fit), validation rows with
+every row weighing as much as a pool label, with a fixed total validation weight W, with a
+"from the pool" indicator column, and combinations.
+
+    .venv/bin/python benchmarks/experiments/validation_rows.py
+    .venv/bin/python benchmarks/experiments/validation_rows.py --scenarios digits_weak_tree
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import math
+import sys
+import time
+from collections.abc import Sequence
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+_ROOT = Path(__file__).resolve().parents[2]
+if str(_ROOT) not in sys.path:
+    sys.path.insert(0, str(_ROOT))
+
+import numpy as np  # noqa: E402
+from sklearn.base import clone  # noqa: E402
+from sklearn.datasets import (  # noqa: E402
+    load_breast_cancer,
+    load_digits,
+    make_classification,
+    make_friedman1,
+)
+from sklearn.ensemble import HistGradientBoostingClassifier  # noqa: E402
+from sklearn.linear_model import LogisticRegression, Ridge  # noqa: E402
+from sklearn.model_selection import cross_val_predict, train_test_split  # noqa: E402
+from sklearn.pipeline import make_pipeline  # noqa: E402
+from sklearn.preprocessing import StandardScaler  # noqa: E402
+from sklearn.tree import DecisionTreeClassifier  # noqa: E402
+
+from benchmarks.experiments.exact_variance import one_draw_cost  # noqa: E402
+from benchmarks.labels import surrogate_settings  # noqa: E402
+from benchmarks.scenarios import SCENARIO_NAMES, Scenario, build_scenario  # noqa: E402
+from leadline.service.estimation import (  # noqa: E402
+    DEFAULT_FLOOR,
+    SurrogateSettings,
+    ValidationRows,
+    cold_start_surrogate,
+    fit_surrogate,
+    usefulness,
+)
+
+_OUT = Path(__file__).resolve().parent / "VALIDATION_ROWS.md"
+
+
+@dataclass(frozen=True)
+class TrainingPart:
+    """A scenario's training rows, the unfitted main model, and the pool it produced."""
+
+    features: np.ndarray
+    labels: np.ndarray
+    model: object
+    pool_features: np.ndarray  # to check the rebuild against benchmarks/scenarios.py
+    classification: bool
+
+
+def training_part(name: str) -> TrainingPart:
+    """Rebuild scenario ``name``'s split (same data, seeds and models as
+    ``benchmarks/scenarios.py``, full pool sizes)."""
+    if name in ("digits_logistic", "digits_weak_tree"):
+        data = load_digits()
+        seed = 11 if name == "digits_logistic" else 12
+        x_train, x_pool, y_train, _ = train_test_split(
+            data.data, data.target, train_size=600, random_state=seed, stratify=data.target
+        )
+        model: object = (
+            make_pipeline(StandardScaler(), LogisticRegression(C=0.05, max_iter=3000))
+            if name == "digits_logistic"
+            else DecisionTreeClassifier(max_depth=4, random_state=0)
+        )
+        return TrainingPart(x_train, y_train, model, x_pool, True)
+    if name == "breast_cancer":
+        data = load_breast_cancer()
+        x_train, x_pool, y_train, _ = train_test_split(
+            data.data, data.target, train_size=170, random_state=13, stratify=data.target
+        )
+        model = make_pipeline(StandardScaler(), LogisticRegression(C=0.5, max_iter=3000))
+        return TrainingPart(x_train, y_train, model, x_pool, True)
+    if name == "shifted_synthetic":
+        pool_size, train_size = 50_000, 8_000
+        total = 2 * (pool_size + train_size)
+        x, y = make_classification(
+            n_samples=total,
+            n_features=20,
+            n_informative=8,
+            n_redundant=4,
+            n_clusters_per_class=2,
+            flip_y=0.03,
+            class_sep=1.5,
+            random_state=14,
+        )
+        rng = np.random.default_rng(14)
+        direction = x[:, 0] + x[:, 1]
+        train_weight = 1.0 / (1.0 + np.exp(1.5 * direction))
+        train_idx = rng.choice(
+            total, size=train_size, replace=False, p=train_weight / train_weight.sum()
+        )
+        rest = np.setdiff1d(np.arange(total), train_idx)
+        pool_weight = 1.0 - train_weight[rest]
+        pool_idx = rng.choice(
+            rest, size=pool_size, replace=False, p=pool_weight / pool_weight.sum()
+        )
+        model = HistGradientBoostingClassifier(max_iter=300, early_stopping=False, random_state=0)
+        return TrainingPart(x[train_idx], y[train_idx], model, x[pool_idx], True)
+    if name == "friedman_regression":
+        pool_size = 9_000
+        x, y = make_friedman1(
+            n_samples=3_000 + pool_size, n_features=10, noise=1.0, random_state=15
+        )
+        x_train, x_pool, y_train, _ = train_test_split(x, y, train_size=3_000, random_state=15)
+        return TrainingPart(x_train, y_train, Ridge(alpha=1.0), x_pool, False)
+    if name == "cost_matrix_triage":
+        pool_size = 10_000
+        x, y = make_classification(
+            n_samples=3_000 + pool_size,
+            n_features=12,
+            n_informative=6,
+            n_redundant=2,
+            n_classes=3,
+            n_clusters_per_class=2,
+            weights=[0.5, 0.35, 0.15],
+            flip_y=0.02,
+            class_sep=1.2,
+            random_state=16,
+        )
+        x_train, x_pool, y_train, _ = train_test_split(
+            x, y, train_size=3_000, random_state=16, stratify=y
+        )
+        return TrainingPart(x_train, y_train, LogisticRegression(max_iter=3000), x_pool, True)
+    raise ValueError(f"scenario {name!r} is unknown, must be one of {', '.join(SCENARIO_NAMES)}.")
+
+
+def validation_rows(name: str, scenario: Scenario) -> ValidationRows:
+    """The scenario's training rows with the main model's out-of-fold outputs (5 folds)."""
+    part = training_part(name)
+    if not np.array_equal(np.asarray(part.pool_features, dtype=float), scenario.features):
+        raise RuntimeError(f"{name}: the rebuilt split differs from benchmarks/scenarios.py.")
+    method = "predict_proba" if part.classification else "predict"
+    outputs = cross_val_predict(clone(part.model), part.features, part.labels, cv=5, method=method)
+    if part.classification:
+        outputs = outputs / outputs.sum(axis=1, keepdims=True)
+        labels = part.labels.astype(np.int64)
+    else:
+        labels = part.labels.astype(float)
+    return ValidationRows(features=part.features, outputs=outputs, labels=labels)
+
+
+def arms(base: SurrogateSettings) -> dict[str, SurrogateSettings | None]:
+    """Arm name -> settings (None: pool labels only, no validation rows)."""
+    return {
+        "pool_only": None,
+        "equal": replace(base, validation_weight=math.inf),
+        "weight_1000": replace(base, validation_weight=1000.0),
+        "weight_300": replace(base, validation_weight=300.0),
+        "weight_100": replace(base, validation_weight=100.0),
+        "indicator_equal": replace(base, validation_weight=math.inf, pool_indicator=True),
+        "indicator_300": replace(base, validation_weight=300.0, pool_indicator=True),
+        "weight_300_temp_val": replace(
+            base, validation_weight=300.0, temperature_min_pool_labels=10**9
+        ),
+        "equal_temp_val": replace(
+            base, validation_weight=math.inf, temperature_min_pool_labels=10**9
+        ),
+        "weight_1000_temp_val": replace(
+            base, validation_weight=1000.0, temperature_min_pool_labels=10**9
+        ),
+        "weight_3000": replace(base, validation_weight=3000.0),
+        "equal_temp_weighted": replace(base, validation_weight=math.inf, weighted_temperature=True),
+        "weight_1000_temp_weighted": replace(
+            base, validation_weight=1000.0, weighted_temperature=True
+        ),
+        "weight_300_temp_weighted": replace(
+            base, validation_weight=300.0, weighted_temperature=True
+        ),
+    }
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--scenarios", nargs="+", choices=SCENARIO_NAMES, default=None)
+    parser.add_argument("--arms", nargs="+", default=None)
+    parser.add_argument("--label-counts", nargs="+", type=int, default=[0, 30, 100, 300])
+    parser.add_argument("--seeds", type=int, default=3)
+    args = parser.parse_args(argv)
+    started = time.perf_counter()
+    all_arms = arms(surrogate_settings())
+    chosen = {k: v for k, v in all_arms.items() if args.arms is None or k in args.arms}
+    names = list(args.scenarios or SCENARIO_NAMES)
+    # cost[arm][m][scenario], bias[arm][m][scenario]: means over seeds
+    cost: dict[str, dict[int, dict[str, float]]] = {a: {} for a in chosen}
+    bias: dict[str, dict[int, dict[str, float]]] = {a: {} for a in chosen}
+    seconds: dict[str, list[float]] = {a: [] for a in chosen}
+    for name in names:
+        scenario = build_scenario(name, quick=False)
+        validation = validation_rows(name, scenario)
+        d = scenario.features.shape[1]
+        iid_variance_100 = float(scenario.losses.var()) / 100
+        for m in args.label_counts:
+            per_arm_cost: dict[str, list[float]] = {a: [] for a in chosen}
+            per_arm_bias: dict[str, list[float]] = {a: [] for a in chosen}
+            if m > scenario.pool_size // 2:
+                continue  # most of the pool labeled: nothing left worth measuring
+            for seed in range(args.seeds):
+                rng = np.random.default_rng([seed, m])
+                idx = rng.choice(scenario.pool_size, size=m, replace=False)
+                for arm, settings in chosen.items():
+                    if settings is None and m == 0:
+                        model = cold_start_surrogate(scenario.spec)
+                    else:
+                        fit_started = time.perf_counter()
+                        model = fit_surrogate(
+                            scenario.spec,
+                            scenario.features[idx].reshape(m, d),
+                            scenario.outputs[idx],
+                            scenario.labels[idx],
+                            version=1,
+                            seed=seed,
+                            settings=settings or surrogate_settings(),
+                            validation=None if settings is None else validation,
+                        )
+                        seconds[arm].append(time.perf_counter() - fit_started)
+                    scores = model.score(scenario.features, scenario.outputs)
+                    u = usefulness(scores, loss_bound=scenario.spec.bound)
+                    per_arm_cost[arm].append(
+                        one_draw_cost(scenario.losses, scores.expected_loss, u, DEFAULT_FLOOR)
+                    )
+                    plug_in = float(scores.expected_loss.mean())
+                    per_arm_bias[arm].append((plug_in - scenario.true_risk) ** 2 / iid_variance_100)
+            for arm in chosen:
+                if not per_arm_cost[arm]:
+                    continue
+                cost[arm].setdefault(m, {})[name] = float(np.mean(per_arm_cost[arm]))
+                bias[arm].setdefault(m, {})[name] = float(np.mean(per_arm_bias[arm]))
+        print(f"{name} done ({time.perf_counter() - started:.0f} s)", flush=True)
+    text = _tables(cost, bias, seconds, names, args, started, argv)
+    _OUT.write_text(text)
+    print(text)
+    return 0
+
+
+def _tables(
+    cost: dict[str, dict[int, dict[str, float]]],
+    bias: dict[str, dict[int, dict[str, float]]],
+    seconds: dict[str, list[float]],
+    names: list[str],
+    args: argparse.Namespace,
+    started: float,
+    argv: Sequence[str] | None,
+) -> str:
+    def table(values: dict[str, dict[int, dict[str, float]]]) -> list[str]:
+        header = ["arm", "pool labels"] + names + ["median", "worst"]
+        lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+        for m in args.label_counts:
+            for arm, per_m in values.items():
+                if m not in per_m:
+                    continue
+                per = per_m[m]
+                row = [arm, str(m)] + [f"{per[n]:.2f}" if n in per else "-" for n in names]
+                row += [f"{np.median(list(per.values())):.2f}", f"{max(per.values()):.2f}"]
+                lines.append("| " + " | ".join(row) + " |")
+        return lines
+
+    now = dt.datetime.now(dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
+    command = "python benchmarks/experiments/validation_rows.py " + " ".join(
+        sys.argv[1:] if argv is None else argv
+    )
+    timing = ", ".join(
+        f"{arm} {np.mean(values):.2f} s" for arm, values in seconds.items() if values
+    )
+    return (
+        f"Generated by `{command.strip()}` on {now} "
+        f"({(time.perf_counter() - started) / 60:.1f} minutes). Pool labels drawn uniformly "
+        f"({args.seeds} seeds per size; 0 = none), validation rows = out-of-fold outputs on "
+        "each scenario's training part, full-size pools, floor "
+        f"{DEFAULT_FLOOR}, the core's hedged usefulness.\n\n"
+        "One-draw variance of the difference term relative to one uniform draw (below 1 "
+        "beats i.i.d. sampling):\n\n"
+        + "\n".join(table(cost))
+        + "\n\nPlug-in squared bias (mean g - R)^2 relative to i.i.d. sampling's variance at "
+        "100 labels:\n\n"
+        + "\n".join(table(bias))
+        + f"\n\nMean fit time per arm (one thread): {timing}.\n"
+    )
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
