@@ -15,7 +15,13 @@ import numpy as np
 
 from leadline.v1 import leadline_pb2
 
-__all__ = ["IngestColumns", "plan_batches", "build_batches"]
+__all__ = [
+    "IngestColumns",
+    "ValidationColumns",
+    "build_batches",
+    "build_validation_batches",
+    "plan_batches",
+]
 
 # Bytes a protobuf field adds around its payload: tag plus a length varint. Generous on
 # purpose: the budget must hold, a few bytes of slack cost nothing.
@@ -111,6 +117,54 @@ class IngestColumns:
         return sizes
 
 
+@dataclass(frozen=True)
+class ValidationColumns:
+    """Validation rows: ids, features, held-out outputs and optional segments (``rows``),
+    plus one label per row (int64 class labels or float64 target values)."""
+
+    rows: IngestColumns
+    labels: np.ndarray
+    classification: bool
+
+    @classmethod
+    def from_arrays(
+        cls,
+        item_ids: Sequence[str] | np.ndarray,
+        features: np.ndarray | Sequence[Sequence[float]],
+        outputs: np.ndarray | Sequence[float] | Sequence[Sequence[float]],
+        labels: np.ndarray | Sequence[int] | Sequence[float],
+        *,
+        classification: bool,
+        segments: Sequence[str] | np.ndarray | None = None,
+    ) -> ValidationColumns:
+        """Check shapes; classification labels must be whole numbers (sent as class_labels),
+        regression labels are sent as values. ValueError names the argument and the rule."""
+        rows = IngestColumns.from_arrays(item_ids, features, outputs, segments=segments)
+        n = len(rows)
+        values = np.asarray(labels)
+        if values.shape != (n,):
+            raise ValueError(f"labels has shape {values.shape}, must be ({n},): one per item.")
+        if values.dtype.kind not in "iuf":
+            raise ValueError(f"labels has dtype {values.dtype}, must be numeric.")
+        if classification:
+            whole = np.isfinite(values) & (values == np.round(values))
+            if not whole.all():
+                row = int(np.flatnonzero(~whole)[0])
+                raise ValueError(
+                    f"labels[{row}] == {values[row].item()!r}: a classification pool takes class "
+                    "indices (whole numbers)."
+                )
+            return cls(rows, values.astype(np.int64), True)
+        return cls(rows, values.astype(np.float64), False)
+
+    def __len__(self) -> int:
+        return len(self.rows)
+
+    def row_bytes(self) -> np.ndarray:
+        # A label is at most a 10-byte varint (negative int32) or an 8-byte double.
+        return self.rows.row_bytes() + 10
+
+
 def plan_batches(row_bytes: np.ndarray, *, max_rows: int, max_bytes: int) -> list[slice]:
     """Consecutive row ranges, each with at most max_rows rows and max_bytes bytes.
 
@@ -169,4 +223,34 @@ def build_batches(
             batch.segments.extend(columns.segments[rows])
         if columns.event_time_ms is not None:
             batch.event_time_ms.extend(columns.event_time_ms[rows].tolist())
+        yield batch
+
+
+def build_validation_batches(
+    pool: str,
+    columns: ValidationColumns,
+    *,
+    max_rows: int,
+    max_bytes: int,
+    request_id: str | None = None,
+) -> Iterator[leadline_pb2.ValidationBatch]:
+    """ValidationBatch messages covering every row once, in order, each with its request id."""
+    rows = columns.rows
+    for index, part in enumerate(
+        plan_batches(columns.row_bytes(), max_rows=max_rows, max_bytes=max_bytes)
+    ):
+        batch = leadline_pb2.ValidationBatch(
+            pool=pool,
+            request_id=batch_request_id(request_id, index),
+            item_ids=rows.item_ids[part],
+            features=rows.features[part].ravel().tolist(),
+            model_outputs=rows.outputs[part].ravel().tolist(),
+        )
+        labels = columns.labels[part].tolist()
+        if columns.classification:
+            batch.class_labels.extend(labels)
+        else:
+            batch.values.extend(labels)
+        if rows.segments is not None:
+            batch.segments.extend(rows.segments[part])
         yield batch

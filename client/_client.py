@@ -21,7 +21,12 @@ import grpc
 import numpy as np
 from grpc_health.v1 import health_pb2, health_pb2_grpc
 
-from leadline.client._batching import IngestColumns, build_batches
+from leadline.client._batching import (
+    IngestColumns,
+    ValidationColumns,
+    build_batches,
+    build_validation_batches,
+)
 from leadline.client._enums import parse_enum
 from leadline.client._errors import LeadlineError, error_from_rpc
 from leadline.client._tls import TlsConfig
@@ -357,6 +362,64 @@ class Client:
             summary = self._call(
                 "IngestItems",
                 self._ingest.IngestItems,
+                batch,
+                timeout=self.ingest_timeout if timeout is None else timeout,
+            )
+            accepted += summary.accepted
+            duplicates += summary.duplicates
+            rejected += summary.rejected
+            errors.extend(summary.errors)
+            item_count = summary.item_count
+            messages += 1
+        return IngestResult(accepted, duplicates, rejected, errors, item_count, messages)
+
+    def add_validation(
+        self,
+        pool: str,
+        item_ids: Sequence[str] | np.ndarray,
+        features: np.ndarray | Sequence[Sequence[float]],
+        outputs: np.ndarray | Sequence[float] | Sequence[Sequence[float]],
+        labels: np.ndarray | Sequence[int] | Sequence[float],
+        *,
+        segments: Sequence[str] | np.ndarray | None = None,
+        request_id: str | None = None,
+        timeout: float | None = None,
+    ) -> IngestResult:
+        """Send n validation items: labeled rows from outside the pool that teach the
+        surrogate before the first pool label (role ``ingest`` or ``admin``).
+
+        ``features`` (n, feature_dim); ``outputs`` the model's *held-out* outputs for these
+        rows ((n, num_classes) probabilities or (n,) predictions), e.g. from
+        ``sklearn.model_selection.cross_val_predict(model, X, y, method="predict_proba")``
+        or the model's predictions on its validation split; ``labels`` (n,) class indices
+        or target values. They are never drawn and never enter an estimate or a count of
+        pool items. Batched, retried and made repeatable by ``request_id`` exactly like
+        :meth:`ingest`; the result's ``item_count`` is the pool's validation-item count
+        after the last message. One GetPool call first learns the pool's task (class
+        labels or values).
+        """
+        name = pool_name(pool)
+        task = self.get_pool(name, timeout=timeout).task
+        columns = ValidationColumns.from_arrays(
+            item_ids,
+            features,
+            outputs,
+            labels,
+            classification=task == leadline_pb2.TASK_TYPE_CLASSIFICATION,
+            segments=segments,
+        )
+        accepted = duplicates = rejected = item_count = messages = 0
+        errors: list[leadline_pb2.ItemError] = []
+        for batch in build_validation_batches(
+            name,
+            columns,
+            max_rows=self.max_batch_rows,
+            max_bytes=self.max_batch_bytes,
+            request_id=request_id,
+        ):
+            summary = self._call(
+                "AddValidationItems",
+                self._ingest.AddValidationItems,
                 batch,
                 timeout=self.ingest_timeout if timeout is None else timeout,
             )

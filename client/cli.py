@@ -13,6 +13,7 @@ check --data-dir DIR`` checks a server's database (both need the server's depend
 from __future__ import annotations
 
 import argparse
+import csv
 import json
 import logging
 import os
@@ -20,8 +21,9 @@ import sys
 import time
 from collections.abc import Sequence
 from pathlib import Path
-from typing import NoReturn
+from typing import Any, NoReturn
 
+import numpy as np
 from google.protobuf import json_format
 
 from leadline.client._client import Client, pool_name
@@ -132,6 +134,25 @@ def build_parser() -> argparse.ArgumentParser:
     delete.add_argument("pool")
     delete.add_argument("--yes", action="store_true", help="really delete (required)")
 
+    validation = commands.add_parser(
+        "validation", help="add validation items (labeled rows that teach the surrogate)"
+    )
+    validation_commands = validation.add_subparsers(
+        dest="validation_command", metavar="ACTION", required=True
+    )
+    add = validation_commands.add_parser(
+        "add",
+        parents=[common],
+        help="upload validation items from an .npz or .csv file",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description=_VALIDATION_HELP,
+    )
+    add.add_argument("--pool", required=True)
+    add.add_argument("--file", type=Path, required=True, help="rows.npz or rows.csv")
+    add.add_argument(
+        "--request-id", help="makes a repeat of this upload harmless (same file, same id)"
+    )
+
     status = commands.add_parser(
         "status", parents=[common], help="pool counts, labels, surrogate and current estimate"
     )
@@ -187,6 +208,111 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--budget", type=int, default=800, help="most labels the vendor gives")
     demo.add_argument("-v", "--verbose", action="store_true")
     return parser
+
+
+_VALIDATION_HELP = """\
+Upload validation items: labeled rows from outside the pool (your validation split, or
+out-of-fold outputs on your training data) that teach leadline's surrogate before the
+first pool label. They are never drawn and never enter an estimate or a count of pool
+items. Role: ingest or admin.
+
+.npz (numpy.savez) arrays, one row per item:
+  item_ids   (n,) strings, unique among the pool's validation items
+  features   (n, feature_dim) numbers
+  outputs    (n, num_classes) held-out class probabilities, or (n,) predictions
+  labels     (n,) class indices (classification) or target values (regression)
+  segments   (n,) strings, optional
+Save strings as a numpy string array (np.array(ids)), not as Python objects:
+the file is read with allow_pickle=False.
+
+.csv with a header row: item_id, label, feature_0 .. feature_{d-1}, output_0 ..
+output_{K-1} (regression: one column output_0), optionally segment; any column order.
+
+Producing the outputs with scikit-learn, for a model trained on (X, y):
+  outputs = cross_val_predict(model, X, y, cv=5, method="predict_proba")
+or the fitted model's predict_proba on a validation split it never trained on.
+"""
+
+
+def read_validation_file(path: Path) -> dict[str, Any]:
+    """The arrays of a validation-items file (.npz or .csv, see ``validation add --help``).
+
+    Returns item_ids, features, outputs, labels and segments (None if absent); ValueError
+    names the file, the column and the rule.
+    """
+    suffix = path.suffix.lower()
+    if suffix == ".npz":
+        try:
+            with np.load(path, allow_pickle=False) as data:
+                arrays = {name: data[name] for name in data.files}
+        except ValueError as error:
+            raise ValueError(
+                f"{path}: {error} (store strings as a numpy string array, not as objects)."
+            ) from None
+        missing = [k for k in ("item_ids", "features", "outputs", "labels") if k not in arrays]
+        if missing:
+            raise ValueError(
+                f"{path}: arrays {missing} missing; needs item_ids, features, outputs, labels "
+                f"(found {sorted(arrays)})."
+            )
+        segments = arrays.get("segments")
+        return {
+            "item_ids": [str(v) for v in arrays["item_ids"]],
+            "features": arrays["features"],
+            "outputs": arrays["outputs"],
+            "labels": arrays["labels"],
+            "segments": None if segments is None else [str(v) for v in segments],
+        }
+    if suffix == ".csv":
+        return _read_validation_csv(path)
+    raise ValueError(f"{path}: unknown file type {suffix!r}; give a .npz or a .csv file.")
+
+
+def _numbered(header: list[str], prefix: str) -> list[int]:
+    found = {}
+    for position, name in enumerate(header):
+        rest = name.removeprefix(prefix)
+        if name.startswith(prefix) and rest.isdigit():
+            found[int(rest)] = position
+    if sorted(found) != list(range(len(found))):
+        raise ValueError(f"columns {prefix}N must be numbered 0, 1, 2, ... without gaps.")
+    return [found[i] for i in range(len(found))]
+
+
+def _read_validation_csv(path: Path) -> dict[str, Any]:
+    with open(path, newline="", encoding="utf-8") as handle:
+        rows = list(csv.reader(handle))
+    if not rows:
+        raise ValueError(f"{path}: empty file; needs a header row and one row per item.")
+    header = [name.strip() for name in rows[0]]
+    body = rows[1:]
+    for required in ("item_id", "label"):
+        if required not in header:
+            raise ValueError(f"{path}: no {required!r} column in the header {header}.")
+    try:
+        feature_columns = _numbered(header, "feature_")
+        output_columns = _numbered(header, "output_")
+    except ValueError as error:
+        raise ValueError(f"{path}: {error}") from None
+    if not feature_columns or not output_columns:
+        raise ValueError(f"{path}: needs feature_0.. and output_0.. columns (header {header}).")
+
+    def numbers(columns: list[int], what: str) -> np.ndarray:
+        try:
+            return np.array([[float(row[c]) for c in columns] for row in body], dtype=float)
+        except (ValueError, IndexError) as error:
+            raise ValueError(f"{path}: a {what} cell is not a number ({error}).") from None
+
+    outputs = numbers(output_columns, "output")
+    label_column = header.index("label")
+    segment_column = header.index("segment") if "segment" in header else None
+    return {
+        "item_ids": [row[header.index("item_id")] for row in body],
+        "features": numbers(feature_columns, "feature").reshape(len(body), len(feature_columns)),
+        "outputs": outputs[:, 0] if len(output_columns) == 1 else outputs,
+        "labels": numbers([label_column], "label")[:, 0] if body else np.zeros(0),
+        "segments": None if segment_column is None else [row[segment_column] for row in body],
+    }
 
 
 def _client(args: argparse.Namespace) -> Client:
@@ -254,12 +380,29 @@ def _pool_rows(pool: leadline_pb2.Pool) -> list[tuple[str, str]]:
             f"{pool.draw_count:,} (labeled {pool.labeled_count:,}, pending "
             f"{pool.pending_count:,}, skipped {pool.skipped_count:,})",
         ),
-        ("surrogate", f"version {pool.surrogate_version}"),
+        ("surrogate", _surrogate_text(pool)),
+        (
+            "validation",
+            f"{pool.validation_count:,} items (teach the surrogate; never drawn or counted)"
+            if pool.validation_count
+            else "none",
+        ),
         ("segments", ", ".join(pool.segments) or "-"),
     ]
     if pool.description:
         rows.insert(1, ("description", pool.description))
     return rows
+
+
+def _surrogate_text(pool: leadline_pb2.Pool) -> str:
+    if pool.surrogate_version == 0:
+        return "version 0 (cold start: the model's own outputs)"
+    if pool.surrogate_label_count == 0 and pool.surrogate_validation_count == 0:
+        return f"version {pool.surrogate_version} (cold start: too few labels to fit)"
+    parts = [f"{pool.surrogate_label_count:,} pool labels"]
+    if pool.surrogate_validation_count:
+        parts.append(f"{pool.surrogate_validation_count:,} validation items")
+    return f"version {pool.surrogate_version}, fitted on " + " and ".join(parts)
 
 
 def _cost_matrix(text: str | None) -> list[list[float]] | None:
@@ -324,6 +467,30 @@ def _run_pool(args: argparse.Namespace) -> int:
                 )
             client.delete_pool(args.pool)
             print(f"deleted {pool_name(args.pool)}")
+    return EXIT_OK
+
+
+def _run_validation(args: argparse.Namespace) -> int:
+    columns = read_validation_file(args.file)
+    with _client(args) as client:
+        result = client.add_validation(
+            args.pool,
+            columns["item_ids"],
+            columns["features"],
+            columns["outputs"],
+            columns["labels"],
+            segments=columns["segments"],
+            request_id=args.request_id,
+        )
+    print(
+        f"added {result.accepted:,} validation items to {pool_name(args.pool)} "
+        f"({result.duplicates:,} duplicates, {result.rejected:,} rejected); the pool holds "
+        f"{result.item_count:,} validation items"
+    )
+    for error in result.errors:
+        print(f"  rejected {error.item_id}: {error.reason}")
+    if result.accepted:
+        print("  a surrogate refit on them starts now; the next draw waits for it")
     return EXIT_OK
 
 
@@ -463,6 +630,7 @@ def _run_demo(args: argparse.Namespace) -> int:
 
 _COMMANDS = {
     "pool": _run_pool,
+    "validation": _run_validation,
     "status": _run_status,
     "gate": _run_gate,
     "report": _run_report,

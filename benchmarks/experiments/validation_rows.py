@@ -186,12 +186,14 @@ def arms(base: SurrogateSettings) -> dict[str, SurrogateSettings | None]:
             base, validation_weight=1000.0, temperature_min_pool_labels=10**9
         ),
         "weight_3000": replace(base, validation_weight=3000.0),
-        "equal_temp_weighted": replace(base, validation_weight=math.inf, weighted_temperature=True),
-        "weight_1000_temp_weighted": replace(
-            base, validation_weight=1000.0, weighted_temperature=True
+        "weight_3000_temp_weight_300": replace(
+            base, validation_weight=3000.0, temperature_validation_weight=300.0
         ),
-        "weight_300_temp_weighted": replace(
-            base, validation_weight=300.0, weighted_temperature=True
+        "weight_3000_temp_weight_100": replace(
+            base, validation_weight=3000.0, temperature_validation_weight=100.0
+        ),
+        "weight_3000_temp_from_200": replace(
+            base, validation_weight=3000.0, temperature_min_pool_labels=200
         ),
     }
 

@@ -135,7 +135,7 @@ class SurrogateSettings:
     #: With validation rows, the temperature is fitted on the pool labels from this many
     #: on, on the validation rows before.
     temperature_min_pool_labels: int = 30
-    weighted_temperature: bool = False
+    temperature_validation_weight: float | None = None
 
     def __post_init__(self) -> None:
         for name in (
@@ -694,9 +694,12 @@ def _fit_with_validation(
     if spec.is_classification:
         # The model's calibration on the pool is what matters; the validation rows stand
         # in for it until the pool labels can say.
-        if settings.weighted_temperature:
+        if settings.temperature_validation_weight is not None:
+            share = min(1.0, settings.temperature_validation_weight / used)
             temperature = _fit_temperature(
-                np.concatenate([out, v_out]), np.concatenate([y, v_y]), weight
+                np.concatenate([out, v_out]),
+                np.concatenate([y, v_y]),
+                np.concatenate([np.ones(n), np.full(used, share)]),
             )
         elif n >= settings.temperature_min_pool_labels:
             temperature = _fit_temperature(out, y)

@@ -21,9 +21,18 @@ from leadline.service.estimation import (
     DRAW_SKIPPED,
     DrawTerms,
     EstimatorMode,
+    LossKind,
+    LossSpec,
     PlugInSums,
+    SurrogateScores,
+    SurrogateSettings,
+    ValidationRows,
+    cold_start_surrogate,
     estimate_risk,
+    fit_surrogate,
     lure_weights,
+    selection_probabilities,
+    usefulness,
 )
 
 _BOUND = 1.0
@@ -240,3 +249,112 @@ def test_nonresponse_allowance_covers_every_possible_missing_loss(status):
     # The extreme loss (0 or B, whichever is farther from h) attains the allowance exactly.
     assert max(reach) == pytest.approx(imputed.nonresponse_allowance, rel=1e-12)
     assert imputed.labels_pending + imputed.labels_skipped == 1
+
+
+# ---------------------------------------------------------------------------------------
+# A surrogate taught by validation rows and refitted on the pool labels drawn so far
+# ---------------------------------------------------------------------------------------
+
+_TINY = SurrogateSettings(ensemble_size=2, num_rounds=8, min_data_in_leaf=2, num_leaves=3)
+
+
+def _validation_taught_pool(
+    task: str,
+) -> tuple[LossSpec, np.ndarray, np.ndarray, np.ndarray, ValidationRows]:
+    """Six pool items and 40 validation rows of one invented problem (test data only)."""
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(46, 2))
+    if task == "classification":
+        spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=2)
+        p = 1.0 / (1.0 + np.exp(-(1.5 * x[:, 0] - x[:, 1])))
+        labels = (rng.random(46) < p).astype(np.int64)
+        confident = np.clip(0.5 + 0.8 * (p - 0.5) + 0.1 * x[:, 1], 0.02, 0.98)
+        outputs = np.column_stack([1.0 - confident, confident])
+    else:
+        spec = LossSpec(kind=LossKind.SQUARED_ERROR, loss_cap=4.0)
+        labels = x[:, 0] + 0.5 * x[:, 1] ** 2 + rng.normal(scale=0.5, size=46)
+        outputs = x[:, 0]
+    validation = ValidationRows(features=x[6:], outputs=outputs[6:], labels=labels[6:])
+    return spec, x[:6], outputs[:6], labels[:6], validation
+
+
+@pytest.mark.parametrize("task", ["classification", "regression"])
+@pytest.mark.parametrize("draws", [1, 2, 3])
+def test_unbiased_with_a_validation_taught_surrogate_that_refits_on_pool_labels(task, draws):
+    """Outside source as above: any predictable control variate keeps E[a_m | past] = R.
+    The surrogate before draw m is a real LightGBM fit on the validation rows plus the
+    labels of draws 0..m-1 (the server's refit), and the proposal is the core's hedged
+    usefulness with the floor; enumeration makes the expectation exact."""
+    spec, features, outputs, labels, validation = _validation_taught_pool(task)
+    losses = spec.losses(outputs, labels)
+    n = losses.shape[0]
+    bound = spec.bound
+    fits: dict[frozenset[int], np.ndarray] = {}
+
+    def scores_after(history: list[int]):
+        key = frozenset(history)
+        if key not in fits:
+            rows = sorted(key)
+            model = fit_surrogate(
+                spec,
+                features[rows].reshape(len(rows), 2),
+                outputs[rows],
+                labels[rows],
+                version=len(rows) + 1,
+                seed=3,
+                settings=_TINY,
+                validation=validation,
+            )
+            fits[key] = model.score(features, outputs)
+        return fits[key]
+
+    expectation = total = 0.0
+    for sequence in itertools.permutations(range(n), draws):
+        probability = 1.0
+        history: list[int] = []
+        fields: dict[str, list[float]] = {k: [] for k in ("q", "h", "remaining", "low", "high")}
+        for item in sequence:
+            remaining = [j for j in range(n) if j not in history]
+            scores = scores_after(history)
+            h = np.clip(scores.expected_loss, 0.0, bound)
+            sub = SurrogateScores(
+                expected_loss=h[remaining],
+                residual_second_moment=scores.residual_second_moment[remaining],
+                spread=scores.spread[remaining],
+            )
+            q = selection_probabilities(usefulness(sub, loss_bound=bound), floor=_FLOOR)
+            q_item = float(q[remaining.index(item)])
+            probability *= q_item
+            fields["q"].append(q_item)
+            fields["h"].append(float(h[item]))
+            fields["remaining"].append(float(h[remaining].sum()))
+            fields["low"].append(float(np.min(-h[remaining] / q)))
+            fields["high"].append(float(np.max((bound - h[remaining]) / q)))
+            history.append(item)
+        idx = np.array(sequence)
+        terms = DrawTerms(
+            probability=np.array(fields["q"]),
+            expected_loss=np.array(fields["h"]),
+            remaining_expected_loss=np.array(fields["remaining"]),
+            late_expected_loss=np.zeros(draws),
+            late_count=np.zeros(draws, dtype=np.int64),
+            in_scope=np.ones(draws, dtype=bool),
+            status=np.full(draws, DRAW_LABELED),
+            loss=losses[idx],
+            correction_low=np.array(fields["low"]),
+            correction_high=np.array(fields["high"]),
+        )
+        estimate = estimate_risk(
+            terms,
+            PlugInSums(n, 0.0, 0.0, 0.0),
+            mode=EstimatorMode.UNBIASED,
+            confidence=0.9,
+            loss_bound=bound,
+        )
+        total += probability
+        expectation += probability * estimate.unclipped_risk
+    assert total == pytest.approx(1.0, abs=1e-12)
+    assert abs(expectation - losses.mean()) < 1e-12 * max(1.0, bound)
+    # The validation rows really taught it: the first draw's surrogate is not the cold start.
+    cold = cold_start_surrogate(spec).score(features, outputs).expected_loss
+    assert not np.allclose(scores_after([]).expected_loss, cold)

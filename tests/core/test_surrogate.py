@@ -1,6 +1,8 @@
-"""Surrogate: cold start, warm-started LightGBM fits, determinism, persistence."""
+"""Surrogate: cold start, warm-started LightGBM fits, validation rows, determinism, persistence."""
 
 from __future__ import annotations
+
+import math
 
 import numpy as np
 import pytest
@@ -12,6 +14,7 @@ from leadline.service.estimation import (
     LossSpec,
     Surrogate,
     SurrogateSettings,
+    ValidationRows,
     cold_start_surrogate,
     fit_surrogate,
 )
@@ -199,3 +202,159 @@ def test_out_of_bag_stopping_cuts_rounds_on_noise_and_survives_a_byte_round_trip
         fitted.score(features, outputs).expected_loss,
         restored.score(features, outputs).expected_loss,
     )
+
+
+# ---------------------------------------------------------------------------------------
+# validation rows
+# ---------------------------------------------------------------------------------------
+
+
+def test_validation_rows_teach_the_surrogate_before_any_pool_label(digits):
+    # sklearn digits: the fixture's outputs are held out (the model saw the first 200
+    # images only), so rows 0-599 serve as a validation split and the rest as the pool.
+    features, outputs, labels = digits
+    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=10)
+    losses = spec.losses(outputs, labels)
+    validation = ValidationRows(features[:600], outputs[:600], labels[:600])
+    pool = slice(600, None)
+    taught = fit_surrogate(
+        spec,
+        features[:0],
+        outputs[:0],
+        labels[:0],
+        version=1,
+        seed=0,
+        settings=_FAST,
+        validation=validation,
+    )
+    assert not taught.is_cold_start
+    assert (taught.label_count, taught.validation_count, taught.validation_used) == (0, 600, 600)
+    cold = cold_start_surrogate(spec).score(features[pool], outputs[pool]).expected_loss
+    warm = taught.score(features[pool], outputs[pool]).expected_loss
+    # Mean squared error of the loss prediction on the pool (Brier score of the error event).
+    assert np.mean((warm - losses[pool]) ** 2) < np.mean((cold - losses[pool]) ** 2)
+
+
+def test_without_validation_rows_the_fit_is_exactly_the_pool_labels_one(digits):
+    features, outputs, labels = digits
+    spec = LossSpec(kind=LossKind.BRIER, num_classes=10)
+    arguments = (spec, features[:90], outputs[:90], labels[:90])
+    plain = fit_surrogate(*arguments, version=1, seed=4, settings=_FAST)
+    empty = ValidationRows(features[:0], outputs[:0], labels[:0])
+    for validation in (None, empty):
+        same = fit_surrogate(*arguments, version=1, seed=4, settings=_FAST, validation=validation)
+        np.testing.assert_array_equal(
+            same.score(features, outputs).expected_loss,
+            plain.score(features, outputs).expected_loss,
+        )
+        assert same.validation_count == 0
+    assert (
+        plain.to_bytes() == fit_surrogate(*arguments, version=1, seed=4, settings=_FAST).to_bytes()
+    )
+
+
+def test_validation_rows_beyond_the_cap_are_a_seeded_subsample(digits):
+    features, outputs, labels = digits
+    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=10)
+    settings = SurrogateSettings(ensemble_size=2, num_rounds=10, max_validation_rows=150)
+    validation = ValidationRows(features[:500], outputs[:500], labels[:500])
+
+    def fit(seed: int) -> Surrogate:
+        return fit_surrogate(
+            spec,
+            features[500:520],
+            outputs[500:520],
+            labels[500:520],
+            version=2,
+            seed=seed,
+            settings=settings,
+            validation=validation,
+        )
+
+    first, again, other = fit(1), fit(1), fit(2)
+    assert (first.label_count, first.validation_count, first.validation_used) == (20, 500, 150)
+    scores = first.score(features, outputs).expected_loss
+    np.testing.assert_array_equal(scores, again.score(features, outputs).expected_loss)
+    assert not np.array_equal(scores, other.score(features, outputs).expected_loss)
+    restored = Surrogate.from_bytes(spec, first.to_bytes())
+    assert (restored.validation_count, restored.validation_used) == (500, 150)
+    np.testing.assert_array_equal(restored.score(features, outputs).expected_loss, scores)
+
+
+def test_pool_labels_come_to_dominate_validation_rows_that_disagree(digits):
+    # Validation rows that say the model is never wrong (labels replaced by its own
+    # prediction), against a pool where it errs: the surrogate's mean loss starts near 0
+    # and moves to the pool's risk as pool labels outweigh the validation rows' total
+    # weight. With every validation row weighing as much as a pool label it stays lower.
+    features, outputs, labels = digits
+    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=10)
+    flattering = ValidationRows(features[:500], outputs[:500], outputs[:500].argmax(axis=1))
+    pool = slice(500, None)
+    risk = float(spec.losses(outputs[pool], labels[pool]).mean())
+
+    def mean_loss(count: int, weight: float) -> float:
+        rows = slice(500, 500 + count)
+        fitted = fit_surrogate(
+            spec,
+            features[rows],
+            outputs[rows],
+            labels[rows],
+            version=1,
+            seed=0,
+            settings=SurrogateSettings(ensemble_size=3, num_rounds=30, validation_weight=weight),
+            validation=flattering,
+        )
+        return float(fitted.score(features[pool], outputs[pool]).expected_loss.mean())
+
+    before = mean_loss(0, 100.0)
+    after = mean_loss(800, 100.0)
+    equal = mean_loss(800, math.inf)
+    assert risk > 0.05  # the pool does have errors to find
+    assert abs(after - risk) < 0.5 * abs(before - risk)
+    assert abs(after - risk) < abs(equal - risk)
+
+
+def test_validation_rows_let_a_regression_fit_start_without_pool_labels(diabetes):
+    # sklearn diabetes: the fixture's predictions for rows 150+ are held out.
+    features, predictions, target = diabetes
+    spec = LossSpec(kind=LossKind.SQUARED_ERROR, loss_cap=8000.0)
+    fitted = fit_surrogate(
+        spec,
+        features[:0],
+        predictions[:0],
+        target[:0],
+        version=1,
+        seed=0,
+        settings=_FAST,
+        validation=ValidationRows(features[:150], predictions[:150], target[:150]),
+    )
+    assert not fitted.is_cold_start and fitted.label_count == 0
+    losses = spec.losses(predictions[150:], target[150:])
+    scores = fitted.score(features[150:], predictions[150:])
+    assert abs(scores.expected_loss.mean() - losses.mean()) < abs(4000.0 - losses.mean())
+
+
+def test_bad_validation_rows_raise_value_error(digits):
+    features, outputs, labels = digits
+    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=10)
+
+    def fit(validation: ValidationRows) -> None:
+        fit_surrogate(
+            spec,
+            features[:5],
+            outputs[:5],
+            labels[:5],
+            version=1,
+            seed=0,
+            settings=_FAST,
+            validation=validation,
+        )
+
+    with pytest.raises(ValueError, match=r"validation features has 3 columns, surrogate was"):
+        fit(ValidationRows(features[:20, :3], outputs[:20], labels[:20]))
+    with pytest.raises(ValueError, match=r"validation labels\[1\] = 10.0, must be a class index"):
+        fit(ValidationRows(features[:2], outputs[:2], np.array([1, 10])))
+    with pytest.raises(ValueError, match=r"validation outputs has 3 columns, pool has 10"):
+        fit(ValidationRows(features[:2], outputs[:2, :3], labels[:2]))
+    with pytest.raises(ValueError, match=r"validation_weight = 0.0, must be > 0"):
+        SurrogateSettings(validation_weight=0.0)
