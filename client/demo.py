@@ -7,12 +7,16 @@ parcels from the far end of one feature). Before shipping the model again, the r
 policy asks: is its error rate on this week's traffic below 15%, at 95% confidence?
 
 The demo trains the model itself on synthetic data (scikit-learn's make_classification),
-starts a real ``leadline serve`` child on a free loopback port with a temporary data
-directory and token file, streams the week's traffic in batches (the monitoring job),
-plays the labeling vendor (answers come from the scenario's hidden labels), polls the
-release gate after every round of labels, writes the report, and prints a summary. The
-true risk it prints is computed from the hidden labels of every pool item, never from the
-estimator.
+keeping a validation split of the training traffic aside, starts a real ``leadline serve``
+child on a free loopback port with a temporary data directory and token file, uploads the
+model's validation split as validation items, streams the week's traffic in batches (the
+monitoring job), plays the labeling vendor (answers come from the scenario's hidden
+labels) in rounds, waits for the surrogate refit each round calls for (a person labels far
+slower than a refit), polls the release gate after every round, writes the report, and
+prints a summary. It then labels a second pool with the same traffic but no validation
+items, so the summary can put the labels each needed beside what random sampling would
+need. The true risk it prints is computed from the hidden labels of every pool item,
+never from the estimator.
 """
 
 from __future__ import annotations
@@ -39,22 +43,35 @@ from leadline.client._local_server import LocalServer
 from leadline.client.report import collect_report_data, write_report
 from leadline.v1 import leadline_pb2
 
-__all__ = ["DemoSummary", "Scenario", "build_scenario", "iid_labels_for_half_width", "run_demo"]
+__all__ = [
+    "DemoSummary",
+    "LabelingOutcome",
+    "Scenario",
+    "build_scenario",
+    "iid_labels_for_half_width",
+    "run_demo",
+]
 
 _LOG = logging.getLogger(__name__)
 
 POOL_ID = "brindlecove-parcel-fate"
+# The same week's traffic without validation items, for the comparison.
+PLAIN_POOL_ID = "brindlecove-parcel-fate-plain"
 CLASSES = ("on-time", "late", "misrouted")
 DEPOTS = ("harbour-depot", "hill-depot", "river-depot")
 MAX_RISK = 0.15
 CONFIDENCE = 0.95
 _TRAIN_ROWS = 4000
+# Training-time traffic the model never trained on: its validation split.
+_VALIDATION_ROWS = 2000
 _FEATURES = 12
 _BATCH_ROWS = 2000
 _ROUND_LABELS = 20
 # One parcel in a hundred has an unreadable scan: the vendor skips it.
 _SKIP_RATE = 0.01
 _DAY_MS = 24 * 3600 * 1000
+# Longest wait for a due surrogate refit between labeling rounds.
+_REFIT_WAIT_SECONDS = 30.0
 
 
 @dataclass(frozen=True)
@@ -68,6 +85,11 @@ class Scenario:
     segments: list[str]
     event_time_ms: np.ndarray
     train_seconds: float
+    # The model's validation split: training-time traffic it did not train on, with the
+    # model's (held-out) outputs and the true labels, as a team keeps it.
+    validation_features: np.ndarray
+    validation_probabilities: np.ndarray
+    validation_labels: np.ndarray
 
     @property
     def true_risk(self) -> float:
@@ -80,6 +102,21 @@ class Scenario:
         wrong = self.probabilities.argmax(axis=1) != self.hidden_labels
         segments = np.asarray(self.segments)
         return {name: float(wrong[segments == name].mean()) for name in sorted(set(self.segments))}
+
+
+@dataclass(frozen=True)
+class LabelingOutcome:
+    """How one pool's labeling went: labels spent until the gate decided (or the budget
+    ran out), the interval reached, and what random sampling would need for it."""
+
+    labels_used: int
+    labels_skipped: int
+    half_width: float  # of the fixed-time interval
+    iid_labels_same_width: int | None
+    verdict: str
+    gate_polls: int
+    surrogate_version: int
+    labeling_seconds: float
 
 
 @dataclass(frozen=True)
@@ -105,6 +142,10 @@ class DemoSummary:
     labeling_seconds: float
     report_png: str
     report_html: str
+    validation_items: int = 0
+    surrogate_version: int = 0
+    # The same traffic labeled without validation items (None if it was not run).
+    without_validation: LabelingOutcome | None = None
     wall_seconds: float = 0.0
 
 
@@ -135,7 +176,10 @@ def build_scenario(*, seed: int, items: int) -> Scenario:
     # Covariate shift: rows with a large first feature are likelier to be this week's
     # traffic than training data. Labels given features are unchanged.
     in_pool = rng.random(rows) < 1.0 / (1.0 + np.exp(-1.2 * x[:, 0]))
-    train = np.flatnonzero(~in_pool)[:_TRAIN_ROWS]
+    outside = np.flatnonzero(~in_pool)
+    train = outside[:_TRAIN_ROWS]
+    # Up to _VALIDATION_ROWS of the training-time rows left over (fewer for tiny pools).
+    validation = outside[_TRAIN_ROWS : _TRAIN_ROWS + _VALIDATION_ROWS]
     pool = np.flatnonzero(in_pool)[:items]
     if len(pool) < items:
         raise ValueError(f"scenario produced {len(pool)} pool rows, fewer than items={items}.")
@@ -145,9 +189,8 @@ def build_scenario(*, seed: int, items: int) -> Scenario:
     # (measured: 56 s instead of 1 s while a server and tests shared the cores).
     with threadpool_limits(limits=1):
         model.fit(x[train], y[train])
-        probabilities = model.predict_proba(x[pool]).astype(np.float32)
-    # float32 rounding can leave a row summing to 1 +- 1e-7: renormalise in float64 first.
-    probabilities = (probabilities / probabilities.sum(axis=1, keepdims=True)).astype(np.float32)
+        probabilities = _normalised(model.predict_proba(x[pool]))
+        validation_probabilities = _normalised(model.predict_proba(x[validation]))
     train_seconds = time.perf_counter() - started
     cuts = np.quantile(x[train, 3], [1 / 3, 2 / 3])
     depot = np.digitize(x[pool, 3], cuts)
@@ -160,7 +203,16 @@ def build_scenario(*, seed: int, items: int) -> Scenario:
         segments=[DEPOTS[d] for d in depot],
         event_time_ms=times.astype(np.int64),
         train_seconds=train_seconds,
+        validation_features=x[validation].astype(np.float32),
+        validation_probabilities=validation_probabilities,
+        validation_labels=y[validation].astype(np.int64),
     )
+
+
+def _normalised(probabilities: np.ndarray) -> np.ndarray:
+    # float32 rounding can leave a row summing to 1 +- 1e-7: renormalise in float64 first.
+    wide = np.asarray(probabilities, dtype=np.float64)
+    return (wide / wide.sum(axis=1, keepdims=True)).astype(np.float32)
 
 
 def iid_labels_for_half_width(
@@ -288,73 +340,68 @@ def _run_loop(
     vendor = Client(target, token=tokens["labeler"])
     gate = Client(target, token=tokens["reader"])
     try:
-        admin.create_pool(
+        for pool, description in (
+            (POOL_ID, "this week's traffic, taught by the validation split"),
+            (PLAIN_POOL_ID, "this week's traffic, no validation items (comparison)"),
+        ):
+            admin.create_pool(
+                pool,
+                task="classification",
+                num_classes=len(CLASSES),
+                feature_dim=_FEATURES,
+                loss="zero-one",
+                description=f"Brindlecove parcel-fate model, {description} (invented)",
+            )
+        started = time.perf_counter()
+        uploaded = monitor.add_validation(
             POOL_ID,
-            task="classification",
-            num_classes=len(CLASSES),
-            feature_dim=_FEATURES,
-            loss="zero-one",
-            description="Brindlecove parcel-fate model, this week's traffic (invented)",
+            [f"validation-{i:05d}" for i in range(len(scenario.validation_labels))],
+            scenario.validation_features,
+            scenario.validation_probabilities,
+            scenario.validation_labels,
+        )
+        _say(
+            out,
+            f"  uploaded the model's validation split ({uploaded.accepted:,} labeled parcels "
+            f"of training-time traffic) as validation items in "
+            f"{time.perf_counter() - started:.1f} s: they teach the surrogate, never the estimate",
         )
         started = time.perf_counter()
         n = len(scenario.item_ids)
-        for start in range(0, n, _BATCH_ROWS):
-            rows = slice(start, start + _BATCH_ROWS)
-            monitor.ingest(
-                POOL_ID,
-                scenario.item_ids[rows],
-                scenario.features[rows],
-                scenario.probabilities[rows],
-                segments=scenario.segments[rows],
-                event_time_ms=scenario.event_time_ms[rows],
-                payload_refs=[f"scan-archive/{i}.json" for i in scenario.item_ids[rows]],
-            )
+        for pool in (POOL_ID, PLAIN_POOL_ID):
+            for start in range(0, n, _BATCH_ROWS):
+                rows = slice(start, start + _BATCH_ROWS)
+                monitor.ingest(
+                    pool,
+                    scenario.item_ids[rows],
+                    scenario.features[rows],
+                    scenario.probabilities[rows],
+                    segments=scenario.segments[rows],
+                    event_time_ms=scenario.event_time_ms[rows],
+                    payload_refs=[f"scan-archive/{i}.json" for i in scenario.item_ids[rows]],
+                )
         seconds = time.perf_counter() - started
         _say(
             out,
             f"  monitoring job streamed {n:,} items in {math.ceil(n / _BATCH_ROWS)} "
-            f"batches in {seconds:.1f} s ({n / seconds:,.0f} items/s)",
+            f"batches to each of two pools in {seconds:.1f} s ({2 * n / seconds:,.0f} items/s)",
         )
         _say(
             out,
-            f"  labeling vendor works in rounds of {_ROUND_LABELS}; the release gate "
-            "is polled after every round (anytime bound: safe to poll)",
+            f"  labeling vendor works in rounds of {_ROUND_LABELS} and waits for the surrogate "
+            "refit each round calls for; the release gate is polled after every round "
+            "(anytime bound: safe to poll)",
         )
         _say(out, "  live: labels spent | estimate ± anytime half-width | gate verdict")
-        index = {item_id: i for i, item_id in enumerate(scenario.item_ids)}
-        rng = np.random.default_rng(seed + 1)
-        progress = _Progress(out, budget)
-        labels = skipped = polls = 0
-        labeling_started = time.perf_counter()
-        while True:
-            assignments = vendor.acquire(POOL_ID, _ROUND_LABELS, labeler="brindlecove-vendor")
-            answers: dict[str, int | Skip] = {}
-            for assignment in assignments:
-                if rng.random() < _SKIP_RATE:
-                    answers[assignment.assignment_id] = Skip("scan image unreadable")
-                    skipped += 1
-                else:
-                    answers[assignment.assignment_id] = int(
-                        scenario.hidden_labels[index[assignment.item_id]]
-                    )
-                    labels += 1
-            if answers:
-                vendor.submit_labels(POOL_ID, answers, labeler="brindlecove-vendor")
-            result = gate.check_gate(
-                POOL_ID, max_risk=MAX_RISK, confidence=CONFIDENCE, bound="anytime"
-            )
-            polls += 1
-            verdict = enum_name("Verdict", result.verdict).upper()
-            done = (
-                result.verdict != leadline_pb2.VERDICT_UNDECIDED
-                or labels >= budget
-                or not assignments
-            )
-            progress.update(labels, result.estimate, verdict, final=done)
-            if done:
-                break
-        labeling_seconds = time.perf_counter() - labeling_started
+        taught, result = _label_until_decided(
+            out, vendor, gate, scenario, POOL_ID, budget=budget, seed=seed, show=True
+        )
+        _say(out, "  the same traffic without validation items (second pool):")
+        plain, _ = _label_until_decided(
+            out, vendor, gate, scenario, PLAIN_POOL_ID, budget=budget, seed=seed, show=True
+        )
         estimate = gate.get_estimate(POOL_ID, confidence=CONFIDENCE)
+        info = gate.get_pool(POOL_ID)
         data = collect_report_data(
             gate,
             POOL_ID,
@@ -369,7 +416,6 @@ def _run_loop(
     finally:
         for client in (admin, monitor, vendor, gate):
             client.close()
-    half = (estimate.upper - estimate.lower) / 2
     return DemoSummary(
         items=len(scenario.item_ids),
         true_risk=scenario.true_risk,
@@ -382,6 +428,70 @@ def _run_loop(
         mode=enum_name("EstimatorMode", estimate.mode),
         labels_used=int(estimate.labels_used),
         labels_skipped=int(estimate.labels_skipped),
+        iid_labels_same_width=taught.iid_labels_same_width,
+        max_risk=MAX_RISK,
+        verdict=taught.verdict,
+        gate_polls=taught.gate_polls,
+        gate_reason=result.reason,
+        labeling_seconds=taught.labeling_seconds,
+        report_png=str(files.png),
+        report_html=str(files.html),
+        validation_items=int(info.validation_count),
+        surrogate_version=int(info.surrogate_version),
+        without_validation=plain,
+    )
+
+
+def _label_until_decided(
+    out: TextIO,
+    vendor: Client,
+    gate: Client,
+    scenario: Scenario,
+    pool: str,
+    *,
+    budget: int,
+    seed: int,
+    show: bool,
+) -> tuple[LabelingOutcome, leadline_pb2.GateResult]:
+    """Label in rounds until the gate decides or the budget is spent; after each round
+    wait for the refit it calls for, then poll the gate."""
+    index = {item_id: i for i, item_id in enumerate(scenario.item_ids)}
+    rng = np.random.default_rng(seed + 1)
+    progress = _Progress(out, budget) if show else None
+    labels = skipped = polls = 0
+    started = time.perf_counter()
+    while True:
+        assignments = vendor.acquire(pool, _ROUND_LABELS, labeler="brindlecove-vendor")
+        answers: dict[str, int | Skip] = {}
+        for assignment in assignments:
+            if rng.random() < _SKIP_RATE:
+                answers[assignment.assignment_id] = Skip("scan image unreadable")
+                skipped += 1
+            else:
+                answers[assignment.assignment_id] = int(
+                    scenario.hidden_labels[index[assignment.item_id]]
+                )
+                labels += 1
+        if answers:
+            vendor.submit_labels(pool, answers, labeler="brindlecove-vendor")
+            _wait_for_refit(gate, pool)
+        result = gate.check_gate(pool, max_risk=MAX_RISK, confidence=CONFIDENCE, bound="anytime")
+        polls += 1
+        verdict = enum_name("Verdict", result.verdict).upper()
+        done = (
+            result.verdict != leadline_pb2.VERDICT_UNDECIDED or labels >= budget or not assignments
+        )
+        if progress is not None:
+            progress.update(labels, result.estimate, verdict, final=done)
+        if done:
+            break
+    seconds = time.perf_counter() - started
+    estimate = gate.get_estimate(pool, confidence=CONFIDENCE)
+    half = (estimate.upper - estimate.lower) / 2
+    outcome = LabelingOutcome(
+        labels_used=int(estimate.labels_used),
+        labels_skipped=int(estimate.labels_skipped),
+        half_width=half,
         iid_labels_same_width=iid_labels_for_half_width(
             scenario.true_risk,
             half,
@@ -390,14 +500,24 @@ def _run_loop(
         )
         if half > 0
         else None,
-        max_risk=MAX_RISK,
         verdict=verdict,
         gate_polls=polls,
-        gate_reason=result.reason,
-        labeling_seconds=round(labeling_seconds, 2),
-        report_png=str(files.png),
-        report_html=str(files.html),
+        surrogate_version=int(gate.get_pool(pool).surrogate_version),
+        labeling_seconds=round(seconds, 2),
     )
+    return outcome, result
+
+
+def _wait_for_refit(client: Client, pool: str) -> None:
+    """Wait until the surrogate covers every label so far (a refit is due after every round
+    of 20; the server's default cadence is 10 labels), at most _REFIT_WAIT_SECONDS."""
+    deadline = time.monotonic() + _REFIT_WAIT_SECONDS
+    while time.monotonic() < deadline:
+        info = client.get_pool(pool)
+        if info.surrogate_label_count >= info.labeled_count:
+            return
+        time.sleep(0.05)
+    _LOG.warning("pool %s: no refit within %s s; labeling on", pool, _REFIT_WAIT_SECONDS)
 
 
 def _print_summary(out: TextIO, s: DemoSummary) -> None:
@@ -413,18 +533,36 @@ def _print_summary(out: TextIO, s: DemoSummary) -> None:
         f"{s.anytime_upper:.4f}])",
     )
     _say(out, f"  true risk inside the fixed-time interval: {covered}")
-    _say(out, f"  labels used: {s.labels_used} (plus {s.labels_skipped} skipped)")
+    _say(
+        out,
+        f"  labels used: {s.labels_used} (plus {s.labels_skipped} skipped), surrogate version "
+        f"{s.surrogate_version} taught by {s.validation_items:,} validation items",
+    )
     if s.iid_labels_same_width is not None:
         _say(
             out,
             f"  random sampling would need about {s.iid_labels_same_width:,} labels for the "
             f"same ± {half:.4f}",
         )
+    plain = s.without_validation
+    if plain is not None:
+        needed = (
+            f"random sampling would need about {plain.iid_labels_same_width:,} for the same "
+            f"± {plain.half_width:.4f}"
+            if plain.iid_labels_same_width is not None
+            else "no interval to compare"
+        )
         _say(
             out,
-            "    (n0 = z^2 p(1-p) / h^2 with p the true risk, h that half-width, z the normal "
-            "quantile; n = n0 / (1 + (n0-1)/N): the textbook sample-size formula for a proportion)",
+            f"  without validation items: {plain.labels_used} labels used (gate "
+            f"{plain.verdict}, surrogate version {plain.surrogate_version}); {needed}",
         )
+    _say(
+        out,
+        "    (random sampling: n0 = z^2 p(1-p) / h^2 with p the true risk, h the half-width, "
+        "z the normal quantile; n = n0 / (1 + (n0-1)/N): the textbook sample-size formula "
+        "for a proportion)",
+    )
     _say(
         out,
         f"  gate: {s.verdict} (risk below {s.max_risk:g} at {s.confidence:.0%}, anytime bound, "

@@ -11,9 +11,10 @@ Below 1 beats i.i.d. sampling. A second table gives the plug-in's squared bias,
 (mean g - R)^2, relative to i.i.d. sampling's variance at 100 labels (var(L) / 100): how
 much room BALANCED has.
 
-Arms (``SurrogateSettings`` fields): pool labels only (today's fit), validation rows with
-every row weighing as much as a pool label, with a fixed total validation weight W, with a
-"from the pool" indicator column, and combinations.
+Arms (``SurrogateSettings`` fields, see ``arms``): pool labels only (the fit without
+validation rows), the core's defaults, every validation row weighing as much as a pool
+label, smaller total validation weights in the trees, and the temperature fitted on the
+validation rows only or on the pool labels as soon as there are any.
 
     .venv/bin/python benchmarks/experiments/validation_rows.py
     .venv/bin/python benchmarks/experiments/validation_rows.py --scenarios digits_weak_tree
@@ -167,34 +168,18 @@ def validation_rows(name: str, scenario: Scenario) -> ValidationRows:
 
 
 def arms(base: SurrogateSettings) -> dict[str, SurrogateSettings | None]:
-    """Arm name -> settings (None: pool labels only, no validation rows)."""
+    """Arm name -> settings (None: pool labels only, no validation rows). ``core`` is the
+    core's defaults (trees: validation rows share a total weight of 3,000; temperature:
+    100); each other arm changes one of the two weights."""
     return {
         "pool_only": None,
-        "equal": replace(base, validation_weight=math.inf),
-        "weight_1000": replace(base, validation_weight=1000.0),
-        "weight_300": replace(base, validation_weight=300.0),
-        "weight_100": replace(base, validation_weight=100.0),
-        "indicator_equal": replace(base, validation_weight=math.inf, pool_indicator=True),
-        "indicator_300": replace(base, validation_weight=300.0, pool_indicator=True),
-        "weight_300_temp_val": replace(
-            base, validation_weight=300.0, temperature_min_pool_labels=10**9
-        ),
-        "equal_temp_val": replace(
-            base, validation_weight=math.inf, temperature_min_pool_labels=10**9
-        ),
-        "weight_1000_temp_val": replace(
-            base, validation_weight=1000.0, temperature_min_pool_labels=10**9
-        ),
-        "weight_3000": replace(base, validation_weight=3000.0),
-        "weight_3000_temp_weight_300": replace(
-            base, validation_weight=3000.0, temperature_validation_weight=300.0
-        ),
-        "weight_3000_temp_weight_100": replace(
-            base, validation_weight=3000.0, temperature_validation_weight=100.0
-        ),
-        "weight_3000_temp_from_200": replace(
-            base, validation_weight=3000.0, temperature_min_pool_labels=200
-        ),
+        "core": base,
+        "equal": replace(base, validation_weight=math.inf, temperature_validation_weight=math.inf),
+        "trees_1000": replace(base, validation_weight=1000.0),
+        "trees_300": replace(base, validation_weight=300.0),
+        "trees_100": replace(base, validation_weight=100.0),
+        "temperature_validation_only": replace(base, temperature_validation_weight=1e9),
+        "temperature_pool_first": replace(base, temperature_validation_weight=1e-6),
     }
 
 

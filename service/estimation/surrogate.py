@@ -23,12 +23,13 @@ E[(L - g)^2] = mean over members of (E[L^2] - g^2) + variance over members of g.
 
 Validation rows (``ValidationRows``): labeled rows from outside the pool (the team's
 validation split, or out-of-fold outputs on its training data) join the pool labels in
-every member's training set. They do not depend on the draws, so a surrogate fitted on
-them is as predictable as the cold start (docs/estimation.md). Pool labels describe the
-pool and come to dominate as they accrue: the validation rows share a fixed total weight
-(``SurrogateSettings.validation_weight``), and the temperature is fitted on the pool labels
-once there are ``temperature_min_pool_labels`` of them, on the validation rows before
-(benchmarks/experiments/NOTES.md, "Validation rows", has the measurements behind both).
+the temperature fit and in every member's training set. They do not depend on the draws,
+so a surrogate fitted on them is as predictable as the cold start (docs/estimation.md).
+Pool labels describe the pool and come to dominate as they accrue: a pool label weighs 1
+and the validation rows share a fixed total weight, ``validation_weight`` (3,000) in the
+trees and ``temperature_validation_weight`` (100) in the temperature, so the temperature
+follows the pool labels from about a hundred of them on and the trees from a few
+thousand (benchmarks/experiments/NOTES.md, "Validation rows", has the measurements).
 At most ``max_validation_rows`` of them are used (a seeded subsample beyond).
 
 Refit cost is bounded: at most ``max_training_rows`` labels and ``max_validation_rows``
@@ -125,17 +126,13 @@ class SurrogateSettings:
     # -- validation rows (used only when a fit is given ``ValidationRows``) --------------
     #: At most this many validation rows per fit (a seeded subsample beyond).
     max_validation_rows: int = 5_000
-    #: Total weight the validation rows share (each row min(1, this / rows used); a pool
-    #: label weighs 1), so pool labels outweigh them once there are more than this many.
+    #: Total weight the validation rows share in the trees (each row min(1, this / rows
+    #: used); a pool label weighs 1): pool labels outweigh them beyond this many.
     #: ``math.inf`` gives every validation row the weight of a pool label.
-    validation_weight: float = 300.0
-    #: Append a "from the pool" column (1 for pool labels and scored items, 0 for
-    #: validation rows) that the trees can split on.
-    pool_indicator: bool = False
-    #: With validation rows, the temperature is fitted on the pool labels from this many
-    #: on, on the validation rows before.
-    temperature_min_pool_labels: int = 30
-    temperature_validation_weight: float | None = None
+    validation_weight: float = 3000.0
+    #: The same for the temperature fit: pool labels set the temperature from about this
+    #: many on, the validation rows before.
+    temperature_validation_weight: float = 100.0
 
     def __post_init__(self) -> None:
         for name in (
@@ -148,7 +145,6 @@ class SurrogateSettings:
             "num_threads",
             "out_of_bag_patience",
             "max_validation_rows",
-            "temperature_min_pool_labels",
         ):
             value = getattr(self, name)
             if not isinstance(value, int) or value < 1:
@@ -161,11 +157,13 @@ class SurrogateSettings:
             raise ValueError(f"learning_rate = {describe(self.learning_rate)}, must be in (0, 1].")
         if not (self.lambda_l2 >= 0.0):
             raise ValueError(f"lambda_l2 = {describe(self.lambda_l2)}, must be >= 0.")
-        if not (self.validation_weight > 0.0):
-            raise ValueError(
-                f"validation_weight = {describe(self.validation_weight)}, must be > 0 "
-                "(math.inf: every validation row weighs as much as a pool label)."
-            )
+        for name in ("validation_weight", "temperature_validation_weight"):
+            value = getattr(self, name)
+            if not (value > 0.0):
+                raise ValueError(
+                    f"{name} = {describe(value)}, must be > 0 (math.inf: every validation "
+                    "row weighs as much as a pool label)."
+                )
 
 
 @dataclass(frozen=True)
@@ -209,7 +207,6 @@ class Surrogate:
         temperature: float = 1.0,
         validation_count: int = 0,
         validation_used: int = 0,
-        pool_indicator: bool = False,
     ) -> None:
         self.spec = spec
         self.version = int(version)
@@ -221,7 +218,6 @@ class Surrogate:
         self.temperature = float(temperature)
         self.validation_count = int(validation_count)
         self.validation_used = int(validation_used)
-        self._pool_indicator = bool(pool_indicator)
 
     def __repr__(self) -> str:
         return (
@@ -242,7 +238,7 @@ class Surrogate:
         n = out.shape[0]
         if self.is_cold_start:
             return _cold_scores(self.spec, out)
-        x = _design(features, out, self._feature_dim, indicator=self._pool_indicator)
+        x = _design(features, out, self._feature_dim)
         if x.shape[0] != n:
             raise ValueError(f"features has {x.shape[0]} rows, must match outputs ({n}).")
         firsts, seconds = [], []
@@ -280,7 +276,7 @@ class Surrogate:
         out = self.spec.check_outputs(outputs)
         if self.is_cold_start:
             return out.copy()
-        x = _design(features, out, self._feature_dim, indicator=self._pool_indicator)
+        x = _design(features, out, self._feature_dim)
         init = _log_init(out, self.temperature)
         members = [
             _class_probabilities(b, x, out, self._seen_classes, init) for b in self._boosters
@@ -303,7 +299,6 @@ class Surrogate:
             "temperature": self.temperature,
             "validation_count": self.validation_count,
             "validation_used": self.validation_used,
-            "pool_indicator": self._pool_indicator,
             "boosters": [b.model_to_string() for b in self._boosters],
             "variance_boosters": [b.model_to_string() for b in self._variance_boosters],
         }
@@ -345,7 +340,6 @@ class Surrogate:
             # Envelopes written before validation rows existed lack these keys.
             validation_count=int(envelope.get("validation_count", 0)),
             validation_used=int(envelope.get("validation_used", 0)),
-            pool_indicator=bool(envelope.get("pool_indicator", False)),
         )
 
 
@@ -402,24 +396,14 @@ def worst_squared_deviation(
 
 
 def _design(
-    features: object,
-    outputs: np.ndarray,
-    feature_dim: int,
-    *,
-    indicator: bool = False,
-    from_pool: bool = True,
-    name: str = "features",
+    features: object, outputs: np.ndarray, feature_dim: int, *, name: str = "features"
 ) -> np.ndarray:
-    """The trees' inputs: features, model outputs and, with ``indicator``, a "from the
-    pool" column (1 for pool rows, 0 for validation rows)."""
+    """The trees' inputs: features, then the model's outputs."""
     x = check_finite_array(name, features, ndim=2)
     if feature_dim >= 0 and x.shape[1] != feature_dim:
         raise ValueError(f"{name} has {x.shape[1]} columns, surrogate was fitted on {feature_dim}.")
     columns = outputs if outputs.ndim == 2 else outputs[:, None]
-    parts = [x, columns]
-    if indicator:
-        parts.append(np.full((x.shape[0], 1), 1.0 if from_pool else 0.0))
-    return np.hstack(parts)
+    return np.hstack([x, columns])
 
 
 def _log_init(outputs: np.ndarray, temperature: float = 1.0) -> np.ndarray:
@@ -437,7 +421,8 @@ def _fit_temperature(
     Temperature scaling ("On Calibration of Modern Neural Networks", ICML 2017) needs one
     parameter, so it corrects an over- or under-confident model from a handful of labels.
     The penalty (log T)^2 / (2 * 0.5^2) (a log-normal prior around T = 1, our choice) keeps
-    T near 1 until the labels insist.
+    T near 1 until the labels insist. ``weight``: per-row weights of the likelihood (pool
+    labels 1, validation rows their share), None for all 1.
     """
     grid = np.exp(np.linspace(np.log(0.25), np.log(20.0), 97))
     logs = np.log(np.clip(outputs, CROSS_ENTROPY_CLIP, 1.0))
@@ -653,8 +638,7 @@ def _fit_with_validation(
 ) -> Surrogate:
     """Pool labels (out, y; features checked by the caller) plus validation rows."""
     n = out.shape[0]
-    indicator = settings.pool_indicator
-    x = _design(features, out, feature_dim, indicator=indicator)
+    x = _design(features, out, feature_dim)
     rng = np.random.default_rng(seed)
     if n > settings.max_training_rows:
         keep = np.sort(rng.choice(n, size=settings.max_training_rows, replace=False))
@@ -671,8 +655,6 @@ def _fit_with_validation(
         _rows(validation.features, rows),
         v_out,
         feature_dim,
-        indicator=indicator,
-        from_pool=False,
         name="validation features",
     )
     if v_x.shape[0] != used:
@@ -689,22 +671,18 @@ def _fit_with_validation(
             validation_used=used,
         )
     temperature = 1.0
-    per_row = min(1.0, settings.validation_weight / used)
-    weight = np.concatenate([np.ones(n), np.full(used, per_row)])
     if spec.is_classification:
         # The model's calibration on the pool is what matters; the validation rows stand
-        # in for it until the pool labels can say.
-        if settings.temperature_validation_weight is not None:
-            share = min(1.0, settings.temperature_validation_weight / used)
-            temperature = _fit_temperature(
-                np.concatenate([out, v_out]),
-                np.concatenate([y, v_y]),
-                np.concatenate([np.ones(n), np.full(used, share)]),
-            )
-        elif n >= settings.temperature_min_pool_labels:
-            temperature = _fit_temperature(out, y)
-        else:
-            temperature = _fit_temperature(v_out, v_y)
+        # in for it until the pool labels can say (a small total weight: one parameter is
+        # pinned down by a hundred labels, and it moved the plug-in's bias most).
+        share = min(1.0, settings.temperature_validation_weight / used)
+        temperature = _fit_temperature(
+            np.concatenate([out, v_out]),
+            np.concatenate([y, v_y]),
+            np.concatenate([np.ones(n), np.full(used, share)]),
+        )
+    per_row = min(1.0, settings.validation_weight / used)
+    weight = np.concatenate([np.ones(n), np.full(used, per_row)])
     boosters, variance_boosters, seen = _fit_members(
         spec,
         np.vstack([x, v_x]),
@@ -734,7 +712,6 @@ def _fit_with_validation(
         temperature=temperature,
         validation_count=given,
         validation_used=used,
-        pool_indicator=indicator,
     )
 
 

@@ -94,7 +94,10 @@ def test_status_shows_counts_surrogate_and_estimate(
     assert lines["pool"] == "pools/digits"
     assert lines["items"] == f"{len(labeled_digits.item_ids):,}"
     assert lines["draws"].startswith(f"{pool.draw_count:,} (labeled 200, pending 0, skipped 0)")
-    assert lines["surrogate"] == f"version {pool.surrogate_version}"
+    assert lines["surrogate"] == (
+        f"version {pool.surrogate_version}, fitted on {pool.surrogate_label_count:,} pool labels"
+    )
+    assert lines["validation"] == "none"
     est = admin.get_estimate("digits")
     assert lines["estimate"].startswith(f"{est.risk:.4f} ± {(est.upper - est.lower) / 2:.4f}")
     assert "scanner-a" in done.stdout and "scanner-b" in done.stdout

@@ -48,6 +48,13 @@ def test_demo_runs_through_and_prints_the_true_risk_of_the_hidden_labels(tmp_pat
     assert summary["lower"] <= summary["estimate"] <= summary["upper"]
     assert f"labels used: {summary['labels_used']} (plus" in done.stdout
     assert "random sampling would need about" in done.stdout
+    # The validation split was uploaded first and taught the surrogate; the same traffic was
+    # labeled again without it for the comparison.
+    assert summary["validation_items"] == len(scenario.validation_labels) > 0
+    assert summary["surrogate_version"] >= 1
+    plain = summary["without_validation"]
+    assert 0 < plain["labels_used"] <= 200 + 20
+    assert f"without validation items: {plain['labels_used']} labels used" in done.stdout
     assert "the textbook sample-size formula for a proportion" in done.stdout
     assert "[" in done.stdout and "labels | estimate" in done.stdout  # progress line
     png, page = Path(summary["report_png"]), Path(summary["report_html"])

@@ -39,6 +39,7 @@ _PUBLIC = {
 
 _CLIENT_METHODS = {
     "acquire",
+    "add_validation",
     "check_gate",
     "close",
     "create_pool",
@@ -77,6 +78,7 @@ def test_every_rpc_of_the_contract_has_a_client_method() -> None:
         "ListPools": "list_pools",
         "DeletePool": "delete_pool",
         "IngestItems": "ingest",
+        "AddValidationItems": "add_validation",
         "AcquireItems": "acquire",
         "SubmitLabels": "submit_labels",
         "ReleaseItems": "release",

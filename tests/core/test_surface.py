@@ -20,6 +20,7 @@ _ADDED = {
     "empirical_bernstein_path", "BALANCED_MIN_LABELS", "BET_TRUNCATION", "MAX_LABELS_HINT",
     "PROBABILITY_SUM_TOLERANCE", "concatenate_scores",
     "worst_squared_deviation",
+    "ValidationRows",  # docs/core-api.md, surrogate.py (validation items)
 }  # fmt: skip
 
 
