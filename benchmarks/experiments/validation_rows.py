@@ -18,6 +18,11 @@ validation rows only or on the pool labels as soon as there are any.
 
     .venv/bin/python benchmarks/experiments/validation_rows.py
     .venv/bin/python benchmarks/experiments/validation_rows.py --scenarios digits_weak_tree
+    .venv/bin/python benchmarks/experiments/validation_rows.py --timing-only
+
+The fit-time check (also appended to every run): a fit given 100,000 validation rows
+(synthetic, 10 classes, 32 features) and 1,000 pool labels, at several caps
+(``max_validation_rows``), against the fit on the pool labels alone.
 """
 
 from __future__ import annotations
@@ -55,6 +60,8 @@ from benchmarks.labels import surrogate_settings  # noqa: E402
 from benchmarks.scenarios import SCENARIO_NAMES, Scenario, build_scenario  # noqa: E402
 from leadline.service.estimation import (  # noqa: E402
     DEFAULT_FLOOR,
+    LossKind,
+    LossSpec,
     SurrogateSettings,
     ValidationRows,
     cold_start_surrogate,
@@ -183,13 +190,61 @@ def arms(base: SurrogateSettings) -> dict[str, SurrogateSettings | None]:
     }
 
 
+def fit_seconds(caps: Sequence[int] = (5_000, 10_000, 20_000)) -> list[tuple[str, float]]:
+    """Seconds of one fit (one thread) given 100,000 validation rows, per cap."""
+    rng = np.random.default_rng(0)
+    classes, width = 10, 32
+
+    def rows(n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        x = rng.normal(size=(n, width))
+        logits = x[:, :classes] + rng.normal(size=(n, classes))
+        p = np.exp(logits)
+        p /= p.sum(axis=1, keepdims=True)
+        y = (p.cumsum(axis=1) > rng.random((n, 1))).argmax(axis=1)
+        return x, p, y
+
+    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=classes)
+    xv, pv, yv = rows(100_000)
+    xp, pp, yp = rows(1_000)
+    validation = ValidationRows(features=xv, outputs=pv, labels=yv)
+    times = []
+    started = time.perf_counter()
+    fit_surrogate(spec, xp, pp, yp, version=1, seed=0, settings=surrogate_settings())
+    times.append(("1,000 pool labels only", time.perf_counter() - started))
+    for cap in caps:
+        settings = replace(surrogate_settings(), max_validation_rows=cap)
+        started = time.perf_counter()
+        fit_surrogate(spec, xp, pp, yp, version=1, seed=0, settings=settings, validation=validation)
+        times.append((f"+ 100,000 validation rows, cap {cap:,}", time.perf_counter() - started))
+    return times
+
+
+def _timing_text(times: list[tuple[str, float]]) -> str:
+    lines = "; ".join(f"{what}: {seconds:.2f} s" for what, seconds in times)
+    return (
+        "Fit time, 10 classes, 32 features, one thread (synthetic rows; the default cap is "
+        f"{SurrogateSettings().max_validation_rows:,}): {lines}.\n"
+    )
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--scenarios", nargs="+", choices=SCENARIO_NAMES, default=None)
     parser.add_argument("--arms", nargs="+", default=None)
     parser.add_argument("--label-counts", nargs="+", type=int, default=[0, 30, 100, 300])
     parser.add_argument("--seeds", type=int, default=3)
+    parser.add_argument(
+        "--timing-only",
+        action="store_true",
+        help="only the fit-time check, appended to the existing VALIDATION_ROWS.md",
+    )
     args = parser.parse_args(argv)
+    if args.timing_only:
+        text = _timing_text(fit_seconds())
+        previous = _OUT.read_text() if _OUT.exists() else ""
+        _OUT.write_text(previous + "\n" + text)
+        print(text)
+        return 0
     started = time.perf_counter()
     all_arms = arms(surrogate_settings())
     chosen = {k: v for k, v in all_arms.items() if args.arms is None or k in args.arms}
@@ -241,6 +296,7 @@ def main(argv: Sequence[str] | None = None) -> int:
                 bias[arm].setdefault(m, {})[name] = float(np.mean(per_arm_bias[arm]))
         print(f"{name} done ({time.perf_counter() - started:.0f} s)", flush=True)
     text = _tables(cost, bias, seconds, names, args, started, argv)
+    text += "\n" + _timing_text(fit_seconds())
     _OUT.write_text(text)
     print(text)
     return 0
