@@ -99,7 +99,8 @@ class IngestResult:
     duplicates: int = 0
     rejected: int = 0
     errors: list[leadline_pb2.ItemError] = field(default_factory=list)
-    item_count: int = 0  # items in the pool after the last message
+    # items in the pool after the last message (add_validation: validation items)
+    item_count: int = 0
     messages: int = 0  # ItemBatch messages sent
 
 
