@@ -589,7 +589,7 @@ def fit_surrogate(
     if validation is not None and len(validation):
         return _fit_with_validation(
             spec,
-            features,
+            x,
             out,
             y,
             validation,
@@ -626,7 +626,7 @@ def fit_surrogate(
 
 def _fit_with_validation(
     spec: LossSpec,
-    features: object,
+    x: np.ndarray,
     out: np.ndarray,
     y: np.ndarray,
     validation: ValidationRows,
@@ -636,9 +636,8 @@ def _fit_with_validation(
     seed: int,
     settings: SurrogateSettings,
 ) -> Surrogate:
-    """Pool labels (out, y; features checked by the caller) plus validation rows."""
+    """Pool labels (design x, outputs, labels: checked by the caller) plus validation rows."""
     n = out.shape[0]
-    x = _design(features, out, feature_dim)
     rng = np.random.default_rng(seed)
     if n > settings.max_training_rows:
         keep = np.sort(rng.choice(n, size=settings.max_training_rows, replace=False))
