@@ -557,6 +557,7 @@ def _print_summary(out: TextIO, s: DemoSummary) -> None:
             f"  without validation items: {plain.labels_used} labels used (gate "
             f"{plain.verdict}, surrogate version {plain.surrogate_version}); {needed}",
         )
+        _say(out, "    (one run of random draws per pool: expect the counts to vary run to run)")
     _say(
         out,
         "    (random sampling: n0 = z^2 p(1-p) / h^2 with p the true risk, h the half-width, "
