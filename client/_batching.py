@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from leadline.client._errors import invalid_argument
 from leadline.v1 import leadline_pb2
 
 __all__ = [
@@ -54,7 +55,7 @@ class IngestColumns:
         segments: Sequence[str] | np.ndarray | None = None,
         event_time_ms: Sequence[int] | np.ndarray | None = None,
     ) -> IngestColumns:
-        """Check shapes and lengths; ValueError names the argument, its shape and the rule.
+        """Check shapes and lengths; InvalidRequest names the argument, its shape and the rule.
 
         Values (finite numbers, probabilities summing to 1, id rules) are the server's to
         check: it does so once for every client.
@@ -63,13 +64,13 @@ class IngestColumns:
         n = len(ids)
         feats = np.asarray(features, dtype=np.float32)
         if feats.ndim != 2 or feats.shape[0] != n:
-            raise ValueError(
+            raise invalid_argument(
                 f"features has shape {feats.shape}, must be (n, feature_dim) with n == "
                 f"len(item_ids) == {n}."
             )
         outs = np.asarray(outputs, dtype=np.float32)
         if outs.ndim not in (1, 2) or outs.shape[0] != n:
-            raise ValueError(
+            raise invalid_argument(
                 f"outputs has shape {outs.shape}, must be (n, num_classes) for "
                 f"classification or (n,) for regression, with n == len(item_ids) == {n}."
             )
@@ -79,7 +80,7 @@ class IngestColumns:
         if event_time_ms is not None:
             times = np.asarray(event_time_ms, dtype=np.int64)
             if times.shape != (n,):
-                raise ValueError(
+                raise invalid_argument(
                     f"event_time_ms has shape {times.shape}, must be ({n},): one per item."
                 )
         return cls(ids, feats, outs, refs, segs, times)
@@ -92,7 +93,9 @@ class IngestColumns:
             return None
         strings = [str(value) for value in values]
         if len(strings) != n:
-            raise ValueError(f"{name} has {len(strings)} entries, must have {n}: one per item.")
+            raise invalid_argument(
+                f"{name} has {len(strings)} entries, must have {n}: one per item."
+            )
         return strings
 
     def __len__(self) -> int:
@@ -171,9 +174,9 @@ def plan_batches(row_bytes: np.ndarray, *, max_rows: int, max_bytes: int) -> lis
     A single row larger than the budget gets a batch of its own (the server then decides).
     """
     if max_rows < 1:
-        raise ValueError(f"max_rows == {max_rows}, must be >= 1.")
+        raise invalid_argument(f"max_rows == {max_rows}, must be >= 1.")
     if max_bytes <= _MESSAGE_OVERHEAD:
-        raise ValueError(f"max_bytes == {max_bytes}, must be > {_MESSAGE_OVERHEAD}.")
+        raise invalid_argument(f"max_bytes == {max_bytes}, must be > {_MESSAGE_OVERHEAD}.")
     budget = max_bytes - _MESSAGE_OVERHEAD
     slices: list[slice] = []
     start, n = 0, len(row_bytes)

@@ -1,17 +1,18 @@
 """The typed leadline client: one method per RPC of the v1 contract.
 
-Every call carries a deadline, the bearer token, and waits for the channel to be ready
-(so a server that restarts is waited for, up to the deadline). Calls that fail with
-UNAVAILABLE are retried with exponential backoff by gRPC itself (service config); every
-write carries a request id fixed before the first attempt, so a retry is answered from
-the first result on the server and never applied twice.
+Every call carries a deadline and the bearer token. Until the server has answered once,
+a call fails within a few seconds when nothing answers at the target (with what happened
+and what to do); after that every call waits for the channel to be ready, so a server
+that restarts is waited for, up to the deadline. Calls that fail with UNAVAILABLE are
+retried with exponential backoff by gRPC itself (service config); every write carries a
+request id fixed before the first attempt, so a retry is answered from the first result
+on the server and never applied twice.
 """
 
 from __future__ import annotations
 
 import json
 import logging
-import math
 import uuid
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -28,9 +29,11 @@ from leadline.client._batching import (
     build_validation_batches,
 )
 from leadline.client._enums import parse_enum
-from leadline.client._errors import LeadlineError, error_from_rpc
+from leadline.client._errors import LeadlineError, error_from_rpc, invalid_argument, unreachable
+from leadline.client._results import Estimate, GateResult
 from leadline.client._tls import TlsConfig
 from leadline.v1 import leadline_pb2, leadline_pb2_grpc
+from leadline.v1.rules import max_risk_problem
 
 __all__ = ["Client", "IngestResult", "Skip", "pool_name"]
 
@@ -77,11 +80,28 @@ _T = TypeVar("_T")
 
 
 def pool_name(pool: str) -> str:
-    """'pools/{id}' for a pool id or a pool name; ValueError for an empty value."""
+    """'pools/{id}' for a pool id or a pool name; InvalidRequest for an empty value."""
+    if not isinstance(pool, str):
+        raise invalid_argument(f"pool = {pool!r}: must be a pool id or 'pools/{{pool_id}}'.")
     pool = pool.strip()
     if not pool or pool == "pools/":
-        raise ValueError(f"pool == {pool!r}, must be a pool id or 'pools/{{pool_id}}'.")
+        raise invalid_argument(f"pool = {pool!r}: must be a pool id or 'pools/{{pool_id}}'.")
     return pool if pool.startswith("pools/") else f"pools/{pool}"
+
+
+def _check_target(target: str) -> str:
+    """HOST:PORT (or a gRPC target with a scheme, e.g. 'unix:/path', 'dns:///host:port')."""
+    if not isinstance(target, str) or not target.strip():
+        raise invalid_argument(f"target = {target!r}: must be HOST:PORT, e.g. localhost:50051.")
+    target = target.strip()
+    host, sep, port = target.rpartition(":")
+    has_scheme = target.startswith(("unix:", "unix-abstract:", "dns:", "ipv4:", "ipv6:"))
+    if not has_scheme and not (sep and host and port.isdigit() and int(port) <= 65535):
+        raise invalid_argument(
+            f"target = {target!r}: must be HOST:PORT with PORT in 0..65535, e.g. "
+            "localhost:50051 (gRPC would otherwise guess port 443)."
+        )
+    return target
 
 
 @dataclass(frozen=True)
@@ -114,12 +134,19 @@ class Client:
     ``tls`` is None or False for a plain channel (loopback or a trusted network only),
     True for TLS with the system's roots, or a :class:`TlsConfig`. ``timeout`` is the
     deadline in seconds of every call unless a method is given its own; ``ingest_timeout``
-    is the deadline of each ingest message. ``wait_for_ready`` makes calls wait for the
-    server (up to the deadline) instead of failing at once while it is down.
+    is the deadline of each ingest message.
 
-    Methods raise :class:`~leadline.client.LeadlineError` subclasses on failure and
-    ValueError for arguments that cannot form a request. Use as a context manager or call
-    ``close()``.
+    Until the server has answered once, the first call checks within ``connect_timeout``
+    seconds that a server answers at ``target`` and raises
+    :class:`~leadline.client.Unavailable` (target, what happened, what to do) when none
+    does, instead of waiting out the whole deadline. After that ``wait_for_ready`` makes
+    calls wait for the server (up to the deadline) while it restarts, instead of failing
+    at once. ``connect_timeout=None`` skips the first check (every call then waits up to
+    its deadline, e.g. for a server that is still starting).
+
+    Methods raise :class:`~leadline.client.LeadlineError` subclasses on failure, including
+    :class:`~leadline.client.InvalidRequest` for arguments refused before anything is
+    sent. Use as a context manager or call ``close()``.
     """
 
     def __init__(
@@ -131,17 +158,27 @@ class Client:
         timeout: float = 30.0,
         ingest_timeout: float = 120.0,
         wait_for_ready: bool = True,
+        connect_timeout: float | None = 5.0,
         max_batch_rows: int = 5000,
         max_batch_bytes: int = _MIB,
     ) -> None:
-        if not target:
-            raise ValueError("target == '', must be 'host:port'.")
-        if timeout <= 0 or ingest_timeout <= 0:
-            raise ValueError(f"timeout == {timeout}, ingest_timeout == {ingest_timeout}; both > 0.")
+        target = _check_target(target)
+        for name, value in (
+            ("timeout", timeout),
+            ("ingest_timeout", ingest_timeout),
+            ("connect_timeout", 1.0 if connect_timeout is None else connect_timeout),
+        ):
+            if isinstance(value, bool) or not (isinstance(value, int | float) and value > 0):
+                raise invalid_argument(f"{name} = {value!r}: must be a number of seconds > 0.")
         self.target = target
         self.timeout = timeout
         self.ingest_timeout = ingest_timeout
         self.wait_for_ready = wait_for_ready
+        self.connect_timeout = connect_timeout
+        # Set once a call got any answer from a server (even a refusal): from then on a
+        # failing connection means a restart to wait for, not a wrong address.
+        self._reached = False
+        self._tls = not (tls is None or tls is False)
         self.max_batch_rows = max_batch_rows
         self.max_batch_bytes = max_batch_bytes
         self._metadata: tuple[tuple[str, str], ...] = (
@@ -177,6 +214,37 @@ class Client:
         """Close the channel; further calls fail."""
         self._channel.close()
 
+    def _check_reachable(self, method: str) -> None:
+        """Before the first answer: one health check that fails fast when nobody answers.
+
+        The health service needs no token; any answer at all (even UNIMPLEMENTED from a
+        server without it) proves a server listens. Connection refused, an unknown host
+        name or a failed TLS handshake come back as UNAVAILABLE within a few seconds
+        (gRPC's own retries included); silence ends at ``connect_timeout``.
+        """
+        if self._reached or self.connect_timeout is None:
+            return
+        try:
+            self._health.Check(
+                health_pb2.HealthCheckRequest(),
+                timeout=self.connect_timeout,
+                wait_for_ready=False,
+            )
+        except grpc.RpcError as error:
+            code = error.code() if isinstance(error, grpc.Call) else None
+            if code in (grpc.StatusCode.UNAVAILABLE, grpc.StatusCode.DEADLINE_EXCEEDED):
+                details = error.details() if isinstance(error, grpc.Call) else str(error)
+                if code == grpc.StatusCode.DEADLINE_EXCEEDED:
+                    details = "deadline"
+                raise unreachable(
+                    self.target,
+                    details or "",
+                    tls=self._tls,
+                    wait=self.connect_timeout,
+                    method=method,
+                ) from None
+        self._reached = True
+
     def _call(
         self,
         method: str,
@@ -186,15 +254,19 @@ class Client:
         timeout: float | None,
         wait_for_ready: bool | None = None,
     ) -> _T:
+        self._check_reachable(method)
+        deadline = self.timeout if timeout is None else timeout
         try:
             return rpc(
                 request,
-                timeout=self.timeout if timeout is None else timeout,
+                timeout=deadline,
                 metadata=self._metadata,
                 wait_for_ready=self.wait_for_ready if wait_for_ready is None else wait_for_ready,
             )
         except grpc.RpcError as error:
-            raise error_from_rpc(error, method=method) from None
+            raise error_from_rpc(
+                error, method=method, target=self.target, timeout=deadline
+            ) from None
 
     # -- health ---------------------------------------------------------------------------
 
@@ -338,7 +410,7 @@ class Client:
         make the whole call repeatable: the same arguments and ``request_id`` give the same
         per-message ids, so a repeat after a crash applies nothing twice.
 
-        Raises ValueError for mismatched shapes before anything is sent. A message the
+        Raises InvalidRequest for mismatched shapes before anything is sent. A message the
         server refuses raises; the messages before it stay accepted (the exception does not
         say how many: repeat with the same ``request_id`` to finish the job).
         """
@@ -512,8 +584,9 @@ class Client:
         start_time_ms: int = 0,
         end_time_ms: int = 0,
         timeout: float | None = None,
-    ) -> leadline_pb2.Estimate:
-        """The risk estimate with its bounds; 0 / None / "" keep the pool's default."""
+    ) -> Estimate:
+        """The risk estimate with its two-sided intervals; 0 / None / "" keep the pool's
+        defaults."""
         request = leadline_pb2.GetEstimateRequest(
             pool=pool_name(pool),
             confidence=confidence,
@@ -522,7 +595,8 @@ class Client:
             start_time_ms=start_time_ms,
             end_time_ms=end_time_ms,
         )
-        return self._call("GetEstimate", self._estimates.GetEstimate, request, timeout=timeout)
+        reply = self._call("GetEstimate", self._estimates.GetEstimate, request, timeout=timeout)
+        return Estimate.from_message(reply)
 
     def check_gate(
         self,
@@ -536,13 +610,17 @@ class Client:
         start_time_ms: int = 0,
         end_time_ms: int = 0,
         timeout: float | None = None,
-    ) -> leadline_pb2.GateResult:
+    ) -> GateResult:
         """PASS / FAIL / UNDECIDED for "risk < max_risk at confidence".
 
-        ``bound``: 'anytime' (the server's default, safe to poll) or 'fixed-time'.
+        ``bound``: 'anytime' (the server's default, safe to poll) or 'fixed-time'. The
+        result's ``verdict`` is a :class:`~leadline.client.Verdict`; its bounds are
+        one-sided at the confidence (see :class:`~leadline.client.GateResult`).
+        ``max_risk`` must lie in (0, B), B the pool's largest possible loss.
         """
-        if not math.isfinite(max_risk):
-            raise ValueError(f"max_risk == {max_risk}, must be a finite number.")
+        problem = max_risk_problem(max_risk)
+        if problem is not None:
+            raise invalid_argument(problem, method="CheckGate")
         request = leadline_pb2.CheckGateRequest(
             pool=pool_name(pool),
             max_risk=max_risk,
@@ -553,7 +631,8 @@ class Client:
             start_time_ms=start_time_ms,
             end_time_ms=end_time_ms,
         )
-        return self._call("CheckGate", self._estimates.CheckGate, request, timeout=timeout)
+        reply = self._call("CheckGate", self._estimates.CheckGate, request, timeout=timeout)
+        return GateResult.from_message(reply, max_risk=float(max_risk))
 
     def iter_draws(
         self, pool: str, *, page_size: int = 0, timeout: float | None = None
@@ -585,8 +664,9 @@ class Client:
         max_points: int = 0,
         segment: str = "",
         timeout: float | None = None,
-    ) -> list[leadline_pb2.Estimate]:
-        """Estimates after the first k labeled draws for up to ``max_points`` values of k."""
+    ) -> list[Estimate]:
+        """Estimates after the first k labeled draws for up to ``max_points`` values of k,
+        each with two-sided intervals at ``confidence``."""
         request = leadline_pb2.GetEstimateTraceRequest(
             pool=pool_name(pool),
             confidence=confidence,
@@ -597,14 +677,14 @@ class Client:
         trace = self._call(
             "GetEstimateTrace", self._estimates.GetEstimateTrace, request, timeout=timeout
         )
-        return list(trace.points)
+        return [Estimate.from_message(point) for point in trace.points]
 
 
 def _submission(assignment_id: str, outcome: Outcome) -> leadline_pb2.LabelSubmission:
     if isinstance(outcome, Skip):
         return leadline_pb2.LabelSubmission(assignment_id=assignment_id, skip_reason=outcome.reason)
     if isinstance(outcome, bool):
-        raise ValueError(
+        raise invalid_argument(
             f"label for assignment {assignment_id!r} is {outcome!r}; give an int class "
             "label, a float value or Skip(reason)."
         )
@@ -612,7 +692,7 @@ def _submission(assignment_id: str, outcome: Outcome) -> leadline_pb2.LabelSubmi
         return leadline_pb2.LabelSubmission(assignment_id=assignment_id, class_label=int(outcome))
     if isinstance(outcome, float | np.floating):
         return leadline_pb2.LabelSubmission(assignment_id=assignment_id, value=float(outcome))
-    raise ValueError(
+    raise invalid_argument(
         f"label for assignment {assignment_id!r} is {outcome!r} ({type(outcome).__name__}); "
         "give an int class label, a float value or Skip(reason)."
     )

@@ -6,6 +6,7 @@ the proto has ``LOSS_KIND_ZERO_ONE``; the enum's integer value is accepted as we
 
 from __future__ import annotations
 
+from leadline.client._errors import invalid_argument
 from leadline.v1 import leadline_pb2
 
 __all__ = ["enum_name", "parse_enum"]
@@ -38,7 +39,7 @@ def choices(enum_type: str) -> list[str]:
 def parse_enum(enum_type: str, value: str | int | None, *, field: str = "") -> int:
     """The enum number for ``value``; None and "" give 0 (UNSPECIFIED).
 
-    Raises ValueError naming the field, the value and the accepted names.
+    Raises InvalidRequest naming the field, the value and the accepted names.
     """
     if value is None or value == "":
         return 0
@@ -52,8 +53,8 @@ def parse_enum(enum_type: str, value: str | int | None, *, field: str = "") -> i
         full = key if key.startswith(prefix) else prefix + key
         if full in descriptor.values_by_name and not full.endswith("_UNSPECIFIED"):
             return int(descriptor.values_by_name[full].number)
-    raise ValueError(
-        f"{field or label} == {value!r} is not a known {label}; "
+    raise invalid_argument(
+        f"{field or label} = {value!r} is not a known {label}; "
         f"expected one of: {', '.join(choices(enum_type))}."
     )
 

@@ -7,6 +7,8 @@ from pathlib import Path
 
 import grpc
 
+from leadline.client._errors import invalid_argument
+
 __all__ = ["TlsConfig"]
 
 
@@ -27,7 +29,7 @@ class TlsConfig:
 
     def __post_init__(self) -> None:
         if (self.client_certificate is None) != (self.client_key is None):
-            raise ValueError(
+            raise invalid_argument(
                 "client_certificate and client_key must be given together (mutual TLS), "
                 "got only one of them."
             )

@@ -8,6 +8,9 @@ Connection settings come from flags or the environment: ``--target`` /
 ``--tls`` / ``--tls-ca`` / ``--tls-cert`` / ``--tls-key`` for TLS and mutual TLS.
 ``leadline serve`` runs the server itself and takes the server's own flags; ``leadline
 check --data-dir DIR`` checks a server's database (both need the server's dependencies).
+
+Every command names its pool with ``--pool``. ``--json`` prints our own flat JSON (plain
+numbers, lower-case enum words; the keys are listed in the README and kept stable).
 """
 
 from __future__ import annotations
@@ -17,18 +20,22 @@ import csv
 import json
 import logging
 import os
+import re
 import sys
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from importlib import metadata
 from pathlib import Path
 from typing import Any, NoReturn
 
+import grpc
 import numpy as np
-from google.protobuf import json_format
 
 from leadline.client._client import Client, pool_name
 from leadline.client._enums import choices, enum_name
-from leadline.client._errors import LeadlineError
+from leadline.client._errors import AlreadyExists, LeadlineError, Unavailable
+from leadline.client._results import Estimate, GateResult, Verdict
 from leadline.client._tls import TlsConfig
 from leadline.client.export import write_draws_csv
 from leadline.v1 import leadline_pb2
@@ -43,11 +50,48 @@ EXIT_OK = 0
 EXIT_FAIL = 1
 EXIT_UNDECIDED = 2
 EXIT_ERROR = 3
-_GATE_EXIT = {
-    leadline_pb2.VERDICT_PASS: EXIT_PASS,
-    leadline_pb2.VERDICT_FAIL: EXIT_FAIL,
-    leadline_pb2.VERDICT_UNDECIDED: EXIT_UNDECIDED,
+_GATE_EXIT = {Verdict.PASS: EXIT_PASS, Verdict.FAIL: EXIT_FAIL, Verdict.UNDECIDED: EXIT_UNDECIDED}
+
+# The request field (as the server and the client name it in messages) -> the flag that
+# sets it. Errors for a CLI command are told in the command line's own words.
+_FLAGS = {
+    "pool_id": "--pool",
+    "pool": "--pool",
+    "name": "--pool",
+    "pool.task": "--task",
+    "pool.feature_dim": "--features",
+    "pool.num_classes": "--classes",
+    "pool.loss": "--loss",
+    "pool.cost_matrix": "--cost-matrix",
+    "pool.loss_cap": "--loss-cap",
+    "pool.default_mode": "--default-mode",
+    "pool.description": "--description",
+    "pool.selection_floor": "--selection-floor",
+    "pool.default_lease_seconds": "--default-lease-seconds",
+    "pool.default_confidence": "--default-confidence",
+    "pool.refit_every_labels": "--refit-every-labels",
+    "max_risk": "--max-risk",
+    "confidence": "--confidence",
+    "mode": "--mode",
+    "bound": "--bound",
+    "segment": "--segment",
+    "timeout": "--timeout",
+    "target": "--target",
 }
+# Proto enum value names (LOSS_KIND_SQUARED_ERROR, or the bare SQUARED_ERROR) -> CLI words.
+_ENUM_PREFIXES = {
+    "TaskType": "TASK_TYPE_",
+    "LossKind": "LOSS_KIND_",
+    "EstimatorMode": "ESTIMATOR_MODE_",
+    "BoundKind": "BOUND_KIND_",
+}
+_ENUM_WORDS = {
+    key: word
+    for enum_type, prefix in _ENUM_PREFIXES.items()
+    for word in choices(enum_type)
+    for key in (prefix + word.upper().replace("-", "_"), word.upper().replace("-", "_"))
+}
+_HEAD = re.compile(r"(?P<field>[a-z_][a-z0-9_.]*)(?P<sep> = |: | has )")
 
 
 class _UsageError(Exception):
@@ -59,13 +103,20 @@ class _Parser(argparse.ArgumentParser):
         raise _UsageError(f"{self.prog}: {message}")
 
 
+def _version() -> str:
+    try:
+        return metadata.version("leadline")
+    except metadata.PackageNotFoundError:  # running from a source tree without install
+        return "unknown"
+
+
 def _connection_options() -> _Parser:
     common = _Parser(add_help=False)
     group = common.add_argument_group("connection")
     group.add_argument(
         "--target",
-        default=os.environ.get("LEADLINE_TARGET", DEFAULT_TARGET),
-        help="server host:port (env LEADLINE_TARGET; default %(default)s)",
+        default=None,
+        help=f"server HOST:PORT (env LEADLINE_TARGET; default {DEFAULT_TARGET})",
     )
     group.add_argument(
         "--token",
@@ -75,7 +126,11 @@ def _connection_options() -> _Parser:
     )
     group.add_argument("--token-file", type=Path, help="read the bearer token from this file")
     group.add_argument(
-        "--timeout", type=float, default=30.0, help="deadline of each call, seconds (%(default)s)"
+        "--timeout",
+        type=float,
+        default=30.0,
+        help="deadline of each call in seconds (default %(default)s); a server that does "
+        "not answer at all is reported within a few seconds",
     )
     group.add_argument("--tls", action="store_true", help="use TLS with the system's CA roots")
     group.add_argument("--tls-ca", type=Path, help="CA certificate (PEM) to check the server")
@@ -86,6 +141,16 @@ def _connection_options() -> _Parser:
     return common
 
 
+def _pool_option(parser: argparse.ArgumentParser, *, help: str = "pool id or pools/ID") -> None:
+    parser.add_argument("--pool", required=True, help=help)
+
+
+def _json_option(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--json", action="store_true", help="print flat JSON (stable keys, see the README)"
+    )
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The full command-line parser (``serve`` is forwarded before parsing)."""
     common = _connection_options()
@@ -93,6 +158,9 @@ def build_parser() -> argparse.ArgumentParser:
         prog="leadline",
         description="Label-efficient risk estimates and release gates for deployed models.",
         epilog="Exit codes: 0 success, 3 error; gate: 0 PASS, 1 FAIL, 2 UNDECIDED, 3 error.",
+    )
+    parser.add_argument(
+        "--version", action="version", version=f"leadline {_version()}", help="print the version"
     )
     commands = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
 
@@ -107,31 +175,79 @@ def build_parser() -> argparse.ArgumentParser:
 
     pool = commands.add_parser("pool", help="create, list, show or delete pools")
     pool_commands = pool.add_subparsers(dest="pool_command", metavar="ACTION", required=True)
-    create = pool_commands.add_parser("create", parents=[common], help="create a pool")
-    create.add_argument("pool_id", help="new pool id: [a-z][a-z0-9-]{0,62}")
-    create.add_argument("--task", required=True, choices=choices("TaskType"))
-    create.add_argument("--features", type=int, required=True, help="feature vector length")
-    create.add_argument("--classes", type=int, default=0, help="number of classes")
-    create.add_argument("--loss", required=True, choices=choices("LossKind"))
+    create = pool_commands.add_parser(
+        "create",
+        parents=[common],
+        help="create a pool",
+        description="Create a pool. Each flag sets the pool setting named in its help; "
+        "--default-* flags override the server setting of the same name for this pool.",
+    )
+    _pool_option(create, help="new pool id: [a-z][a-z0-9-]{0,62}")
+    create.add_argument(
+        "--task", required=True, choices=choices("TaskType"), help="the model's task (task)"
+    )
+    create.add_argument(
+        "--features", type=int, required=True, help="feature vector length (feature_dim)"
+    )
+    create.add_argument(
+        "--classes", type=int, default=0, help="number of classes, classification (num_classes)"
+    )
+    create.add_argument(
+        "--loss", required=True, choices=choices("LossKind"), help="per-item loss (loss)"
+    )
     create.add_argument(
         "--cost-matrix",
-        help="cost-matrix loss: rows separated by ';', values by ',' (row = predicted)",
+        help="cost-matrix loss: rows separated by ';', values by ',', row = predicted "
+        "(cost_matrix)",
     )
-    create.add_argument("--loss-cap", type=float, default=0.0, help="regression loss cap")
-    create.add_argument("--mode", choices=choices("EstimatorMode"), help="default estimator")
-    create.add_argument("--description", default="")
-    create.add_argument("--selection-floor", type=float, default=0.0)
-    create.add_argument("--lease-seconds", type=int, default=0, help="default lease length")
-    create.add_argument("--confidence", type=float, default=0.0, help="default confidence")
-    create.add_argument("--refit-every", type=int, default=0, help="labels between refits")
-    create.add_argument("--exist-ok", action="store_true", help="an existing pool is fine")
+    create.add_argument(
+        "--loss-cap",
+        type=float,
+        default=0.0,
+        help="regression: losses are clipped to [0, cap] (loss_cap)",
+    )
+    create.add_argument(
+        "--default-mode",
+        choices=choices("EstimatorMode"),
+        help="estimator when a request names none (default_mode; server default balanced)",
+    )
+    create.add_argument("--description", default="", help="free text shown in reports")
+    create.add_argument(
+        "--selection-floor",
+        type=float,
+        default=0.0,
+        help="defensive floor of the selection in (0, 1] (selection_floor; 0 = the server's)",
+    )
+    create.add_argument(
+        "--default-lease-seconds",
+        type=int,
+        default=0,
+        help="lease of an assignment (default_lease_seconds; 0 = the server's)",
+    )
+    create.add_argument(
+        "--default-confidence",
+        type=float,
+        default=0.0,
+        help="confidence when a request gives none (default_confidence; 0 = the server's)",
+    )
+    create.add_argument(
+        "--refit-every-labels",
+        type=int,
+        default=0,
+        help="new labels between surrogate refits (refit_every_labels; 0 = the server's)",
+    )
+    create.add_argument(
+        "--exist-ok",
+        action="store_true",
+        help="a pool with this id that already exists is fine (it is left as it is)",
+    )
     listing = pool_commands.add_parser("list", parents=[common], help="list pools")
-    listing.add_argument("--json", action="store_true", help="print JSON")
+    _json_option(listing)
     show = pool_commands.add_parser("show", parents=[common], help="show one pool")
-    show.add_argument("pool")
-    show.add_argument("--json", action="store_true", help="print JSON")
+    _pool_option(show)
+    _json_option(show)
     delete = pool_commands.add_parser("delete", parents=[common], help="delete a pool")
-    delete.add_argument("pool")
+    _pool_option(delete)
     delete.add_argument("--yes", action="store_true", help="really delete (required)")
 
     validation = commands.add_parser(
@@ -147,7 +263,7 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=argparse.RawDescriptionHelpFormatter,
         description=_VALIDATION_HELP,
     )
-    add.add_argument("--pool", required=True)
+    _pool_option(add)
     add.add_argument("--file", type=Path, required=True, help="rows.npz or rows.csv")
     add.add_argument(
         "--request-id", help="makes a repeat of this upload harmless (same file, same id)"
@@ -156,57 +272,86 @@ def build_parser() -> argparse.ArgumentParser:
     status = commands.add_parser(
         "status", parents=[common], help="pool counts, labels, surrogate and current estimate"
     )
-    status.add_argument("--pool", required=True)
-    status.add_argument("--confidence", type=float, default=0.0)
-    status.add_argument("--mode", choices=choices("EstimatorMode"))
-    status.add_argument("--json", action="store_true", help="print JSON")
+    _pool_option(status)
+    status.add_argument(
+        "--confidence", type=float, default=0.0, help="of the intervals (0 = the pool's default)"
+    )
+    status.add_argument(
+        "--mode", choices=choices("EstimatorMode"), help="estimator (default: the pool's)"
+    )
+    _json_option(status)
 
     gate = commands.add_parser(
         "gate",
         parents=[common],
         help="release gate: exit 0 PASS, 1 FAIL, 2 UNDECIDED, 3 error",
         description="Is the pool's risk below --max-risk at --confidence? Exit 0 PASS, "
-        "1 FAIL, 2 UNDECIDED, 3 error.",
+        "1 FAIL, 2 UNDECIDED, 3 error. The verdict rests on one-sided bounds at "
+        "--confidence: PASS when the upper bound is below --max-risk, FAIL when the lower "
+        "bound is above it.",
     )
-    gate.add_argument("--pool", required=True)
-    gate.add_argument("--max-risk", type=float, required=True)
-    gate.add_argument("--confidence", type=float, default=0.0, help="0 = the pool's default")
+    _pool_option(gate)
+    gate.add_argument(
+        "--max-risk",
+        type=float,
+        required=True,
+        help="threshold, in (0, B) with B the pool's largest possible loss",
+    )
+    gate.add_argument(
+        "--confidence", type=float, default=0.0, help="in (0.5, 1); 0 = the pool's default"
+    )
     gate.add_argument(
         "--bound",
         choices=choices("BoundKind"),
         default="anytime",
         help="anytime (safe to poll, default) or fixed-time (one look only)",
     )
-    gate.add_argument("--mode", choices=choices("EstimatorMode"))
-    gate.add_argument("--segment", default="")
+    gate.add_argument(
+        "--mode", choices=choices("EstimatorMode"), help="estimator (default: the pool's)"
+    )
+    gate.add_argument("--segment", default="", help="decide for this segment only")
     gate.add_argument(
         "--wait",
         type=float,
         default=0.0,
-        help="keep polling while UNDECIDED, up to this many seconds (anytime bound only)",
+        help="keep polling while UNDECIDED (or unreachable), up to this many seconds, "
+        "printing one line per poll (anytime bound only)",
     )
-    gate.add_argument("--interval", type=float, default=30.0, help="seconds between polls")
-    gate.add_argument("--json", action="store_true", help="print JSON")
+    gate.add_argument(
+        "--interval", type=float, default=30.0, help="seconds between polls (%(default)s)"
+    )
+    _json_option(gate)
 
     report = commands.add_parser("report", parents=[common], help="write a PNG + HTML report")
-    report.add_argument("--pool", required=True)
+    _pool_option(report)
     report.add_argument("--out", type=Path, default=Path("reports"), help="output folder")
-    report.add_argument("--confidence", type=float, default=0.0)
-    report.add_argument("--max-risk", type=float, help="also show this gate threshold")
-    report.add_argument("--bound", choices=choices("BoundKind"), default="anytime")
+    report.add_argument(
+        "--confidence", type=float, default=0.0, help="0 = the pool's default confidence"
+    )
+    report.add_argument(
+        "--max-risk", type=float, help="also check this gate threshold and plot its bound"
+    )
+    report.add_argument(
+        "--bound",
+        choices=choices("BoundKind"),
+        default="anytime",
+        help="bound of that gate (default %(default)s)",
+    )
 
     export = commands.add_parser("export", parents=[common], help="draws and labels as CSV")
-    export.add_argument("--pool", required=True)
+    _pool_option(export)
     export.add_argument("--out", default="-", help="CSV file ('-' = standard output)")
 
     demo = commands.add_parser(
         "demo", help="end-to-end demo against a real local server (invented scenario)"
     )
-    demo.add_argument("--out", type=Path, default=Path("reports") / "demo")
-    demo.add_argument("--seed", type=int, default=7)
+    demo.add_argument(
+        "--out", type=Path, default=Path("reports") / "demo", help="folder for the report"
+    )
+    demo.add_argument("--seed", type=int, default=7, help="scenario and draw seed")
     demo.add_argument("--items", type=int, default=20_000, help="pool size")
     demo.add_argument("--budget", type=int, default=800, help="most labels the vendor gives")
-    demo.add_argument("-v", "--verbose", action="store_true")
+    demo.add_argument("-v", "--verbose", action="store_true", help="log progress to stderr")
     return parser
 
 
@@ -315,26 +460,68 @@ def _read_validation_csv(path: Path) -> dict[str, Any]:
     }
 
 
-def _client(args: argparse.Namespace) -> Client:
-    token = args.token or os.environ.get("LEADLINE_TOKEN") or None
+# -- connection -----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Token:
+    value: str | None
+    source: str  # how the user gave it, in CLI words
+
+
+def _token(args: argparse.Namespace) -> _Token:
     if args.token_file is not None:
-        token = args.token_file.read_text(encoding="utf-8").strip()
+        path = args.token_file
+        try:
+            text = path.read_text(encoding="utf-8").strip()
+        except OSError as error:
+            raise _UsageError(
+                f"--token-file {str(path)!r}: cannot read it ({error.strerror or error})."
+            ) from None
+        if not text:
+            raise _UsageError(f"--token-file {str(path)!r} is empty; put the token in it.")
+        return _Token(text, f"--token-file {path}")
+    if args.token:
+        return _Token(args.token, "--token")
+    if os.environ.get("LEADLINE_TOKEN"):
+        return _Token(os.environ["LEADLINE_TOKEN"], "LEADLINE_TOKEN")
+    return _Token(None, "")
+
+
+def _target(args: argparse.Namespace) -> tuple[str, str]:
+    """The target and the words naming where it came from."""
+    if args.target is not None:
+        return args.target, "--target"
+    if "LEADLINE_TARGET" in os.environ:
+        return os.environ["LEADLINE_TARGET"], "LEADLINE_TARGET"
+    return DEFAULT_TARGET, "--target"
+
+
+def _client(args: argparse.Namespace) -> Client:
+    target, target_source = _target(args)
+    args.target_source = target_source
+    token = _token(args)
+    args.token_source = token.source
     tls: TlsConfig | bool = False
     if args.tls_ca or args.tls_cert or args.tls_key or args.tls_server_name:
-        tls = TlsConfig.from_files(
-            ca=args.tls_ca, cert=args.tls_cert, key=args.tls_key, server_name=args.tls_server_name
-        )
+        try:
+            tls = TlsConfig.from_files(
+                ca=args.tls_ca,
+                cert=args.tls_cert,
+                key=args.tls_key,
+                server_name=args.tls_server_name,
+            )
+        except OSError as error:
+            raise _UsageError(
+                f"cannot read {error.filename}: {error.strerror or error} "
+                "(--tls-ca / --tls-cert / --tls-key)."
+            ) from None
     elif args.tls:
         tls = True
-    return Client(args.target, token=token, tls=tls, timeout=args.timeout)
+    return Client(target, token=token.value, tls=tls, timeout=args.timeout)
 
 
-def _as_json(message: object) -> str:
-    return json_format.MessageToJson(
-        message,  # type: ignore[arg-type]
-        preserving_proto_field_name=True,
-        always_print_fields_with_no_presence=True,
-    )
+# -- output ---------------------------------------------------------------------------------
 
 
 def _table(rows: Sequence[tuple[str, str]]) -> str:
@@ -355,14 +542,32 @@ def _interval(low: float, high: float) -> str:
     return f"[{low:.4f}, {high:.4f}]"
 
 
-def describe_estimate(est: leadline_pb2.Estimate) -> str:
-    """One line: estimate ± half-width with both intervals."""
+def describe_estimate(est: Estimate) -> str:
+    """One line: estimate ± half-width with both two-sided intervals."""
     half = (est.upper - est.lower) / 2
     return (
-        f"{est.risk:.4f} ± {half:.4f}  ({est.confidence:.0%} fixed-time "
+        f"{est.risk:.4f} ± {half:.4f}  ({est.confidence:.0%} two-sided: fixed-time "
         f"{_interval(est.lower, est.upper)}; anytime "
         f"{_interval(est.anytime_lower, est.anytime_upper)})"
     )
+
+
+def pool_dict(pool: leadline_pb2.Pool) -> dict[str, Any]:
+    """A pool as flat JSON-ready values: proto field names, plain numbers, enum words."""
+    values: dict[str, Any] = {}
+    for field in pool.DESCRIPTOR.fields:
+        value = getattr(pool, field.name)
+        if field.enum_type is not None:
+            values[field.name] = enum_name(field.enum_type.name, value)
+        elif field.is_repeated:
+            values[field.name] = list(value)
+        else:
+            values[field.name] = value
+    return values
+
+
+def _json(value: object) -> str:
+    return json.dumps(value, indent=2)
 
 
 def _pool_rows(pool: leadline_pb2.Pool) -> list[tuple[str, str]]:
@@ -411,35 +616,59 @@ def _cost_matrix(text: str | None) -> list[list[float]] | None:
     try:
         return [[float(v) for v in row.split(",")] for row in text.split(";") if row.strip()]
     except ValueError:
-        raise ValueError(
-            f"--cost-matrix == {text!r}: rows separated by ';', numbers by ',' (e.g. '0,1;5,0')."
+        raise _UsageError(
+            f"--cost-matrix {text!r}: rows separated by ';', numbers by ',' (e.g. '0,1;5,0')."
         ) from None
+
+
+# -- commands -------------------------------------------------------------------------------
+
+
+def _settings_differ(pool: leadline_pb2.Pool, args: argparse.Namespace) -> list[str]:
+    """The asked settings an existing pool does not have, in flag words."""
+    asked = {
+        "--task": (enum_name("TaskType", pool.task), args.task),
+        "--features": (pool.feature_dim, args.features),
+        "--classes": (pool.num_classes, args.classes),
+        "--loss": (enum_name("LossKind", pool.loss), args.loss),
+        "--loss-cap": (pool.loss_cap, args.loss_cap),
+    }
+    return [f"{flag} {has} (asked {want})" for flag, (has, want) in asked.items() if has != want]
 
 
 def _run_pool(args: argparse.Namespace) -> int:
     with _client(args) as client:
         if args.pool_command == "create":
-            pool = client.create_pool(
-                args.pool_id,
-                task=args.task,
-                feature_dim=args.features,
-                num_classes=args.classes,
-                loss=args.loss,
-                cost_matrix=_cost_matrix(args.cost_matrix),
-                loss_cap=args.loss_cap,
-                default_mode=args.mode,
-                description=args.description,
-                selection_floor=args.selection_floor,
-                default_lease_seconds=args.lease_seconds,
-                default_confidence=args.confidence,
-                refit_every_labels=args.refit_every,
-                exist_ok=args.exist_ok,
-            )
-            print(f"created {pool.name}")
+            pool_id = pool_name(args.pool).removeprefix("pools/")
+            try:
+                pool = client.create_pool(
+                    pool_id,
+                    task=args.task,
+                    feature_dim=args.features,
+                    num_classes=args.classes,
+                    loss=args.loss,
+                    cost_matrix=_cost_matrix(args.cost_matrix),
+                    loss_cap=args.loss_cap,
+                    default_mode=args.default_mode,
+                    description=args.description,
+                    selection_floor=args.selection_floor,
+                    default_lease_seconds=args.default_lease_seconds,
+                    default_confidence=args.default_confidence,
+                    refit_every_labels=args.refit_every_labels,
+                )
+            except AlreadyExists:
+                if not args.exist_ok:
+                    raise
+                pool = client.get_pool(pool_id)
+                differ = _settings_differ(pool, args)
+                note = f"; it differs from the flags given: {', '.join(differ)}" if differ else ""
+                print(f"{pool.name} already existed; left as it is (--exist-ok){note}")
+            else:
+                print(f"created {pool.name}")
         elif args.pool_command == "list":
             pools = client.list_pools()
             if args.json:
-                print(json.dumps([json.loads(_as_json(p)) for p in pools], indent=2))
+                print(_json([pool_dict(p) for p in pools]))
             elif not pools:
                 print("no pools")
             else:
@@ -458,7 +687,7 @@ def _run_pool(args: argparse.Namespace) -> int:
                 print(_columns(header, rows))
         elif args.pool_command == "show":
             pool = client.get_pool(args.pool)
-            print(_as_json(pool) if args.json else _table(_pool_rows(pool)))
+            print(_json(pool_dict(pool)) if args.json else _table(_pool_rows(pool)))
         elif args.pool_command == "delete":
             if not args.yes:
                 raise _UsageError(
@@ -471,7 +700,10 @@ def _run_pool(args: argparse.Namespace) -> int:
 
 
 def _run_validation(args: argparse.Namespace) -> int:
-    columns = read_validation_file(args.file)
+    try:
+        columns = read_validation_file(args.file)
+    except ValueError as error:
+        raise _UsageError(f"--file {error}") from None
     with _client(args) as client:
         result = client.add_validation(
             args.pool,
@@ -497,6 +729,7 @@ def _run_validation(args: argparse.Namespace) -> int:
 def _run_status(args: argparse.Namespace) -> int:
     with _client(args) as client:
         pool = client.get_pool(args.pool)
+        est: Estimate | None
         if pool.item_count == 0:
             # The server has no estimate for an empty pool (FAILED_PRECONDITION).
             est, segments = None, {}
@@ -510,11 +743,11 @@ def _run_status(args: argparse.Namespace) -> int:
             }
     if args.json:
         payload = {
-            "pool": json.loads(_as_json(pool)),
-            "estimate": json.loads(_as_json(est)) if est is not None else None,
-            "segments": {s: json.loads(_as_json(e)) for s, e in segments.items()},
+            "pool": pool_dict(pool),
+            "estimate": est.to_dict() if est is not None else None,
+            "segments": [{"segment": s, **e.to_dict()} for s, e in sorted(segments.items())],
         }
-        print(json.dumps(payload, indent=2))
+        print(_json(payload))
         return EXIT_OK
     rows = _pool_rows(pool)
     if est is None:
@@ -524,13 +757,13 @@ def _run_status(args: argparse.Namespace) -> int:
             ("estimate", describe_estimate(est)),
             (
                 "mode",
-                f"{enum_name('EstimatorMode', est.mode)} (unbiased weight "
-                f"{est.unbiased_weight:.2f}, bias bound {est.bias_bound:.4f})",
+                f"{est.mode} (unbiased weight {est.unbiased_weight:.2f}, bias bound "
+                f"{est.bias_bound:.4f})",
             ),
             (
                 "labels",
                 f"{est.labels_used:,} used, {est.labels_pending:,} pending, "
-                f"{est.labels_skipped:,} skipped",
+                f"{est.labels_skipped:,} skipped (surrogate version {est.surrogate_version})",
             ),
         ]
         if est.items_unreached:
@@ -551,7 +784,52 @@ def _run_status(args: argparse.Namespace) -> int:
         ]
         print()
         print(_columns(header, table))
+        if est is not None:
+            print(f"(intervals two-sided at {est.confidence:.0%})")
     return EXIT_OK
+
+
+def describe_gate(result: GateResult) -> list[str]:
+    """The gate's lines: the bound the verdict used, labeled one-sided, then the labels."""
+    est = result.estimate
+    level = f"one-sided {est.confidence:.0%} {result.bound}"
+    if result.verdict is Verdict.PASS:
+        lines = [f"  {level} upper bound {result.upper:.4f} < {result.max_risk:g}"]
+    elif result.verdict is Verdict.FAIL:
+        lines = [f"  {level} lower bound {result.lower:.4f} > {result.max_risk:g}"]
+    else:
+        lines = [
+            f"  {level} bounds {result.lower:.4f} (lower) and {result.upper:.4f} (upper) "
+            f"lie on both sides of {result.max_risk:g}"
+        ]
+    lines.append(
+        f"  estimate {est.risk:.4f} ({est.mode}), {est.labels_used:,} labels used, "
+        f"{est.labels_pending:,} pending, {est.labels_skipped:,} skipped, surrogate version "
+        f"{est.surrogate_version}"
+    )
+    if result.verdict is Verdict.UNDECIDED:
+        if result.unlabeled == 0:
+            lines.append("  every item in scope is labeled; more labels cannot decide it")
+        elif result.labels_may_not_suffice:
+            lines.append(
+                f"  even labeling all {result.unlabeled:,} unlabeled items in scope may not "
+                "decide it"
+            )
+        elif result.more_labels_hint:
+            lines.append(f"  about {result.more_labels_hint:,} more labels may decide it (rough)")
+    return lines
+
+
+def _poll_line(result: GateResult | None, problem: str, args: argparse.Namespace) -> str:
+    now = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
+    if result is None:
+        return f"{now}  {problem}; polling again in {args.interval:g} s"
+    est = result.estimate
+    return (
+        f"{now}  undecided: {est.labels_used:,} labels; one-sided {est.confidence:.0%} "
+        f"{result.bound} bounds [{result.lower:.4f}, {result.upper:.4f}] vs --max-risk "
+        f"{result.max_risk:g}; polling again in {args.interval:g} s"
+    )
 
 
 def _run_gate(args: argparse.Namespace) -> int:
@@ -560,37 +838,42 @@ def _run_gate(args: argparse.Namespace) -> int:
             "leadline gate: --wait polls repeatedly, which only the anytime bound allows "
             f"(got --bound {args.bound})."
         )
-    if args.interval <= 0:
-        raise _UsageError(f"leadline gate: --interval == {args.interval}, must be > 0.")
+    if not args.interval > 0:
+        raise _UsageError(f"leadline gate: --interval {args.interval:g}, must be > 0.")
+    if args.wait < 0:
+        raise _UsageError(f"leadline gate: --wait {args.wait:g}, must be >= 0.")
     deadline = time.monotonic() + args.wait
     with _client(args) as client:
         while True:
-            result = client.check_gate(
-                args.pool,
-                max_risk=args.max_risk,
-                confidence=args.confidence,
-                bound=args.bound,
-                mode=args.mode,
-                segment=args.segment,
-            )
-            undecided = result.verdict == leadline_pb2.VERDICT_UNDECIDED
-            if not undecided or time.monotonic() + args.interval > deadline:
+            last_chance = time.monotonic() + args.interval > deadline
+            try:
+                result = client.check_gate(
+                    args.pool,
+                    max_risk=args.max_risk,
+                    confidence=args.confidence,
+                    bound=args.bound,
+                    mode=args.mode,
+                    segment=args.segment,
+                )
+            except Unavailable as error:
+                # --wait keeps its patience with a server that is down or restarting.
+                if last_chance:
+                    raise
+                print(_poll_line(None, error.details, args), file=sys.stderr, flush=True)
+                time.sleep(args.interval)
+                continue
+            if result.verdict is not Verdict.UNDECIDED or last_chance:
                 break
-            _LOG.info("gate undecided (%s); polling again in %s s", result.reason, args.interval)
+            print(_poll_line(result, "", args), file=sys.stderr, flush=True)
             time.sleep(args.interval)
-    if result.verdict not in _GATE_EXIT:
-        print(f"leadline gate: server answered verdict {result.verdict}", file=sys.stderr)
-        return EXIT_ERROR
-    verdict = enum_name("Verdict", result.verdict).upper()
     if args.json:
-        print(_as_json(result))
+        payload = {"pool": pool_name(args.pool), "segment": args.segment, **result.to_dict()}
+        print(_json(payload))
     else:
         scope = f" segment {args.segment}" if args.segment else ""
+        verdict = str(result.verdict).upper()
         print(f"{verdict}: {pool_name(args.pool)}{scope}, risk below {args.max_risk:g}?")
-        print(f"  estimate {describe_estimate(result.estimate)}")
-        print(f"  {result.reason}")
-        if undecided and result.more_labels_hint:
-            print(f"  about {result.more_labels_hint:,} more labels may decide it")
+        print("\n".join(describe_gate(result)))
     return _GATE_EXIT[result.verdict]
 
 
@@ -615,7 +898,7 @@ def _run_export(args: argparse.Namespace) -> int:
     with _client(args) as client:
         draws = client.iter_draws(args.pool)
         if args.out == "-":
-            count = write_draws_csv(draws, sys.stdout)
+            write_draws_csv(draws, sys.stdout)
         else:
             count = write_draws_csv(draws, args.out)
             print(f"wrote {count} draws to {args.out}", file=sys.stderr)
@@ -628,7 +911,7 @@ def _run_demo(args: argparse.Namespace) -> int:
     return run_demo(out_dir=args.out, seed=args.seed, items=args.items, budget=args.budget)
 
 
-_COMMANDS = {
+_COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
     "pool": _run_pool,
     "validation": _run_validation,
     "status": _run_status,
@@ -637,6 +920,46 @@ _COMMANDS = {
     "export": _run_export,
     "demo": _run_demo,
 }
+
+
+# -- errors in the command line's words -----------------------------------------------------
+
+
+def _cli_words(details: str, args: argparse.Namespace) -> str:
+    """A request's error told with the flag that set the value and the CLI's enum words."""
+    flags = dict(_FLAGS)
+    flags["target"] = getattr(args, "target_source", "--target")
+    head = _HEAD.match(details)
+    if head is not None and head.group("field") in flags:
+        flag = flags[head.group("field")]
+        separator = " " if head.group("sep") == " = " else head.group("sep")
+        details = flag + separator + details[head.end() :]
+    return re.sub(
+        r"\b[A-Z][A-Z_]*[A-Z]\b", lambda m: _ENUM_WORDS.get(m.group(0), m.group(0)), details
+    )
+
+
+def _describe_error(error: LeadlineError, args: argparse.Namespace) -> str:
+    code = error.code.name if error.code is not None else "ERROR"
+    if error.code == grpc.StatusCode.UNAUTHENTICATED:
+        source = getattr(args, "token_source", "")
+        if not source:
+            advice = (
+                "no token was given: set LEADLINE_TOKEN or pass --token-file FILE (a token "
+                "from the server's token file)"
+            )
+        else:
+            advice = (
+                f"the server does not know the token from {source}: use one listed in the "
+                "server's token file (--tokens)"
+            )
+        return f"{code}: {advice}."
+    return f"{code}: {_cli_words(error.details, args)}"
+
+
+def _command_name(args: argparse.Namespace) -> str:
+    sub = getattr(args, "pool_command", None) or getattr(args, "validation_command", None)
+    return f"{args.command} {sub}" if sub else args.command
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -662,14 +985,27 @@ def main(argv: Sequence[str] | None = None) -> int:
         level=logging.INFO if getattr(args, "verbose", False) else logging.WARNING,
         format="%(asctime)s %(levelname)s %(name)s: %(message)s",
     )
+    name = _command_name(args)
     try:
-        return _COMMANDS[args.command](args)
+        code = _COMMANDS[args.command](args)
+        sys.stdout.flush()  # inside the try: a closed pipe surfaces here, not at exit
+        return code
+    except BrokenPipeError:
+        # The reader went away (`leadline export | head`): stop quietly, like other Unix
+        # tools. Point stdout at /dev/null so the interpreter's final flush cannot fail.
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_OK
     except _UsageError as error:
-        print(error, file=sys.stderr)
+        message = str(error)
+        print(
+            message if message.startswith("leadline") else f"leadline {name}: {message}",
+            file=sys.stderr,
+        )
     except LeadlineError as error:
-        print(f"leadline {args.command}: {error}", file=sys.stderr)
-    except (ValueError, OSError) as error:
-        print(f"leadline {args.command}: {error}", file=sys.stderr)
+        print(f"leadline {name}: {_describe_error(error, args)}", file=sys.stderr)
+    except OSError as error:
+        print(f"leadline {name}: {error}", file=sys.stderr)
     return EXIT_ERROR
 
 

@@ -38,10 +38,9 @@ from typing import TextIO
 import numpy as np
 
 from leadline.client._client import Client, Skip
-from leadline.client._enums import enum_name
 from leadline.client._local_server import LocalServer
+from leadline.client._results import GateResult, Verdict
 from leadline.client.report import collect_report_data, write_report
-from leadline.v1 import leadline_pb2
 
 __all__ = [
     "DemoSummary",
@@ -126,7 +125,7 @@ class DemoSummary:
     items: int
     true_risk: float  # from the hidden labels, not from the estimator
     estimate: float
-    lower: float
+    lower: float  # two-sided interval at confidence (GetEstimate)
     upper: float
     anytime_lower: float
     anytime_upper: float
@@ -139,6 +138,9 @@ class DemoSummary:
     verdict: str
     gate_polls: int
     gate_reason: str
+    gate_bound: str  # the bound kind the gate decided on
+    gate_lower: float  # the gate's bounds, each one-sided at confidence
+    gate_upper: float
     labeling_seconds: float
     report_png: str
     report_html: str
@@ -241,16 +243,14 @@ class _Progress:
         self.live = stream.isatty()
         self.last_print = 0.0
 
-    def update(
-        self, labels: int, estimate: leadline_pb2.Estimate, verdict: str, *, final: bool = False
-    ) -> None:
+    def update(self, labels: int, result: GateResult, *, final: bool = False) -> None:
         filled = int(16 * min(labels, self.budget) / self.budget)
         bar = "#" * filled + "." * (16 - filled)
-        half = (estimate.anytime_upper - estimate.anytime_lower) / 2
-        # Short enough for an 80-column terminal: a wrapped line cannot be rewritten.
+        # Short enough for an 80-column terminal: a wrapped line cannot be rewritten. The
+        # bound shown is the one-sided upper bound the gate compares with the threshold.
         line = (
-            f"[{bar}] {labels:4d}/{self.budget} labels | estimate {estimate.risk:.4f} "
-            f"± {half:.4f} | gate {verdict}"
+            f"[{bar}] {labels:4d}/{self.budget} | est {result.estimate.risk:.4f} | upper "
+            f"{result.upper:.4f} vs {result.max_risk:g} | {str(result.verdict).upper()}"
         )
         if self.live:
             # \r returns to the line start, ESC[K clears what a longer line left behind.
@@ -392,7 +392,11 @@ def _run_loop(
             "refit each round calls for; the release gate is polled after every round "
             "(anytime bound: safe to poll)",
         )
-        _say(out, "  live: labels spent | estimate ± anytime half-width | gate verdict")
+        _say(
+            out,
+            f"  live: labels spent/budget | estimate | the gate's one-sided {CONFIDENCE:.0%} "
+            "anytime upper bound vs the threshold | verdict",
+        )
         taught, result = _label_until_decided(
             out, vendor, gate, scenario, POOL_ID, budget=budget, seed=seed, show=True
         )
@@ -425,7 +429,7 @@ def _run_loop(
         anytime_lower=estimate.anytime_lower,
         anytime_upper=estimate.anytime_upper,
         confidence=estimate.confidence,
-        mode=enum_name("EstimatorMode", estimate.mode),
+        mode=str(estimate.mode),
         labels_used=int(estimate.labels_used),
         labels_skipped=int(estimate.labels_skipped),
         iid_labels_same_width=taught.iid_labels_same_width,
@@ -433,6 +437,9 @@ def _run_loop(
         verdict=taught.verdict,
         gate_polls=taught.gate_polls,
         gate_reason=result.reason,
+        gate_bound=str(result.bound),
+        gate_lower=result.lower,
+        gate_upper=result.upper,
         labeling_seconds=taught.labeling_seconds,
         report_png=str(files.png),
         report_html=str(files.html),
@@ -452,7 +459,7 @@ def _label_until_decided(
     budget: int,
     seed: int,
     show: bool,
-) -> tuple[LabelingOutcome, leadline_pb2.GateResult]:
+) -> tuple[LabelingOutcome, GateResult]:
     """Label in rounds until the gate decides or the budget is spent; after each round
     wait for the refit it calls for, then poll the gate."""
     index = {item_id: i for i, item_id in enumerate(scenario.item_ids)}
@@ -477,12 +484,9 @@ def _label_until_decided(
             _wait_for_refit(gate, pool)
         result = gate.check_gate(pool, max_risk=MAX_RISK, confidence=CONFIDENCE, bound="anytime")
         polls += 1
-        verdict = enum_name("Verdict", result.verdict).upper()
-        done = (
-            result.verdict != leadline_pb2.VERDICT_UNDECIDED or labels >= budget or not assignments
-        )
+        done = result.verdict is not Verdict.UNDECIDED or labels >= budget or not assignments
         if progress is not None:
-            progress.update(labels, result.estimate, verdict, final=done)
+            progress.update(labels, result, final=done)
         if done:
             break
     seconds = time.perf_counter() - started
@@ -500,7 +504,7 @@ def _label_until_decided(
         )
         if half > 0
         else None,
-        verdict=verdict,
+        verdict=str(result.verdict).upper(),
         gate_polls=polls,
         surrogate_version=int(gate.get_pool(pool).surrogate_version),
         labeling_seconds=round(seconds, 2),
@@ -529,8 +533,8 @@ def _print_summary(out: TextIO, s: DemoSummary) -> None:
     _say(
         out,
         f"  leadline estimate ({s.mode}): {s.estimate:.4f} ± {half:.4f}  ({s.confidence:.0%} "
-        f"fixed-time [{s.lower:.4f}, {s.upper:.4f}]; anytime [{s.anytime_lower:.4f}, "
-        f"{s.anytime_upper:.4f}])",
+        f"two-sided: fixed-time [{s.lower:.4f}, {s.upper:.4f}]; anytime "
+        f"[{s.anytime_lower:.4f}, {s.anytime_upper:.4f}])",
     )
     _say(out, f"  true risk inside the fixed-time interval: {covered}")
     _say(
@@ -564,11 +568,22 @@ def _print_summary(out: TextIO, s: DemoSummary) -> None:
         "z the normal quantile; n = n0 / (1 + (n0-1)/N): the textbook sample-size formula "
         "for a proportion)",
     )
+    level = f"one-sided {s.confidence:.0%} {s.gate_bound}"
+    if s.verdict == "PASS":
+        rests = f"{level} upper bound {s.gate_upper:.4f} < {s.max_risk:g}"
+    elif s.verdict == "FAIL":
+        rests = f"{level} lower bound {s.gate_lower:.4f} > {s.max_risk:g}"
+    else:
+        rests = (
+            f"{level} bounds [{s.gate_lower:.4f}, {s.gate_upper:.4f}] on both sides of "
+            f"{s.max_risk:g}"
+        )
     _say(
         out,
-        f"  gate: {s.verdict} (risk below {s.max_risk:g} at {s.confidence:.0%}, anytime bound, "
-        f"{s.gate_polls} polls): {s.gate_reason}",
+        f"  gate: {s.verdict} (risk below {s.max_risk:g} at {s.confidence:.0%}, after "
+        f"{s.gate_polls} polls): {rests}",
     )
+    _say(out, "    (a gate decides on one-sided bounds: narrower than the two-sided interval)")
     _say(out, f"  report: {s.report_png}")
     _say(out, f"          {s.report_html}")
     _say(out, f"  wall time: {s.wall_seconds:.1f} s")

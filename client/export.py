@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import TextIO
 
 from leadline.client._enums import enum_name, parse_enum
+from leadline.client._errors import InvalidRequest
 from leadline.v1 import leadline_pb2
 
 __all__ = ["CSV_COLUMNS", "read_draws_csv", "write_draws_csv"]
@@ -121,5 +122,7 @@ def read_draws_csv(source: str | Path | TextIO) -> list[leadline_pb2.Draw]:
                 draw.loss = float(fields["loss"])
         except ValueError as error:
             raise ValueError(f"line {line_number}: {error}") from None
+        except InvalidRequest as error:  # an unknown status word
+            raise ValueError(f"line {line_number}: {error.details}") from None
         draws.append(draw)
     return draws

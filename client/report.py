@@ -1,8 +1,10 @@
 """A pool's report: one PNG with three panels and a self-contained HTML page.
 
 Panels:
-1. estimate and its bounds against the labels used (from GetEstimateTrace);
-2. per-segment estimates with their bounds (GetEstimate for each of Pool.segments);
+1. estimate and its bounds against the labels used (from GetEstimateTrace): with a gate
+   threshold, the gate's own one-sided bounds against the threshold line; without one,
+   the two-sided intervals;
+2. per-segment estimates with their two-sided intervals (GetEstimate for each segment);
 3. each draw's selection probability, relative to uniform random sampling, against the
    surrogate's expected loss for the drawn item (from ListDraws).
 
@@ -28,6 +30,7 @@ from matplotlib.ticker import NullFormatter
 
 from leadline.client._client import Client
 from leadline.client._enums import enum_name
+from leadline.client._results import Estimate, GateResult, Verdict
 from leadline.v1 import leadline_pb2
 
 __all__ = ["ReportData", "ReportFiles", "collect_report_data", "render_report", "write_report"]
@@ -41,12 +44,15 @@ class ReportData:
     """Everything a report shows, fetched once (see :func:`collect_report_data`)."""
 
     pool: leadline_pb2.Pool
-    estimate: leadline_pb2.Estimate
-    trace: list[leadline_pb2.Estimate]
-    segments: dict[str, leadline_pb2.Estimate]
+    estimate: Estimate
+    trace: list[Estimate]
+    segments: dict[str, Estimate]
     draws: list[leadline_pb2.Draw]
-    gate: leadline_pb2.GateResult | None = None
+    gate: GateResult | None = None
     max_risk: float | None = None
+    # With a gate: the trace with each bound one-sided at the gate's confidence (the
+    # bounds the gate decides on), see gate_trace_confidence.
+    gate_trace: list[Estimate] = field(default_factory=list)
     # A risk known from outside the estimator (e.g. a demo's hidden labels), drawn as a line.
     reference_risk: float | None = None
     reference_label: str = "true risk"
@@ -61,6 +67,17 @@ class ReportData:
 class ReportFiles:
     png: Path
     html: Path
+
+
+def gate_trace_confidence(confidence: float) -> float:
+    """The two-sided level whose interval ends are one-sided bounds at ``confidence``.
+
+    Each end of a two-sided interval at level 2c - 1 leaves (1 - (2c - 1)) / 2 = 1 - c in
+    its tail, exactly what a one-sided bound at c leaves (the server builds both sides of
+    every interval with the same tail share; textbook equal-tailed intervals). So the
+    trace at 2c - 1 draws the very bounds a gate at c decides on.
+    """
+    return 2.0 * confidence - 1.0
 
 
 def collect_report_data(
@@ -86,8 +103,14 @@ def collect_report_data(
     }
     draws = client.list_draws(pool)
     gate = None
+    gate_trace: list[Estimate] = []
     if max_risk is not None:
         gate = client.check_gate(pool, max_risk=max_risk, confidence=confidence, bound=bound)
+        gate_trace = client.get_estimate_trace(
+            pool,
+            confidence=gate_trace_confidence(gate.estimate.confidence),
+            max_points=max_points,
+        )
     return ReportData(
         pool=info,
         estimate=estimate,
@@ -96,6 +119,7 @@ def collect_report_data(
         draws=draws,
         gate=gate,
         max_risk=max_risk,
+        gate_trace=gate_trace,
         reference_risk=reference_risk,
         reference_label=reference_label,
         reference_segment_risks=dict(reference_segment_risks or {}),
@@ -105,44 +129,67 @@ def collect_report_data(
 # -- panels ---------------------------------------------------------------------------------
 
 
+def _legend(ax: Axes, *, columns: int = 2) -> None:
+    """A legend below the axes, so it never hides the data or the notes; none when empty."""
+    handles, labels = ax.get_legend_handles_labels()
+    if handles:
+        ax.legend(
+            fontsize=7,
+            loc="upper center",
+            bbox_to_anchor=(0.5, -0.2),
+            ncols=columns,
+            frameon=False,
+        )
+
+
 def _draw_trace(ax: Axes, data: ReportData) -> None:
-    trace = data.trace
-    confidence = data.estimate.confidence or (trace[-1].confidence if trace else 0.0)
+    gate = data.gate
+    trace = data.gate_trace if gate is not None else data.trace
     if trace:
         labels = np.array([point.labels_used for point in trace])
-        risk = np.array([point.risk for point in trace])
-        ax.fill_between(
-            labels,
-            [p.lower for p in trace],
-            [p.upper for p in trace],
-            alpha=0.3,
-            color="tab:blue",
-            label=f"fixed-time interval ({confidence:.0%})",
-        )
-        ax.plot(labels, [p.anytime_lower for p in trace], "--", color="tab:purple", lw=1)
-        ax.plot(
-            labels,
-            [p.anytime_upper for p in trace],
-            "--",
-            color="tab:purple",
-            lw=1,
-            label=f"anytime bound ({confidence:.0%})",
-        )
-        ax.plot(labels, risk, "o-", color="tab:blue", ms=3, label="estimate")
+        if gate is not None:
+            level = f"one-sided {gate.estimate.confidence:.0%} {gate.bound}"
+            anytime = gate.bound == "anytime"
+            upper = [p.anytime_upper if anytime else p.upper for p in trace]
+            lower = [p.anytime_lower if anytime else p.lower for p in trace]
+            ax.plot(labels, upper, "-", color="tab:purple", lw=1.5, label=f"{level} upper bound")
+            ax.plot(labels, lower, "--", color="tab:purple", lw=1, label=f"{level} lower bound")
+            ax.set_title("Estimate and the gate's bounds vs labels used")
+        else:
+            confidence = data.estimate.confidence
+            ax.fill_between(
+                labels,
+                [p.lower for p in trace],
+                [p.upper for p in trace],
+                alpha=0.3,
+                color="tab:blue",
+                label=f"two-sided {confidence:.0%} fixed-time interval",
+            )
+            ax.plot(labels, [p.anytime_lower for p in trace], "--", color="tab:purple", lw=1)
+            ax.plot(
+                labels,
+                [p.anytime_upper for p in trace],
+                "--",
+                color="tab:purple",
+                lw=1,
+                label=f"two-sided {confidence:.0%} anytime interval",
+            )
+            ax.set_title("Estimate and bounds vs labels used")
+        ax.plot(labels, [p.risk for p in trace], "o-", color="tab:blue", ms=3, label="estimate")
     else:
         ax.text(0.5, 0.5, "no labels yet", ha="center", va="center", transform=ax.transAxes)
+        ax.set_title("Estimate and bounds vs labels used")
     _reference_lines(ax, data, horizontal=True)
     ax.set_xlabel("labels used")
     ax.set_ylabel("risk (mean loss)")
-    ax.set_title("Estimate and bounds vs labels used")
-    ax.legend(fontsize=7, loc="upper right")
+    _legend(ax)
     ax.grid(alpha=0.3)
 
 
 def _reference_lines(ax: Axes, data: ReportData, *, horizontal: bool) -> None:
     line = ax.axhline if horizontal else ax.axvline
     if data.max_risk is not None:
-        line(data.max_risk, color="tab:red", lw=1.2, label=f"gate threshold {data.max_risk:g}")
+        line(data.max_risk, color="tab:red", lw=1.2, label=f"gate threshold {_fmt(data.max_risk)}")
     if data.reference_risk is not None:
         line(
             data.reference_risk,
@@ -166,14 +213,18 @@ def _draw_segments(ax: Axes, data: ReportData) -> None:
         )
         ax.plot([est.lower, est.upper], [position, position], color="tab:blue", lw=4, alpha=0.6)
         ax.plot([est.risk], [position], "o", color="tab:blue", ms=5)
+        # Above its own interval, centred on the estimate: inside the axes, clear of the
+        # legend (which sits below the axes).
         ax.annotate(
-            f"{est.labels_used} labels",
-            (est.upper, position),
-            xytext=(4, 3),
+            f"{est.labels_used:,} labels",
+            (est.risk, position),
+            xytext=(0, 6),
             textcoords="offset points",
+            ha="center",
             fontsize=7,
         )
     ax.set_yticks(y, [name for name, _ in rows], fontsize=8)
+    ax.set_ylim(-0.6, len(rows) - 0.3)
     _reference_lines(ax, data, horizontal=False)
     marked = [
         (p, data.reference_segment_risks[name])
@@ -189,11 +240,13 @@ def _draw_segments(ax: Axes, data: ReportData) -> None:
             ms=7,
             label=f"{data.reference_label} per segment",
         )
-    ax.set_xlabel("risk: estimate, fixed-time interval (thick), anytime bound (thin)")
+    confidence = data.estimate.confidence
+    ax.set_xlabel(
+        f"risk: estimate, two-sided {confidence:.0%} fixed-time (thick) and anytime (thin)"
+    )
     ax.set_title("Per-segment estimates")
     ax.grid(alpha=0.3, axis="x")
-    if data.max_risk is not None or data.reference_risk is not None or marked:
-        ax.legend(fontsize=7, loc="lower right")
+    _legend(ax)
 
 
 def _draw_selection(ax: Axes, data: ReportData) -> None:
@@ -226,11 +279,11 @@ def _draw_selection(ax: Axes, data: ReportData) -> None:
             ax.set_ylim(low, high)
             ax.set_yticks(ticks, [f"{t:g}" for t in ticks])
             ax.yaxis.set_minor_formatter(NullFormatter())
-        ax.legend(fontsize=7)
     ax.set_xlabel("surrogate's expected loss of the drawn item")
     ax.set_ylabel("selection probability x remaining items")
     ax.set_title("Which items were drawn, and how likely")
     ax.grid(alpha=0.3)
+    _legend(ax)
 
 
 _PANELS: tuple[tuple[str, Callable[[Axes, ReportData], None]], ...] = (
@@ -265,20 +318,58 @@ def render_report(data: ReportData) -> tuple[bytes, list[tuple[str, bytes]]]:
 
 
 def _fmt(value: float) -> str:
+    """Every risk, bound and loss in the report: four decimals."""
     return f"{value:.4f}"
 
 
-def _estimate_row(name: str, est: leadline_pb2.Estimate) -> str:
+def _count(value: int) -> str:
+    """Every count in the report: thousands separated."""
+    return f"{value:,}"
+
+
+def _estimate_row(name: str, est: Estimate) -> str:
     cells = [
         name,
         _fmt(est.risk),
         f"[{_fmt(est.lower)}, {_fmt(est.upper)}]",
         f"[{_fmt(est.anytime_lower)}, {_fmt(est.anytime_upper)}]",
-        str(est.labels_used),
-        str(est.items_in_scope),
-        enum_name("EstimatorMode", est.mode),
+        _count(est.labels_used),
+        _count(est.items_in_scope),
+        str(est.mode),
+        str(est.surrogate_version),
     ]
     return "<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in cells) + "</tr>"
+
+
+def _gate_html(gate: GateResult) -> str:
+    """The verdict and the bound it rests on, labeled one-sided, in the report's format."""
+    esc = html.escape
+    level = f"one-sided {gate.estimate.confidence:.0%} {gate.bound}"
+    threshold = _fmt(gate.max_risk)
+    if gate.verdict is Verdict.PASS:
+        rests = f"the {level} upper bound {_fmt(gate.upper)} is below {threshold}"
+    elif gate.verdict is Verdict.FAIL:
+        rests = f"the {level} lower bound {_fmt(gate.lower)} is above {threshold}"
+    else:
+        rests = (
+            f"the {level} bounds {_fmt(gate.lower)} (lower) and {_fmt(gate.upper)} (upper) "
+            f"lie on both sides of {threshold}"
+        )
+        if gate.unlabeled == 0:
+            rests += "; every item in scope is labeled, more labels cannot decide it"
+        elif gate.labels_may_not_suffice:
+            rests += (
+                f"; even labeling all {_count(gate.unlabeled)} unlabeled items in scope may "
+                "not decide it"
+            )
+        elif gate.more_labels_hint:
+            rests += f"; about {_count(gate.more_labels_hint)} more labels may decide it"
+    return (
+        f'<p class="verdict">Gate: {esc(str(gate.verdict).upper())} (risk below {threshold} '
+        f"at {gate.estimate.confidence:.0%} confidence, {esc(str(gate.bound))} bound)</p>"
+        f"<p>{esc(rests[0].upper() + rests[1:])}, after {_count(gate.estimate.labels_used)} "
+        f"labels (surrogate version {gate.estimate.surrogate_version}).</p>"
+    )
 
 
 def _html(data: ReportData, panels: list[tuple[str, bytes]]) -> str:
@@ -289,12 +380,15 @@ def _html(data: ReportData, panels: list[tuple[str, bytes]]) -> str:
         ("description", pool.description or "-"),
         ("task", enum_name("TaskType", pool.task)),
         ("loss", enum_name("LossKind", pool.loss)),
-        ("items", f"{pool.item_count:,}"),
-        ("draws", f"{pool.draw_count:,}"),
-        ("labeled", f"{pool.labeled_count:,}"),
-        ("pending", f"{pool.pending_count:,}"),
-        ("skipped", f"{pool.skipped_count:,}"),
-        ("surrogate version", str(pool.surrogate_version)),
+        ("items", _count(pool.item_count)),
+        ("draws", _count(pool.draw_count)),
+        ("labeled", _count(pool.labeled_count)),
+        ("pending", _count(pool.pending_count)),
+        ("skipped", _count(pool.skipped_count)),
+        (
+            "surrogate version",
+            f"{pool.surrogate_version} (the estimates below used version {est.surrogate_version})",
+        ),
         ("confidence", f"{est.confidence:.0%}"),
     ]
     if data.reference_risk is not None:
@@ -314,15 +408,11 @@ def _html(data: ReportData, panels: list[tuple[str, bytes]]) -> str:
         + "</table>",
     ]
     if data.gate is not None:
-        verdict = enum_name("Verdict", data.gate.verdict).upper()
-        parts.append(
-            f'<p class="verdict">Gate: {esc(verdict)} (risk below {data.max_risk:g}, '
-            f"{esc(enum_name('BoundKind', data.gate.bound))} bound)</p>"
-            f"<p>{esc(data.gate.reason)}</p>"
-        )
+        parts.append(_gate_html(data.gate))
     header = (
-        "<tr><th>scope</th><th>estimate</th><th>fixed-time interval</th>"
-        "<th>anytime bound</th><th>labels</th><th>items</th><th>mode</th></tr>"
+        f"<tr><th>scope</th><th>estimate</th><th>two-sided {est.confidence:.0%} fixed-time "
+        f"interval</th><th>two-sided {est.confidence:.0%} anytime interval</th>"
+        "<th>labels</th><th>items</th><th>mode</th><th>surrogate version</th></tr>"
     )
     rows = [_estimate_row("whole pool", est)]
     rows += [_estimate_row(name, seg) for name, seg in sorted(data.segments.items())]
@@ -333,11 +423,15 @@ def _html(data: ReportData, panels: list[tuple[str, bytes]]) -> str:
             f'<h2>{esc(title)}</h2><img alt="{esc(title)}" src="data:image/png;base64,{encoded}">'
         )
     parts.append(
-        "<h2>Reading this report</h2><p>The fixed-time interval holds at the stated "
-        "confidence when looked at once; the anytime bound holds however often it is "
-        "checked, so it is the one to poll. Both describe the items in this pool only: "
-        "they say nothing about traffic that has not arrived, and they assume the labels "
-        "are right.</p></body></html>"
+        "<h2>Reading this report</h2><p>The intervals in the table are two-sided: each "
+        "covers the risk at the stated confidence. The fixed-time interval holds when looked "
+        "at once; the anytime interval holds however often it is checked. A gate decides on "
+        "one bound at a time, one-sided at its confidence (the risk lies above the upper "
+        "bound with probability at most 1 - confidence), so its bounds are narrower than the "
+        "two-sided interval at the same confidence; the gate line and the first panel show "
+        "the bounds the gate used. All of them describe the items in this pool only: they "
+        "say nothing about traffic that has not arrived, and they assume the labels are "
+        "right.</p></body></html>"
     )
     return "\n".join(parts)
 

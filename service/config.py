@@ -159,10 +159,12 @@ def load_config(
 
     Unknown keys in the file raise ValueError naming them, so a typo never goes unnoticed.
     ``LEADLINE_*`` variables that are not settings are left alone (the client reads some,
-    e.g. its token). ``overrides`` values of ``None`` are ignored.
+    e.g. its token). ``overrides`` values of ``None`` are ignored. A value that breaks a
+    rule is reported with where it came from (the variable, the flag or the file).
     """
     fields = {f.name: f for f in dataclasses.fields(ServerConfig) if f.name != "extra"}
     merged: dict[str, Any] = {}
+    sources: dict[str, str] = {}
     if config_file is not None:
         try:
             with open(config_file, "rb") as handle:
@@ -179,6 +181,7 @@ def load_config(
             if key not in fields:
                 raise ValueError(f"config file {str(config_file)!r}: unknown setting {key!r}.")
             merged[key] = _coerce(key, value, fields[key].type)
+            sources[key] = f"config file {str(config_file)!r}"
     environ = os.environ if environ is None else environ
     for variable, value in environ.items():
         if not variable.startswith(_ENV_PREFIX):
@@ -188,12 +191,22 @@ def load_config(
             # Other LEADLINE_* variables belong to the client (e.g. LEADLINE_TOKEN).
             continue
         merged[key] = _coerce(variable, value, fields[key].type)
+        sources[key] = f"environment variable {variable}"
     for key, value in (overrides or {}).items():
         if value is None:
             continue
         if key not in fields:
             raise ValueError(f"unknown setting {key!r}.")
-        merged[key] = _coerce(key, value, fields[key].type)
+        merged[key] = _coerce("--" + key.replace("_", "-"), value, fields[key].type)
+        sources[key] = "flag --" + key.replace("_", "-")
     if merged.get("data_dir") is None:
         raise ValueError("data_dir: required (flag --data-dir or LEADLINE_DATA_DIR).")
-    return ServerConfig(**merged)
+    try:
+        return ServerConfig(**merged)
+    except ValueError as error:
+        # The rule's message starts with the setting's name; say where its value came from.
+        message = str(error)
+        name = message.split(" ", 1)[0].rstrip(":")
+        if name in sources:
+            raise ValueError(f"{sources[name]}: {message}") from None
+        raise

@@ -1,9 +1,11 @@
 """Prometheus text exposition (format 0.0.4) on a separate loopback port, stdlib only.
 
-Request counters and latency histograms are fed by the auth interceptor, labelled by
-method from a closed set (:func:`method_label`); pool gauges
-(items, labels, pending, skipped, draws, surrogate version, whole-pool risk estimate),
-refit and commit counters are read from the engine at scrape time.
+Request counters and latency histograms are fed by the auth interceptor, labelled with
+the short method name (``GetPool``) from a closed set (:func:`method_label`); pool gauges (items, labels, pending, skipped, draws,
+surrogate version, whole-pool risk estimate and its bounds), refit and commit counters are
+read from the engine at scrape time. The bounds carry a ``bound`` label saying which they
+are: ``fixed-time`` (valid at one look) or ``anytime`` (valid however often it is read),
+both two-sided at the pool's default confidence.
 """
 
 from __future__ import annotations
@@ -43,8 +45,9 @@ _KNOWN_METHODS = frozenset(
 
 
 def method_label(method: str) -> str:
-    """The ``method`` label of a call: its path if it is one of ours, else "unknown"."""
-    return method if method in _KNOWN_METHODS else UNKNOWN_METHOD
+    """The ``method`` label of a call: the short method name (``GetPool``) if the path is
+    one of ours, else "unknown"."""
+    return method.rsplit("/", 1)[-1] if method in _KNOWN_METHODS else UNKNOWN_METHOD
 
 
 def _label(value: str) -> str:
@@ -64,7 +67,8 @@ class Metrics:
         self._latency_count: dict[str, int] = {}
 
     def observe(self, method: str, code: grpc.StatusCode, seconds: float) -> None:
-        """Count one finished call (wired as the interceptor's ``observe``)."""
+        """Count one finished call (wired as the interceptor's ``observe``); ``method`` is
+        the full path ``/leadline.v1.PoolService/GetPool`` (see :func:`method_label`)."""
         method = method_label(method)
         with self._lock:
             key = (method, code.name)
@@ -120,6 +124,7 @@ class Metrics:
             "leadline_pool_draws": [],
             "leadline_pool_surrogate_version": [],
             "leadline_pool_risk": [],
+            "leadline_pool_risk_lower": [],
             "leadline_pool_risk_upper": [],
         }
         for pool in self._engine.pools():
@@ -147,9 +152,18 @@ class Metrics:
                     _LOG.exception("estimate for metrics failed for pool %s", pool.pool_id)
                     continue
                 gauges["leadline_pool_risk"].append(f"leadline_pool_risk{tag} {estimate.risk}")
-                gauges["leadline_pool_risk_upper"].append(
-                    f"leadline_pool_risk_upper{tag} {estimate.upper}"
-                )
+                pool_label = _label(pool.pool_id)
+                for kind, lower, upper in (
+                    ("fixed-time", estimate.lower, estimate.upper),
+                    ("anytime", estimate.anytime_lower, estimate.anytime_upper),
+                ):
+                    tags = f'{{pool="{pool_label}",bound="{kind}"}}'
+                    gauges["leadline_pool_risk_lower"].append(
+                        f"leadline_pool_risk_lower{tags} {lower}"
+                    )
+                    gauges["leadline_pool_risk_upper"].append(
+                        f"leadline_pool_risk_upper{tags} {upper}"
+                    )
         helps = {
             "leadline_pool_items": "Items in the pool.",
             "leadline_pool_labels": "Labeled draws.",
@@ -158,7 +172,12 @@ class Metrics:
             "leadline_pool_draws": "Draws made.",
             "leadline_pool_surrogate_version": "Current surrogate version.",
             "leadline_pool_risk": "Whole-pool risk estimate in the pool's default mode.",
-            "leadline_pool_risk_upper": "Upper fixed-time bound of that estimate.",
+            "leadline_pool_risk_lower": "Lower end of that estimate's two-sided interval at "
+            "the pool's default confidence; label bound: fixed-time (one look) or anytime "
+            "(however often read).",
+            "leadline_pool_risk_upper": "Upper end of that estimate's two-sided interval at "
+            "the pool's default confidence; label bound: fixed-time (one look) or anytime "
+            "(however often read).",
         }
         for name, rows in gauges.items():
             family(name, "gauge", helps[name])

@@ -248,12 +248,9 @@ class EstimateServicer(pb_grpc.EstimateServiceServicer):
         mode = validation.check_mode(request.mode)
         bound = validation.check_bound(request.bound)
         scope = validation.check_scope(request.segment, request.start_time_ms, request.end_time_ms)
-        max_risk = request.max_risk
-        if not (max_risk == max_risk and abs(max_risk) != float("inf") and max_risk > 0):
-            raise errors.InvalidArgument(
-                f"max_risk = {max_risk}: must be a finite risk > 0 (same unit as the loss).",
-                field="max_risk",
-            )
+        max_risk = validation.check_max_risk(
+            request.max_risk, loss_bound=self._engine.pool(pool_id).loss_bound
+        )
         outcome = self._engine.check_gate(
             pool_id, scope, max_risk=max_risk, confidence=confidence, bound=bound, mode=mode
         )

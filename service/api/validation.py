@@ -16,6 +16,7 @@ from leadline.service.engine import ItemBatch, LabelInput, PoolSettings, Scope, 
 from leadline.service.errors import InvalidArgument, ResourceExhausted
 from leadline.service.estimation import BoundKind, EstimatorMode
 from leadline.v1 import leadline_pb2 as pb
+from leadline.v1.rules import max_risk_problem
 
 __all__ = [
     "MAX_ACQUIRE",
@@ -26,6 +27,7 @@ __all__ = [
     "check_confidence",
     "check_labels",
     "check_labeler",
+    "check_max_risk",
     "check_mode",
     "check_page_size",
     "check_release",
@@ -554,6 +556,14 @@ def check_confidence(value: float, *, field: str = "confidence") -> float:
         return 0.0
     if not (math.isfinite(value) and 0 < value < 1):
         raise _bad(field, f"{field} = {value}: must be in (0, 1), or 0 for the pool default.")
+    return float(value)
+
+
+def check_max_risk(value: float, *, loss_bound: float, field: str = "max_risk") -> float:
+    """A gate threshold in (0, B), B the pool's largest possible loss (leadline.v1.rules)."""
+    problem = max_risk_problem(value, loss_bound=loss_bound, name=field)
+    if problem is not None:
+        raise _bad(field, problem)
     return float(value)
 
 

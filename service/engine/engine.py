@@ -35,6 +35,7 @@ import numpy as np
 
 from leadline.service.config import ServerConfig
 from leadline.service.engine import ingest, labeling, queries
+from leadline.service.engine.gates import hint_within_scope
 from leadline.service.engine.ingest import now_ms
 from leadline.service.engine.pool import LABELED, PoolSettings, PoolState
 from leadline.service.engine.results import (
@@ -867,7 +868,9 @@ class Engine:
                 loss_bound=pool.loss_bound,
             )
             return GateOutcome(
-                decision=decision,
+                decision=hint_within_scope(
+                    decision, items_in_scope=inputs.items_in_scope, max_risk=max_risk
+                ),
                 items_in_scope=inputs.items_in_scope,
                 items_unreached=inputs.items_unreached,
                 surrogate_version=inputs.surrogate_version,

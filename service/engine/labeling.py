@@ -7,6 +7,7 @@ changes if it is refused), then change memory and return the store writes to que
 from __future__ import annotations
 
 import secrets
+import time
 from collections.abc import Sequence
 from typing import Any
 
@@ -99,16 +100,14 @@ def submit(
     problems: list[ItemProblem] = []
     to_label: list[tuple[int, float]] = []
     to_skip: list[tuple[int, str]] = []
-    expired: list[int] = []
     noop = 0
     for position, submission in enumerate(labels):
         try:
             index = _held_draw(pool, submission.assignment_id, labeler, holder, position)
             outcome = _check_submission(pool, index, submission, position, now)
         except ServiceError as error:
+            # An ended lease needs no write: acquire re-offers expired draws by their time.
             problems.append(_problem(pool, submission.assignment_id, error))
-            if isinstance(error, FailedPrecondition) and error.field == "lease":
-                expired.append(pool.assignments[submission.assignment_id])
             continue
         if outcome == "noop":
             noop += 1
@@ -141,9 +140,6 @@ def submit(
         draws.label_time_ms.view[index] = now
         pool.status.view[int(draws.row.view[index])] = ITEM_SKIPPED
         changed.append(index)
-    for index in expired:
-        draws.status.view[index] = WAITING
-        changed.append(index)
     writes: list[Write] = []
     if changed:
         writes.append(store.update_draws(pool.pool_id, [draws.outcome_record(i) for i in changed]))
@@ -159,7 +155,9 @@ def release(
     pool: PoolState, *, labeler: str, holder: str, assignment_ids: Sequence[str]
 ) -> tuple[OutcomeResult, list[Write]]:
     """Give held assignments back unlabeled: they become WAITING and are re-offered first
-    (call with ``pool.lock`` held)."""
+    (call with ``pool.lock`` held). The lease ends at the release: ``lease_expire_ms``
+    records when, so a late submission can say the assignment was released and when."""
+    now = now_ms()
     draws = pool.draws
     problems: list[ItemProblem] = []
     changed: list[int] = []
@@ -180,6 +178,7 @@ def release(
         released += 1
         if status == ASSIGNED:
             draws.status.view[index] = WAITING
+            draws.lease_expire_ms.view[index] = min(int(draws.lease_expire_ms.view[index]), now)
             changed.append(index)
     writes: list[Write] = []
     if changed:
@@ -294,7 +293,8 @@ def _held_draw(
     if index is None:
         raise NotFound(
             f"labels[{position}].assignment_id = {assignment_id!r}: no such assignment in "
-            f"pool {pool.pool_id!r} (it may have been re-offered after its lease ended).",
+            f"pool {pool.pool_id!r} (after a release or an ended lease the item is "
+            "re-offered under a new assignment id).",
             field="assignment_id",
         )
     draws = pool.draws
@@ -364,13 +364,28 @@ def _check_submission(
             field="label",
         )
     lease_end = int(draws.lease_expire_ms.view[index])
-    if status == WAITING or lease_end <= now:
+    if status == WAITING:
+        # Only a release makes a held draw WAITING; it set lease_expire_ms to its time.
         raise FailedPrecondition(
-            f"{name}.assignment_id = {submission.assignment_id!r}: the lease ended at "
-            f"{lease_end} (unix ms) and the item went back to be re-offered; acquire again.",
+            f"{name}.assignment_id = {submission.assignment_id!r}: released at "
+            f"{_when(lease_end)} and went back to be re-offered, so it no longer takes a "
+            "label; acquire again.",
+            field="lease",
+        )
+    if lease_end <= now:
+        raise FailedPrecondition(
+            f"{name}.assignment_id = {submission.assignment_id!r}: its lease ended at "
+            f"{_when(lease_end)} and the item went back to be re-offered; acquire again "
+            "(or ask for a longer lease_seconds).",
             field="lease",
         )
     return "apply"
+
+
+def _when(ms: int) -> str:
+    """A unix-ms time as people read it, with the number for tools."""
+    readable = time.strftime("%Y-%m-%d %H:%M:%S UTC", time.gmtime(ms / 1000))
+    return f"{readable} ({ms} unix ms)"
 
 
 def _problem(pool: PoolState, assignment_id: str, error: ServiceError) -> ItemProblem:

@@ -16,6 +16,8 @@ import enum
 import math
 from dataclasses import dataclass
 
+from leadline.v1.rules import max_risk_problem
+
 from ._checks import check_confidence, describe
 from .bounds import BoundKind
 from .estimators import EstimatorMode, RiskEstimate, _estimate
@@ -63,8 +65,10 @@ def check_gate(
         )
     if not isinstance(bound, BoundKind):
         raise ValueError(f"bound = {describe(bound)}, must be a BoundKind member.")
-    if not (isinstance(max_risk, (int, float)) and math.isfinite(max_risk) and max_risk >= 0):
-        raise ValueError(f"max_risk = {describe(max_risk)}, must be a finite number >= 0.")
+    # One rule for the server, this core and the client: max_risk in (0, loss_bound).
+    problem = max_risk_problem(max_risk, loss_bound=loss_bound)
+    if problem is not None:
+        raise ValueError(problem)
     estimate = _estimate(
         terms,
         sums,

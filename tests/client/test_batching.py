@@ -7,6 +7,7 @@ import uuid
 import numpy as np
 import pytest
 
+from leadline.client import InvalidRequest
 from leadline.client._batching import IngestColumns, build_batches, plan_batches
 
 
@@ -100,9 +101,9 @@ def test_mismatched_shapes_are_refused_naming_the_argument(kwargs: dict, message
         "outputs": np.full((2, 2), 0.5),
     }
     arguments.update(kwargs)
-    with pytest.raises(ValueError) as caught:
+    with pytest.raises(InvalidRequest) as caught:
         IngestColumns.from_arrays(**arguments)
-    assert str(caught.value).startswith(message)
+    assert caught.value.details.startswith(message)
 
 
 def test_regression_outputs_may_be_one_dimensional() -> None:

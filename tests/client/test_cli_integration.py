@@ -73,8 +73,10 @@ def test_gate_json_output_and_error_exit(server: LocalServer, labeled_digits: Di
     done = _gate(server, labeled_digits.pool, 0.999, "--json")
     assert done.returncode == 0
     result = json.loads(done.stdout)
-    assert result["verdict"] == "VERDICT_PASS"
-    assert result["estimate"]["labels_used"] == "200"  # int64 is a JSON string (proto3 JSON)
+    # Our own flat JSON: lower-case enum words and plain numbers (README "JSON output").
+    assert result["verdict"] == "pass" and result["bound"] == "anytime"
+    assert result["labels_used"] == 200 and result["sides"] == "one-sided"
+    assert result["upper"] < result["max_risk"] == 0.999
     missing = _gate(server, "no-such-pool", 0.5)
     assert missing.returncode == 3
     assert "NOT_FOUND" in missing.stderr
@@ -161,6 +163,7 @@ def test_pool_create_list_show_delete(server: LocalServer) -> None:
 
     created = cli(
         "create",
+        "--pool",
         "cli-pool",
         "--task",
         "regression",
@@ -177,6 +180,7 @@ def test_pool_create_list_show_delete(server: LocalServer) -> None:
     assert created.stdout.strip() == "created pools/cli-pool"
     again = cli(
         "create",
+        "--pool",
         "cli-pool",
         "--task",
         "regression",
@@ -195,11 +199,11 @@ def test_pool_create_list_show_delete(server: LocalServer) -> None:
     empty = run_cli("status", "--pool", "cli-pool", token=TOKENS["reader"], target=server.target)
     assert empty.returncode == 0, empty.stderr
     assert re.search(r"^estimate\s+none yet: the pool has no items$", empty.stdout, re.MULTILINE)
-    shown = cli("show", "pools/cli-pool", "--json")
+    shown = cli("show", "--pool", "pools/cli-pool", "--json")
     assert json.loads(shown.stdout)["loss_cap"] == 4.0
-    deleted = cli("delete", "cli-pool", "--yes")
+    deleted = cli("delete", "--pool", "cli-pool", "--yes")
     assert deleted.returncode == 0 and deleted.stdout.strip() == "deleted pools/cli-pool"
-    assert cli("show", "cli-pool").returncode == 3
+    assert cli("show", "--pool", "cli-pool").returncode == 3
 
 
 @pytest.mark.parametrize(
@@ -214,6 +218,7 @@ def test_tokens_and_roles_are_enforced(server: LocalServer, token: str | None, c
     done = run_cli(
         "pool",
         "create",
+        "--pool",
         "denied",
         "--task",
         "classification",
@@ -227,7 +232,7 @@ def test_tokens_and_roles_are_enforced(server: LocalServer, token: str | None, c
         target=server.target,
     )
     assert done.returncode == 3
-    assert done.stderr.startswith(f"leadline pool: {code} in CreatePool: ")
+    assert done.stderr.startswith(f"leadline pool create: {code}: ")
 
 
 def test_console_script_is_installed_and_forwards_serve_help() -> None:
@@ -278,7 +283,7 @@ def test_gate_wait_polls_until_labels_decide_it(server: LocalServer, admin: Clie
         # The gate starts UNDECIDED (no labels yet) and says so before polling again.
         assert gate.stderr is not None
         first = gate.stderr.readline()
-        assert "gate undecided" in first, first + gate.communicate()[1]
+        assert "undecided: 0 labels" in first, first + gate.communicate()[1]
         for _ in range(16):  # labels arrive while the gate keeps polling
             label_rounds(admin, data, rounds=1, per_round=25)
             if gate.poll() is not None:

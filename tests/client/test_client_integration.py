@@ -9,11 +9,14 @@ import pytest
 from leadline.client import (
     AccessDenied,
     AlreadyExists,
+    BoundKind,
     Client,
+    EstimatorMode,
     InvalidRequest,
     LocalServer,
     NotFound,
     Skip,
+    Verdict,
 )
 from leadline.v1 import leadline_pb2
 
@@ -145,9 +148,11 @@ def test_estimates_trace_and_gate_are_consistent(admin: Client, labeled_digits: 
         part = admin.get_estimate("digits", segment=segment)
         assert 0 < part.items_in_scope < 1197
     gate = admin.check_gate("digits", max_risk=0.999, confidence=0.9, bound="fixed-time")
-    assert gate.verdict == leadline_pb2.VERDICT_PASS
-    assert gate.bound == leadline_pb2.BOUND_KIND_FIXED_TIME
-    with pytest.raises(ValueError, match="max_risk == nan"):
+    assert gate.verdict is Verdict.PASS and str(gate.verdict) == "pass"
+    assert gate.bound is BoundKind.FIXED_TIME and gate.estimate.mode is EstimatorMode.BALANCED
+    # The verdict rests on the one-sided fixed-time upper bound.
+    assert gate.upper == gate.estimate.upper < 0.999
+    with pytest.raises(InvalidRequest, match="max_risk = nan: must be a finite risk > 0"):
         admin.check_gate("digits", max_risk=float("nan"))
 
 

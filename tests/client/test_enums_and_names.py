@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
+import grpc
 import pytest
 
-from leadline.client import pool_name
+from leadline.client import InvalidRequest, pool_name
 from leadline.client._enums import choices, enum_name, parse_enum
 from leadline.v1 import leadline_pb2
 
@@ -30,15 +31,17 @@ def test_parse_enum_accepts_plain_names(enum_type: str, text: str, expected: int
 @pytest.mark.parametrize(
     ("enum_type", "value", "message"),
     [
-        ("LossKind", "hinge", "loss == 'hinge' is not a known loss; expected one of: zero-one,"),
-        ("TaskType", "unspecified", "task == 'unspecified' is not a known task"),
-        ("BoundKind", 7, "bound == 7 is not a known bound"),
+        ("LossKind", "hinge", "loss = 'hinge' is not a known loss; expected one of: zero-one,"),
+        ("TaskType", "unspecified", "task = 'unspecified' is not a known task"),
+        ("BoundKind", 7, "bound = 7 is not a known bound"),
     ],
 )
 def test_parse_enum_refuses_unknown_names(enum_type: str, value: object, message: str) -> None:
-    with pytest.raises(ValueError) as caught:
+    # A client-side refusal is an InvalidRequest, as the server's would be (README).
+    with pytest.raises(InvalidRequest) as caught:
         parse_enum(enum_type, value)  # type: ignore[arg-type]
-    assert str(caught.value).startswith(message)
+    assert caught.value.code is grpc.StatusCode.INVALID_ARGUMENT
+    assert caught.value.details.startswith(message)
 
 
 def test_choices_and_names_round_trip() -> None:
@@ -57,5 +60,5 @@ def test_pool_name_accepts_id_or_name(given: str, expected: str) -> None:
 
 @pytest.mark.parametrize("given", ["", "  ", "pools/"])
 def test_pool_name_refuses_empty(given: str) -> None:
-    with pytest.raises(ValueError, match="must be a pool id or 'pools/"):
+    with pytest.raises(InvalidRequest, match="must be a pool id or 'pools/"):
         pool_name(given)

@@ -105,7 +105,7 @@ def test_csv_is_readable_by_the_standard_csv_module() -> None:
         ),
         (
             ",".join(CSV_COLUMNS) + "\n0,a,,done,0.5,0,0,1,1,,0,,0,0,\n",
-            "line 2: status == 'done' is not a known draw status",
+            "line 2: status = 'done' is not a known draw status",
         ),
     ],
 )

@@ -13,6 +13,7 @@ from leadline.client import (
     AccessDenied,
     AlreadyExists,
     Conflict,
+    DeadlineExceeded,
     InvalidRequest,
     LeadlineError,
     NotFound,
@@ -23,8 +24,13 @@ from leadline.client import (
 _PUBLIC = {
     "AccessDenied",
     "AlreadyExists",
+    "BoundKind",
     "Client",
     "Conflict",
+    "DeadlineExceeded",
+    "Estimate",
+    "EstimatorMode",
+    "GateResult",
     "IngestResult",
     "InvalidRequest",
     "LeadlineError",
@@ -34,6 +40,7 @@ _PUBLIC = {
     "Skip",
     "TlsConfig",
     "Unavailable",
+    "Verdict",
     "pool_name",
 }
 
@@ -98,7 +105,16 @@ def test_every_rpc_of_the_contract_has_a_client_method() -> None:
 
 @pytest.mark.parametrize(
     "cls",
-    [InvalidRequest, NotFound, AlreadyExists, AccessDenied, Conflict, Overloaded, Unavailable],
+    [
+        InvalidRequest,
+        NotFound,
+        AlreadyExists,
+        AccessDenied,
+        Conflict,
+        Overloaded,
+        Unavailable,
+        DeadlineExceeded,
+    ],
 )
 def test_every_exception_is_a_leadline_error_with_a_docstring(cls: type) -> None:
     assert issubclass(cls, LeadlineError)

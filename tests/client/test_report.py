@@ -10,13 +10,14 @@ import matplotlib.image
 import numpy as np
 import pytest
 
+from leadline.client import Estimate, GateResult
 from leadline.client.report import ReportData, write_report
 from leadline.v1 import leadline_pb2
 
 _PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature
 
 
-def _estimate(labels: int, risk: float, half: float, **extra: object) -> leadline_pb2.Estimate:
+def _message(labels: int, risk: float, half: float, **extra: object) -> leadline_pb2.Estimate:
     return leadline_pb2.Estimate(
         risk=risk,
         lower=risk - half,
@@ -29,6 +30,10 @@ def _estimate(labels: int, risk: float, half: float, **extra: object) -> leadlin
         mode=leadline_pb2.ESTIMATOR_MODE_BALANCED,
         **extra,  # type: ignore[arg-type]
     )
+
+
+def _estimate(labels: int, risk: float, half: float, **extra: object) -> Estimate:
+    return Estimate.from_message(_message(labels, risk, half, **extra))
 
 
 def _data(*, draws: int = 40, segments: bool = True) -> ReportData:
@@ -60,12 +65,18 @@ def _data(*, draws: int = 40, segments: bool = True) -> ReportData:
         if segments
         else {},
         draws=draw_list,
-        gate=leadline_pb2.GateResult(
-            verdict=leadline_pb2.VERDICT_UNDECIDED,
-            reason="the interval contains 0.22",
-            bound=leadline_pb2.BOUND_KIND_ANYTIME,
+        gate=GateResult.from_message(
+            leadline_pb2.GateResult(
+                verdict=leadline_pb2.VERDICT_UNDECIDED,
+                estimate=_message(draws, 0.2, 0.04),
+                reason="the bounds contain 0.22",
+                bound=leadline_pb2.BOUND_KIND_ANYTIME,
+                more_labels_hint=60,
+            ),
+            max_risk=0.22,
         ),
         max_risk=0.22,
+        gate_trace=[_estimate(k, 0.2 + 0.1 / k, 0.4 / np.sqrt(k)) for k in range(5, draws + 1, 5)],
         reference_risk=0.205,
         reference_segment_risks={"north": 0.16, "south": 0.24},
     )

@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 
-from leadline.client import Client, LocalServer, TlsConfig, Unavailable
+from leadline.client import Client, InvalidRequest, LocalServer, TlsConfig, Unavailable
 
 from .conftest import TOKENS, run_cli
 
@@ -158,5 +158,5 @@ def test_clients_without_the_right_credentials_cannot_connect(
 
 
 def test_half_a_client_key_pair_is_refused() -> None:
-    with pytest.raises(ValueError, match="client_certificate and client_key must be given"):
+    with pytest.raises(InvalidRequest, match="client_certificate and client_key must be given"):
         TlsConfig(client_certificate=b"pem")

@@ -328,11 +328,28 @@ def test_confidence_outside_the_open_unit_interval_is_rejected(confidence):
         )
 
 
+@pytest.mark.parametrize(
+    ("max_risk", "loss_bound"), [(0.0, 1.0), (-0.1, 1.0), (1.0, 1.0), (1.5, 1.0), (5.0, 2.0)]
+)
+def test_threshold_outside_the_loss_range_is_refused(max_risk, loss_bound):
+    # The mean of losses in [0, B] lies in [0, B] (B = loss_bound): a threshold at or
+    # above B passes every model, at or below 0 none (leadline.v1.rules).
+    sums = PlugInSums(20, 1.0, 2.0, 1.0)
+    with pytest.raises(
+        ValueError, match=rf"max_risk = {max_risk:g}: must be in \(0, {loss_bound:g}\)"
+    ):
+        check_gate(_one_draw(), sums, max_risk=max_risk, confidence=0.9, loss_bound=loss_bound)
+    inside = check_gate(
+        _one_draw(), sums, max_risk=loss_bound / 2, confidence=0.9, loss_bound=loss_bound
+    )
+    assert inside.verdict in set(Verdict)
+
+
 def test_other_bad_arguments_are_rejected():
     sums = PlugInSums(20, 1.0, 2.0, 1.0)
     with pytest.raises(ValueError, match=r"confidence = 0.5, must be in \(0.5, 1\) for a gate"):
         check_gate(_one_draw(), sums, max_risk=0.1, confidence=0.5, loss_bound=1.0)
-    with pytest.raises(ValueError, match=r"max_risk = nan, must be a finite number >= 0"):
+    with pytest.raises(ValueError, match=r"max_risk = nan: must be in \(0, 1\)"):
         check_gate(_one_draw(), sums, max_risk=math.nan, confidence=0.9, loss_bound=1.0)
     with pytest.raises(ValueError, match=r"scope_size = 0, must be an integer >= 1"):
         estimate_risk(

@@ -384,6 +384,30 @@ CASES = [
         "max_risk",
     ),
     Case(
+        "gate threshold at the largest loss",
+        "estimates",
+        "CheckGate",
+        lambda c: pb.CheckGateRequest(pool=_POOL, max_risk=1.0),
+        INVALID,
+        "max_risk",
+    ),
+    Case(
+        "gate threshold above the largest loss",
+        "estimates",
+        "CheckGate",
+        lambda c: pb.CheckGateRequest(pool=_POOL, max_risk=5.0),
+        INVALID,
+        "max_risk",
+    ),
+    Case(
+        "gate threshold zero",
+        "estimates",
+        "CheckGate",
+        lambda c: pb.CheckGateRequest(pool=_POOL, max_risk=0.0),
+        INVALID,
+        "max_risk",
+    ),
+    Case(
         "gate confidence below one half",
         "estimates",
         "CheckGate",
@@ -480,3 +504,19 @@ def test_bad_request_is_refused_with_code_and_field(bad_setup, case: Case) -> No
         assert caught.value.code() == case.code, caught.value.details()
         assert case.field in caught.value.details(), caught.value.details()
         assert _counts(stubs) == before
+
+
+@pytest.mark.parametrize("max_risk", [1.0, 1.5, 5.0, 0.0, -0.1, math.inf])
+def test_gate_threshold_outside_the_loss_range_names_the_largest_loss(
+    bad_setup, max_risk: float
+) -> None:
+    # A zero-one pool: each item's loss is 0 or 1, so its risk (a mean loss) lies in
+    # [0, 1]; a threshold at or above 1 would pass every model, at or below 0 none.
+    harness, _ = bad_setup
+    with harness.stubs("reader") as stubs:
+        with pytest.raises(grpc.RpcError) as caught:
+            stubs.call(
+                stubs.estimates.CheckGate, pb.CheckGateRequest(pool=_POOL, max_risk=max_risk)
+            )
+    assert caught.value.code() == INVALID
+    assert caught.value.details().startswith(f"max_risk = {max_risk:g}: must be in (0, 1)")

@@ -171,10 +171,7 @@ def test_metrics_and_health(harness_factory, tmp_path: Path) -> None:
     url = f"http://127.0.0.1:{harness.server.metrics_port}/metrics"
     with urllib.request.urlopen(url, timeout=10) as response:
         body = response.read().decode()
-    assert (
-        'leadline_requests_total{method="/leadline.v1.PoolService/GetPool",code="NOT_FOUND"} 1'
-        in body
-    )
+    assert 'leadline_requests_total{method="GetPool",code="NOT_FOUND"} 1' in body
     assert "leadline_request_seconds_bucket" in body
     assert "# TYPE leadline_pool_items gauge" in body
 
