@@ -14,13 +14,19 @@ $(PY):
 	$(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
 
+# setuptools prints an informational "Editable installation" notice for every editable
+# install of a package-dir layout like ours (a caution about a `leadline/` folder in the
+# working directory; there is none). It is not a warning about this project: keep it out
+# of a first `make demo`. Every other warning still shows.
+PIP_INSTALL := PYTHONWARNINGS="ignore:Editable installation" $(PY) -m pip install --quiet
+
 # Stamp files: reinstall only when pyproject.toml changes.
 $(VENV)/.installed: pyproject.toml | $(PY)
-	$(PY) -m pip install --quiet -e .
+	$(PIP_INSTALL) -e .
 	touch $@
 
 $(VENV)/.installed-test: pyproject.toml | $(PY)
-	$(PY) -m pip install --quiet -e '.[test]'
+	$(PIP_INSTALL) -e '.[test]'
 	touch $(VENV)/.installed $@
 
 demo: $(VENV)/.installed

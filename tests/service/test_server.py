@@ -349,3 +349,38 @@ def test_acknowledged_writes_survive_a_kill(tmp_path: Path, cancer_pool) -> None
             assert process.stderr is not None
             process.stderr.close()
     assert counts == [(300, 7, 7), (300, 7, 7)]
+
+
+def test_metrics_export_both_bounds_named_by_kind(harness_factory, cancer_pool) -> None:
+    from tests.service.helpers import classification_pool, item_batch, label_round
+
+    harness: Harness = harness_factory(metrics_listen="127.0.0.1:0")
+    assert harness.server is not None
+    with harness.stubs("ops") as stubs:
+        stubs.call(stubs.pools.CreatePool, classification_pool("tumours", cancer_pool))
+        stubs.call(stubs.ingest.IngestItems, item_batch("tumours", cancer_pool, range(300)))
+        label_round(stubs, "tumours", cancer_pool, 30)
+        estimate = stubs.call(
+            stubs.estimates.GetEstimate, pb.GetEstimateRequest(pool="pools/tumours")
+        )
+    url = f"http://127.0.0.1:{harness.server.metrics_port}/metrics"
+    with urllib.request.urlopen(url, timeout=10) as response:
+        body = response.read().decode()
+    values = {
+        line.rsplit(" ", 1)[0]: float(line.rsplit(" ", 1)[1])
+        for line in body.splitlines()
+        if line.startswith("leadline_pool_risk")
+    }
+    # Each bound says which it is; both kinds are there, equal to GetEstimate's (the pool's
+    # default mode and confidence, two-sided).
+    assert values['leadline_pool_risk_upper{pool="tumours",bound="fixed-time"}'] == estimate.upper
+    assert values['leadline_pool_risk_lower{pool="tumours",bound="fixed-time"}'] == estimate.lower
+    assert (
+        values['leadline_pool_risk_upper{pool="tumours",bound="anytime"}'] == estimate.anytime_upper
+    )
+    assert (
+        values['leadline_pool_risk_lower{pool="tumours",bound="anytime"}'] == estimate.anytime_lower
+    )
+    # The method label is the short method name.
+    assert 'leadline_requests_total{method="AcquireItems",code="OK"} 1' in body
+    assert "leadline.v1." not in body
