@@ -214,7 +214,7 @@ class Client:
         """Close the channel; further calls fail."""
         self._channel.close()
 
-    def _check_reachable(self, method: str) -> None:
+    def _check_reachable(self, method: str, deadline: float) -> None:
         """Before the first answer: one health check that fails fast when nobody answers.
 
         The health service needs no token; any answer at all (even UNIMPLEMENTED from a
@@ -224,12 +224,9 @@ class Client:
         """
         if self._reached or self.connect_timeout is None:
             return
+        wait = min(self.connect_timeout, deadline)
         try:
-            self._health.Check(
-                health_pb2.HealthCheckRequest(),
-                timeout=self.connect_timeout,
-                wait_for_ready=False,
-            )
+            self._health.Check(health_pb2.HealthCheckRequest(), timeout=wait, wait_for_ready=False)
         except grpc.RpcError as error:
             code = error.code() if isinstance(error, grpc.Call) else None
             if code in (grpc.StatusCode.UNAVAILABLE, grpc.StatusCode.DEADLINE_EXCEEDED):
@@ -240,7 +237,7 @@ class Client:
                     self.target,
                     details or "",
                     tls=self._tls,
-                    wait=self.connect_timeout,
+                    wait=wait,
                     method=method,
                 ) from None
         self._reached = True
@@ -254,8 +251,8 @@ class Client:
         timeout: float | None,
         wait_for_ready: bool | None = None,
     ) -> _T:
-        self._check_reachable(method)
         deadline = self.timeout if timeout is None else timeout
+        self._check_reachable(method, deadline)
         try:
             return rpc(
                 request,

@@ -656,9 +656,13 @@ def _run_pool(args: argparse.Namespace) -> int:
                     default_confidence=args.default_confidence,
                     refit_every_labels=args.refit_every_labels,
                 )
-            except AlreadyExists:
+            except AlreadyExists as error:
                 if not args.exist_ok:
-                    raise
+                    raise AlreadyExists(
+                        f"{error.details} Add --exist-ok to accept a pool that already exists.",
+                        code=error.code,
+                        method=error.method,
+                    ) from None
                 pool = client.get_pool(pool_id)
                 differ = _settings_differ(pool, args)
                 note = f"; it differs from the flags given: {', '.join(differ)}" if differ else ""

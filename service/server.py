@@ -12,6 +12,7 @@ import dataclasses
 import json
 import logging
 import signal
+import socket
 import ssl
 import sys
 import threading
@@ -167,6 +168,35 @@ def _open_engine(config: ServerConfig, database: Database, auth: Authenticator) 
     return engine
 
 
+def _check_can_bind(listen: str, host: str, port: int) -> None:
+    """ValueError in plain words when ``host:port`` cannot be bound (e.g. already in use).
+
+    gRPC's own failure reads "Failed to bind" plus a hint about its debug logging; the
+    operating system's reason is what a person needs. Port 0 always binds.
+    """
+    if port == 0:
+        return
+    try:
+        infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)
+    except socket.gaierror as error:
+        raise ValueError(
+            f"listen = {listen!r}: cannot resolve {host!r} ({error.strerror}); use an "
+            "address of this machine, e.g. 127.0.0.1:50051 or 0.0.0.0:50051."
+        ) from None
+    family, _, _, _, address = infos[0]
+    with socket.socket(family, socket.SOCK_STREAM) as probe:
+        probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        try:
+            probe.bind(address)
+        except OSError as error:
+            reason = (error.strerror or str(error)).lower()
+            raise ValueError(
+                f"listen = {listen!r}: cannot bind ({reason}). Another leadline server or "
+                "another program may listen there: stop it, or give this server another "
+                "address with --listen HOST:PORT (or LEADLINE_LISTEN)."
+            ) from None
+
+
 def start_server(config: ServerConfig) -> RunningServer:
     """Open the data dir, rebuild the pools, start serving.
 
@@ -178,6 +208,8 @@ def start_server(config: ServerConfig) -> RunningServer:
     credentials = _credentials(config)
     database = Database(config.data_dir)
     try:
+        # Before the pools load (seconds for large ones): a taken port fails at once.
+        _check_can_bind(config.listen, host, port)
         auth = Authenticator(tokens, holder_key=database.holder_key)
         engine = _open_engine(config, database, auth)
     except BaseException:

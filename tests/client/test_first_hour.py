@@ -309,6 +309,39 @@ def test_server_config_errors_from_the_environment_name_the_variable(tmp_path: P
     ), done.stderr
 
 
+def test_a_second_server_on_a_taken_port_says_so(tmp_path: Path) -> None:
+    import socket
+
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        port = taken.getsockname()[1]
+        done = subprocess.run(
+            [
+                sys.executable,
+                "-m",
+                "leadline.client.cli",
+                "serve",
+                "--data-dir",
+                str(tmp_path),
+                "--insecure-no-auth",
+                "--listen",
+                f"127.0.0.1:{port}",
+            ],
+            capture_output=True,
+            text=True,
+            timeout=60,
+            check=False,
+        )
+    assert done.returncode == 2
+    assert done.stderr.splitlines()[-1] == (
+        f"leadline serve: listen = '127.0.0.1:{port}': cannot bind (address already in use). "
+        "Another leadline server or another program may listen there: stop it, or give this "
+        "server another address with --listen HOST:PORT (or LEADLINE_LISTEN)."
+    )
+    assert "add_port" not in done.stderr  # no gRPC log line before it
+
+
 # -- 6, 7. the gate's words: the one-sided bound it used, a hint the pool can honour ----------
 
 
@@ -525,6 +558,24 @@ def test_pool_create_exist_ok_says_the_pool_already_existed(
     )
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip() == "pools/digits already existed; left as it is (--exist-ok)"
+    without = run_cli(
+        "pool",
+        "create",
+        "--pool",
+        labeled_digits.pool,
+        "--task",
+        "classification",
+        "--classes",
+        "10",
+        "--features",
+        "64",
+        "--loss",
+        "zero-one",
+        token=TOKENS["admin"],
+        target=server.target,
+    )
+    assert without.returncode == 3
+    assert without.stderr.rstrip().endswith("Add --exist-ok to accept a pool that already exists.")
 
 
 # -- 12. the report of a pool without labels -----------------------------------------------

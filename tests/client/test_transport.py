@@ -9,6 +9,7 @@ covered in test_integration.py and test_restart.py.
 from __future__ import annotations
 
 import threading
+import time
 from collections import Counter
 from collections.abc import Iterator
 from concurrent import futures
@@ -22,6 +23,7 @@ from leadline.client import (
     AlreadyExists,
     Client,
     Conflict,
+    DeadlineExceeded,
     InvalidRequest,
     LeadlineError,
     NotFound,
@@ -38,6 +40,7 @@ class _ScriptedIngest(leadline_pb2_grpc.IngestServiceServicer):
         self.attempts: Counter[str] = Counter()
         self.metadata: list[dict[str, str]] = []
         self.time_remaining: list[float] = []
+        self.delay = 0.0
         self.lock = threading.Lock()
 
     def IngestItems(self, request, context):  # noqa: N802 - gRPC method name
@@ -46,6 +49,8 @@ class _ScriptedIngest(leadline_pb2_grpc.IngestServiceServicer):
             attempt = self.attempts[request.request_id]
         self.metadata.append(dict(context.invocation_metadata()))
         self.time_remaining.append(context.time_remaining())
+        if self.delay:
+            time.sleep(self.delay)
         if self.abort_code is not None:
             context.abort(self.abort_code, f"scripted {self.abort_code.name}")
         if attempt <= self.fail_first:
@@ -153,3 +158,19 @@ def test_unreachable_server_gives_unavailable_after_retries_without_wait_for_rea
         with pytest.raises(Unavailable) as caught:
             client.get_pool("p")
     assert caught.value.code is grpc.StatusCode.UNAVAILABLE
+
+
+def test_a_call_past_its_deadline_raises_deadline_exceeded_saying_so(scripted) -> None:
+    servicer, target = scripted
+    servicer.delay = 1.0
+    with (
+        Client(target, timeout=0.3, ingest_timeout=0.3) as client,
+        pytest.raises(DeadlineExceeded) as caught,
+    ):
+        _ingest(client)
+    # The class, the code and the words agree; it is still an Unavailable for handlers.
+    assert isinstance(caught.value, Unavailable)
+    assert caught.value.code is grpc.StatusCode.DEADLINE_EXCEEDED
+    assert str(caught.value).startswith(
+        f"DEADLINE_EXCEEDED in IngestItems: no reply from {target} within 0.3 s"
+    )
