@@ -141,20 +141,22 @@ class ValidationColumns:
         segments: Sequence[str] | np.ndarray | None = None,
     ) -> ValidationColumns:
         """Check shapes; classification labels must be whole numbers (sent as class_labels),
-        regression labels are sent as values. ValueError names the argument and the rule."""
+        regression labels are sent as values. InvalidRequest names the argument and the rule."""
         rows = IngestColumns.from_arrays(item_ids, features, outputs, segments=segments)
         n = len(rows)
         values = np.asarray(labels)
         if values.shape != (n,):
-            raise ValueError(f"labels has shape {values.shape}, must be ({n},): one per item.")
+            raise invalid_argument(
+                f"labels has shape {values.shape}, must be ({n},): one per item."
+            )
         if values.dtype.kind not in "iuf":
-            raise ValueError(f"labels has dtype {values.dtype}, must be numeric.")
+            raise invalid_argument(f"labels has dtype {values.dtype}, must be numeric.")
         if classification:
             whole = np.isfinite(values) & (values == np.round(values))
             if not whole.all():
                 row = int(np.flatnonzero(~whole)[0])
-                raise ValueError(
-                    f"labels[{row}] == {values[row].item()!r}: a classification pool takes class "
+                raise invalid_argument(
+                    f"labels[{row}] = {values[row].item()!r}: a classification pool takes class "
                     "indices (whole numbers)."
                 )
             return cls(rows, values.astype(np.int64), True)

@@ -1,11 +1,12 @@
 """Prometheus text exposition (format 0.0.4) on a separate loopback port, stdlib only.
 
 Request counters and latency histograms are fed by the auth interceptor, labelled with
-the short method name (``GetPool``) from a closed set (:func:`method_label`); pool gauges (items, labels, pending, skipped, draws,
-surrogate version, whole-pool risk estimate and its bounds), refit and commit counters are
-read from the engine at scrape time. The bounds carry a ``bound`` label saying which they
-are: ``fixed-time`` (valid at one look) or ``anytime`` (valid however often it is read),
-both two-sided at the pool's default confidence.
+the short method name (``GetPool``) from a closed set (:func:`method_label`); pool gauges
+(items, labels, pending, skipped, draws, surrogate version, whole-pool risk estimate and
+its bounds), refit and commit counters are read from the engine at scrape time. The
+bounds carry a ``bound`` label saying which they are: ``fixed-time`` (valid at one look)
+or ``anytime`` (valid however often it is read), both two-sided at the pool's default
+confidence.
 """
 
 from __future__ import annotations

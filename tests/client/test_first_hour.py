@@ -476,7 +476,7 @@ def test_every_flag_has_help_and_every_command_names_its_pool_with_pool() -> Non
                 for choice in action._choices_actions:
                     assert choice.help, f"leadline {name} {choice.dest}"
     for name, parser in commands.items():
-        if name in ("serve", "check", "pool", "pool list", "demo"):
+        if name in ("serve", "check", "pool", "pool list", "validation", "demo"):
             continue
         options = {s for a in parser._actions for s in a.option_strings}
         positionals = [a.dest for a in parser._actions if not a.option_strings]

@@ -17,7 +17,7 @@ from sklearn.datasets import load_digits
 from sklearn.model_selection import cross_val_predict
 from sklearn.tree import DecisionTreeClassifier
 
-from leadline.client import Client, LocalServer
+from leadline.client import Client, InvalidRequest, LocalServer
 from leadline.client.export import read_draws_csv
 
 from .conftest import ALL_ROLES_TOKEN, TOKENS, digits_pool, label_rounds, run_cli
@@ -90,7 +90,7 @@ def test_add_validation_is_batched_repeatable_and_checked_before_sending(
         info = client.get_pool("batched-validation")
         assert (info.validation_count, info.item_count) == (600, 0)
         half = rows["labels"][:3] + 0.5
-        with pytest.raises(ValueError, match=r"labels\[0\] == 0.5: a classification pool"):
+        with pytest.raises(InvalidRequest, match=r"labels\[0\] = 0.5: a classification pool"):
             client.add_validation(
                 "batched-validation",
                 rows["item_ids"][:3],
@@ -98,7 +98,7 @@ def test_add_validation_is_batched_repeatable_and_checked_before_sending(
                 rows["outputs"][:3],
                 half,
             )
-        with pytest.raises(ValueError, match=r"labels has shape \(2,\), must be \(3,\)"):
+        with pytest.raises(InvalidRequest, match=r"labels has shape \(2,\), must be \(3,\)"):
             client.add_validation(
                 "batched-validation",
                 rows["item_ids"][:3],
@@ -190,8 +190,8 @@ def test_cli_adds_validation_items_from_npz_and_csv_and_status_shows_them(
             "status", "--pool", data.pool, "--json", token=ALL_ROLES_TOKEN, target=server.target
         ).stdout
     )
-    assert shown["pool"]["validation_count"] == "600"
-    assert shown["estimate"]["items_in_scope"] == str(len(data.item_ids))
+    assert shown["pool"]["validation_count"] == 600  # plain numbers (README "JSON output")
+    assert shown["estimate"]["items_in_scope"] == len(data.item_ids)
     # The export lists draws of pool items only.
     out = tmp_path / "draws.csv"
     done = run_cli(
