@@ -723,8 +723,8 @@ def _run_validation(args: argparse.Namespace) -> int:
         f"({result.duplicates:,} duplicates, {result.rejected:,} rejected); the pool holds "
         f"{result.item_count:,} validation items"
     )
-    for error in result.errors:
-        print(f"  rejected {error.item_id}: {error.reason}")
+    for problem in result.errors:
+        print(f"  rejected {problem.item_id}: {problem.reason}")
     if result.accepted:
         print("  a surrogate refit on them starts now; the next draw waits for it")
     return EXIT_OK
