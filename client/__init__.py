@@ -37,6 +37,7 @@ from leadline.client._errors import (  # noqa: E402
     LeadlineError,
     NotFound,
     Overloaded,
+    PartiallyAccepted,
     Unavailable,
 )
 from leadline.client._local_server import LocalServer  # noqa: E402
@@ -65,6 +66,7 @@ __all__ = [
     "LocalServer",
     "NotFound",
     "Overloaded",
+    "PartiallyAccepted",
     "Skip",
     "TlsConfig",
     "Unavailable",

@@ -29,7 +29,13 @@ from leadline.client._batching import (
     build_validation_batches,
 )
 from leadline.client._enums import parse_enum
-from leadline.client._errors import LeadlineError, error_from_rpc, invalid_argument, unreachable
+from leadline.client._errors import (
+    LeadlineError,
+    PartiallyAccepted,
+    error_from_rpc,
+    invalid_argument,
+    unreachable,
+)
 from leadline.client._results import Estimate, GateResult
 from leadline.client._tls import TlsConfig
 from leadline.v1 import leadline_pb2, leadline_pb2_grpc
@@ -122,9 +128,30 @@ class IngestResult:
     # items in the pool after the last message (add_validation: validation items)
     item_count: int = 0
     messages: int = 0  # ItemBatch messages sent
+    # True when more rows were rejected than ``errors`` lists (at most 20 per message).
+    errors_truncated: bool = False
 
 
 Outcome = int | float | Skip | np.integer | np.floating
+
+
+def _raise_if_partial(method: str, reply: Any, kept: int, what: str) -> None:
+    """PartiallyAccepted when the reply says some items were refused."""
+    # A server from before the `rejected` count lists the refused items only in errors.
+    rejected = max(int(reply.rejected), len(reply.errors))
+    if not rejected:
+        return
+    first = reply.errors[0].reason if reply.errors else "no reason given"
+    listed = (
+        f"the first {len(reply.errors)} are in response.errors"
+        if reply.errors_truncated
+        else "all are in response.errors"
+    )
+    raise PartiallyAccepted(
+        f"{kept} {what} kept, {rejected} refused ({listed}); first: {first}",
+        response=reply,
+        method=method,
+    )
 
 
 class Client:
@@ -441,7 +468,15 @@ class Client:
             errors.extend(summary.errors)
             item_count = summary.item_count
             messages += 1
-        return IngestResult(accepted, duplicates, rejected, errors, item_count, messages)
+        return IngestResult(
+            accepted,
+            duplicates,
+            rejected,
+            errors,
+            item_count,
+            messages,
+            errors_truncated=rejected > len(errors),
+        )
 
     def add_validation(
         self,
@@ -499,7 +534,15 @@ class Client:
             errors.extend(summary.errors)
             item_count = summary.item_count
             messages += 1
-        return IngestResult(accepted, duplicates, rejected, errors, item_count, messages)
+        return IngestResult(
+            accepted,
+            duplicates,
+            rejected,
+            errors,
+            item_count,
+            messages,
+            errors_truncated=rejected > len(errors),
+        )
 
     # -- labeling -------------------------------------------------------------------------
 
@@ -536,12 +579,14 @@ class Client:
         labeler: str,
         request_id: str | None = None,
         timeout: float | None = None,
+        allow_partial: bool = False,
     ) -> leadline_pb2.SubmitLabelsResponse:
         """Submit outcomes for held assignments: ``{assignment_id: outcome}`` or pairs.
 
         An outcome is an int class label (classification), a float target value
-        (regression) or :class:`Skip`. Per-item problems come back in ``errors``; the
-        rest are kept.
+        (regression) or :class:`Skip`. If the server refuses some of them (the rest are
+        kept), :class:`PartiallyAccepted` is raised with the reply in ``response``;
+        ``allow_partial=True`` returns the reply instead (check its ``rejected``).
         """
         pairs = labels.items() if isinstance(labels, Mapping) else labels
         request = leadline_pb2.SubmitLabelsRequest(
@@ -549,7 +594,10 @@ class Client:
         )
         for assignment_id, outcome in pairs:
             request.labels.append(_submission(assignment_id, outcome))
-        return self._call("SubmitLabels", self._labeling.SubmitLabels, request, timeout=timeout)
+        reply = self._call("SubmitLabels", self._labeling.SubmitLabels, request, timeout=timeout)
+        if not allow_partial:
+            _raise_if_partial("SubmitLabels", reply, reply.accepted, "labels")
+        return reply
 
     def release(
         self,
@@ -559,15 +607,22 @@ class Client:
         labeler: str,
         request_id: str | None = None,
         timeout: float | None = None,
+        allow_partial: bool = False,
     ) -> leadline_pb2.ReleaseItemsResponse:
-        """Give held assignments back unlabeled; they will be offered again."""
+        """Give held assignments back unlabeled; they will be offered again.
+
+        Raises :class:`PartiallyAccepted` when some were refused (unless ``allow_partial``).
+        """
         request = leadline_pb2.ReleaseItemsRequest(
             pool=pool_name(pool),
             assignment_ids=list(assignment_ids),
             labeler=labeler,
             request_id=request_id or str(uuid.uuid4()),
         )
-        return self._call("ReleaseItems", self._labeling.ReleaseItems, request, timeout=timeout)
+        reply = self._call("ReleaseItems", self._labeling.ReleaseItems, request, timeout=timeout)
+        if not allow_partial:
+            _raise_if_partial("ReleaseItems", reply, reply.released, "assignments")
+        return reply
 
     # -- estimates ------------------------------------------------------------------------
 

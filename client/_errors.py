@@ -10,8 +10,9 @@ handle everything, or a subclass to react to one kind of failure::
     ├── AccessDenied              UNAUTHENTICATED, PERMISSION_DENIED: token or role
     ├── Conflict                  FAILED_PRECONDITION, ABORTED: state forbids the call
     ├── Overloaded                RESOURCE_EXHAUSTED: back-pressure or size limit
-    └── Unavailable               UNAVAILABLE: the server cannot be reached
-        └── DeadlineExceeded      DEADLINE_EXCEEDED: no reply within the call's deadline
+    ├── Unavailable               UNAVAILABLE: the server cannot be reached
+    │   └── DeadlineExceeded      DEADLINE_EXCEEDED: no reply within the call's deadline
+    └── PartiallyAccepted         the call succeeded for some items only (``response``)
 
 Arguments the client refuses before sending anything raise :class:`InvalidRequest` too
 (code INVALID_ARGUMENT, as the server would answer). Messages name the argument, the
@@ -19,6 +20,8 @@ value and the rule; connection failures name the target, what happened and what 
 """
 
 from __future__ import annotations
+
+from typing import Any
 
 import grpc
 
@@ -31,6 +34,7 @@ __all__ = [
     "LeadlineError",
     "NotFound",
     "Overloaded",
+    "PartiallyAccepted",
     "Unavailable",
     "error_from_rpc",
     "invalid_argument",
@@ -85,6 +89,20 @@ class Unavailable(LeadlineError):
 
 class DeadlineExceeded(Unavailable):
     """No reply within the call's deadline (DEADLINE_EXCEEDED): down, restarting or busy."""
+
+
+class PartiallyAccepted(LeadlineError):
+    """The server kept some items of the call and refused others (the call itself
+    succeeded, so ``code`` is None). ``response`` is the server's reply: what was kept,
+    how many were refused (``rejected``) and the first few reasons (``errors``)."""
+
+    def __init__(self, message: str, *, response: Any, method: str = "") -> None:
+        super().__init__(message, method=method)
+        self.response = response
+
+    def __str__(self) -> str:
+        where = f" in {self.method}" if self.method else ""
+        return f"PARTIALLY_ACCEPTED{where}: {self.details}"
 
 
 _BY_CODE: dict[grpc.StatusCode, type[LeadlineError]] = {

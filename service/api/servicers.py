@@ -70,7 +70,9 @@ def _raise_if_nothing_applied(result: OutcomeResult) -> None:
         kind = getattr(errors, first.kind, None)
         if not (isinstance(kind, type) and issubclass(kind, errors.ServiceError)):
             kind = errors.FailedPrecondition
-        raise kind(first.reason, field=first.field)
+        more = result.rejected - 1
+        reason = first.reason + (f" (and {more} more refused)" if more > 0 else "")
+        raise kind(reason, field=first.field)
 
 
 class PoolServicer(pb_grpc.PoolServiceServicer):
@@ -141,6 +143,7 @@ class IngestServicer(pb_grpc.IngestServiceServicer):
             rejected=result.rejected,
             errors=[convert.item_error(problem) for problem in result.errors],
             item_count=result.item_count,
+            errors_truncated=result.rejected > len(result.errors),
         )
 
     @rpc_method
@@ -205,7 +208,10 @@ class LabelingServicer(pb_grpc.LabelingServiceServicer):
             self._on_labels()
         _raise_if_nothing_applied(result)
         return pb.SubmitLabelsResponse(
-            accepted=result.accepted, errors=[convert.item_error(p) for p in result.errors]
+            accepted=result.accepted,
+            errors=[convert.item_error(p) for p in result.errors],
+            rejected=result.rejected,
+            errors_truncated=result.rejected > len(result.errors),
         )
 
     @rpc_method
@@ -220,7 +226,10 @@ class LabelingServicer(pb_grpc.LabelingServiceServicer):
         )
         _raise_if_nothing_applied(result)
         return pb.ReleaseItemsResponse(
-            released=result.accepted, errors=[convert.item_error(p) for p in result.errors]
+            released=result.accepted,
+            errors=[convert.item_error(p) for p in result.errors],
+            rejected=result.rejected,
+            errors_truncated=result.rejected > len(result.errors),
         )
 
 

@@ -147,6 +147,7 @@ def submit(
     result = OutcomeResult(
         accepted=len(to_label) + len(to_skip) + noop,
         errors=tuple(problems[:MAX_ITEM_ERRORS]),
+        rejected=len(problems),
     )
     return result, writes
 
@@ -184,7 +185,10 @@ def release(
     if changed:
         writes.append(store.update_draws(pool.pool_id, [draws.outcome_record(i) for i in changed]))
         pool.touch()
-    return OutcomeResult(accepted=released, errors=tuple(problems[:MAX_ITEM_ERRORS])), writes
+    result = OutcomeResult(
+        accepted=released, errors=tuple(problems[:MAX_ITEM_ERRORS]), rejected=len(problems)
+    )
+    return result, writes
 
 
 def _new_assignment_id(draw_index: int) -> str:

@@ -96,10 +96,12 @@ class LabelInput:
 
 @dataclass(frozen=True)
 class OutcomeResult:
-    """Result of SubmitLabels / ReleaseItems: how many applied, and the per-item problems."""
+    """Result of SubmitLabels / ReleaseItems: how many applied, how many refused, and the
+    first few per-item problems (``errors`` may be shorter than ``rejected``)."""
 
     accepted: int
     errors: tuple[ItemProblem, ...] = ()
+    rejected: int = 0
 
 
 @dataclass(frozen=True)
@@ -183,4 +185,8 @@ def decode_pool_info(data: bytes) -> PoolInfo:
 
 def decode_outcome(data: bytes) -> OutcomeResult:
     raw = json.loads(data)
-    return OutcomeResult(accepted=raw["accepted"], errors=_problems(raw["errors"]))
+    errors = _problems(raw["errors"])
+    # Results remembered before the count existed: the listed errors are all we know.
+    return OutcomeResult(
+        accepted=raw["accepted"], errors=errors, rejected=raw.get("rejected", len(errors))
+    )

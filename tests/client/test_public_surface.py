@@ -37,6 +37,7 @@ _PUBLIC = {
     "LocalServer",
     "NotFound",
     "Overloaded",
+    "PartiallyAccepted",
     "Skip",
     "TlsConfig",
     "Unavailable",

@@ -224,18 +224,20 @@ class ItemError(_message.Message):
     def __init__(self, item_id: _Optional[str] = ..., reason: _Optional[str] = ..., field: _Optional[str] = ...) -> None: ...
 
 class IngestSummary(_message.Message):
-    __slots__ = ("accepted", "duplicates", "rejected", "errors", "item_count")
+    __slots__ = ("accepted", "duplicates", "rejected", "errors", "item_count", "errors_truncated")
     ACCEPTED_FIELD_NUMBER: _ClassVar[int]
     DUPLICATES_FIELD_NUMBER: _ClassVar[int]
     REJECTED_FIELD_NUMBER: _ClassVar[int]
     ERRORS_FIELD_NUMBER: _ClassVar[int]
     ITEM_COUNT_FIELD_NUMBER: _ClassVar[int]
+    ERRORS_TRUNCATED_FIELD_NUMBER: _ClassVar[int]
     accepted: int
     duplicates: int
     rejected: int
     errors: _containers.RepeatedCompositeFieldContainer[ItemError]
     item_count: int
-    def __init__(self, accepted: _Optional[int] = ..., duplicates: _Optional[int] = ..., rejected: _Optional[int] = ..., errors: _Optional[_Iterable[_Union[ItemError, _Mapping]]] = ..., item_count: _Optional[int] = ...) -> None: ...
+    errors_truncated: bool
+    def __init__(self, accepted: _Optional[int] = ..., duplicates: _Optional[int] = ..., rejected: _Optional[int] = ..., errors: _Optional[_Iterable[_Union[ItemError, _Mapping]]] = ..., item_count: _Optional[int] = ..., errors_truncated: _Optional[bool] = ...) -> None: ...
 
 class AcquireItemsRequest(_message.Message):
     __slots__ = ("pool", "count", "labeler", "lease_seconds", "request_id")
@@ -300,12 +302,16 @@ class SubmitLabelsRequest(_message.Message):
     def __init__(self, pool: _Optional[str] = ..., labels: _Optional[_Iterable[_Union[LabelSubmission, _Mapping]]] = ..., request_id: _Optional[str] = ..., labeler: _Optional[str] = ...) -> None: ...
 
 class SubmitLabelsResponse(_message.Message):
-    __slots__ = ("accepted", "errors")
+    __slots__ = ("accepted", "errors", "rejected", "errors_truncated")
     ACCEPTED_FIELD_NUMBER: _ClassVar[int]
     ERRORS_FIELD_NUMBER: _ClassVar[int]
+    REJECTED_FIELD_NUMBER: _ClassVar[int]
+    ERRORS_TRUNCATED_FIELD_NUMBER: _ClassVar[int]
     accepted: int
     errors: _containers.RepeatedCompositeFieldContainer[ItemError]
-    def __init__(self, accepted: _Optional[int] = ..., errors: _Optional[_Iterable[_Union[ItemError, _Mapping]]] = ...) -> None: ...
+    rejected: int
+    errors_truncated: bool
+    def __init__(self, accepted: _Optional[int] = ..., errors: _Optional[_Iterable[_Union[ItemError, _Mapping]]] = ..., rejected: _Optional[int] = ..., errors_truncated: _Optional[bool] = ...) -> None: ...
 
 class ReleaseItemsRequest(_message.Message):
     __slots__ = ("pool", "assignment_ids", "labeler", "request_id")
@@ -320,12 +326,16 @@ class ReleaseItemsRequest(_message.Message):
     def __init__(self, pool: _Optional[str] = ..., assignment_ids: _Optional[_Iterable[str]] = ..., labeler: _Optional[str] = ..., request_id: _Optional[str] = ...) -> None: ...
 
 class ReleaseItemsResponse(_message.Message):
-    __slots__ = ("released", "errors")
+    __slots__ = ("released", "errors", "rejected", "errors_truncated")
     RELEASED_FIELD_NUMBER: _ClassVar[int]
     ERRORS_FIELD_NUMBER: _ClassVar[int]
+    REJECTED_FIELD_NUMBER: _ClassVar[int]
+    ERRORS_TRUNCATED_FIELD_NUMBER: _ClassVar[int]
     released: int
     errors: _containers.RepeatedCompositeFieldContainer[ItemError]
-    def __init__(self, released: _Optional[int] = ..., errors: _Optional[_Iterable[_Union[ItemError, _Mapping]]] = ...) -> None: ...
+    rejected: int
+    errors_truncated: bool
+    def __init__(self, released: _Optional[int] = ..., errors: _Optional[_Iterable[_Union[ItemError, _Mapping]]] = ..., rejected: _Optional[int] = ..., errors_truncated: _Optional[bool] = ...) -> None: ...
 
 class GetEstimateRequest(_message.Message):
     __slots__ = ("pool", "confidence", "mode", "segment", "start_time_ms", "end_time_ms")

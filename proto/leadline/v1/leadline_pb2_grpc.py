@@ -431,8 +431,9 @@ class LabelingServiceServicer:
         raise NotImplementedError('Method not implemented!')
 
     def SubmitLabels(self, request, context):
-        """Labels (or skips) held assignments. Per-item problems are listed in errors; the rest
-        are kept. Re-submitting the same label is a no-op.
+        """Labels (or skips) held assignments. Per-item problems are counted in rejected and the
+        first few listed in errors; the rest are kept. Re-submitting the same label is a
+        no-op (counted as accepted).
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
