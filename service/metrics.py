@@ -189,6 +189,24 @@ class Metrics:
         lines.append(f"leadline_refit_seconds_total {self._engine.refit_seconds_total}")
         family("leadline_store_commits_total", "counter", "SQLite group commits.")
         lines.append(f"leadline_store_commits_total {self._database.commits}")
+        family(
+            "leadline_store_write_failures_total",
+            "counter",
+            "Writes the database refused for a reason of its own (disk full, I/O error).",
+        )
+        lines.append(f"leadline_store_write_failures_total {self._database.store_failures}")
+        family(
+            "leadline_store_refusing_writes",
+            "gauge",
+            "1 while writes are refused after a store failure, until a probe write commits.",
+        )
+        lines.append(f"leadline_store_refusing_writes {int(self._database.failure is not None)}")
+        family(
+            "leadline_pool_reloads_total",
+            "counter",
+            "Pools rebuilt from the database after a write of theirs was not saved.",
+        )
+        lines.append(f"leadline_pool_reloads_total {self._engine.reload_count}")
         return "\n".join(lines) + "\n"
 
 

@@ -514,10 +514,18 @@ class Engine:
         if self._closed:
             raise Unavailable("the server is shutting down; retry on another replica or later.")
 
-    def _check_writable(self, what: str) -> None:
+    def _check_writable(self, what: str, *, probe: bool = True) -> None:
         """Unavailable, before anything changes, while the store refuses writes (a failure
-        episode, see Database.write_refusal): no memory change, so no reload either."""
-        refusal = self._db.write_refusal()
+        episode, see Database.write_refusal): no memory change, so no reload either.
+
+        ``probe=False`` (under a pool lock) only looks at the episode, never waits for a
+        probe write.
+        """
+        if probe:
+            refusal = self._db.write_refusal()
+        else:
+            failure = self._db.failure
+            refusal = None if failure is None else f"the database refuses writes ({failure.cause})"
         if refusal is not None:
             raise Unavailable(
                 f"{what}: the write was not saved ({refusal}). Retry with the same "
@@ -619,6 +627,9 @@ class Engine:
                 if request_id:
                     # A call with this id may have started while the lock was free.
                     prior = self._prior(pool, method, call, memory_only=True)
+                if prior is None:
+                    # An episode may have begun meanwhile (and this pool been reloaded).
+                    self._check_writable(f"pool = 'pools/{pool_id}'", probe=False)
                 epoch = pool.epoch
                 if prior is None:
                     result, writes = work(pool)

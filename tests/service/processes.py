@@ -34,9 +34,17 @@ def serve_command(data_dir: Path, tokens: Path, *extra: str) -> list[str]:
 class ServerProcess:
     """One ``leadline serve`` child; its stderr goes to ``log`` (a file, read any time)."""
 
-    def __init__(self, data_dir: Path, tokens: Path, *extra: str, prefix: list[str] | None = None):
+    def __init__(
+        self,
+        data_dir: Path,
+        tokens: Path,
+        *extra: str,
+        prefix: list[str] | None = None,
+        log_dir: Path | None = None,
+    ):
         self.data_dir = data_dir
-        self.log_path = data_dir.parent / f"{data_dir.name}-server-{time.monotonic_ns()}.log"
+        folder = log_dir or data_dir.parent
+        self.log_path = folder / f"{data_dir.name}-server-{time.monotonic_ns()}.log"
         self.command = [*(prefix or []), *serve_command(data_dir, tokens, *extra)]
         with self.log_path.open("wb") as log:
             self.process = subprocess.Popen(
@@ -65,6 +73,13 @@ class ServerProcess:
                 )
             time.sleep(0.05)
         raise AssertionError(f"server did not listen within {timeout} s:\n{self.log()}")
+
+    def metrics_port(self) -> int:
+        """The metrics port from the log line "metrics on http://HOST:PORT/metrics"."""
+        for line in self.log().splitlines():
+            if "metrics on http://" in line:
+                return int(line.rsplit(":", 1)[1].split("/", 1)[0])
+        raise AssertionError(f"no metrics line in the log:\n{self.log()}")
 
     def wait_exit(self, timeout: float = 60.0) -> int | None:
         """The exit code, or None if it still runs after ``timeout``."""
