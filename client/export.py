@@ -10,6 +10,12 @@ label_time_ms, skip_reason``
 is filled for a labeled draw (by the pool's task), ``loss`` is empty unless labeled.
 Floats are written with Python's shortest exact representation, so reading the file
 back gives the very same numbers.
+
+Text cells (item_id, segment, labeler, skip_reason) come from other programs and people.
+A spreadsheet would run a cell starting with ``=``, ``+``, ``-``, ``@``, a tab or a carriage
+return as a formula (CSV / formula injection), so such a cell is written with a ``'`` in
+front, as the OWASP "CSV Injection" guidance advises; a cell that itself starts with ``'``
+gets one more, so :func:`read_draws_csv` removes exactly one and reads back the original.
 """
 
 from __future__ import annotations
@@ -44,13 +50,31 @@ CSV_COLUMNS = (
 )
 
 
+# OWASP, "CSV Injection": the characters that make a spreadsheet cell a formula.
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+_NEUTRAL = "'"
+_TEXT_COLUMNS = ("item_id", "segment", "labeler", "skip_reason")
+
+
+def neutralise(text: str) -> str:
+    """A text cell a spreadsheet shows as text, never runs (reversed by :func:`restore`)."""
+    if text.startswith(_FORMULA_START) or text.startswith(_NEUTRAL):
+        return _NEUTRAL + text
+    return text
+
+
+def restore(cell: str) -> str:
+    """The text :func:`neutralise` was given."""
+    return cell[1:] if cell.startswith(_NEUTRAL) else cell
+
+
 def _row(draw: leadline_pb2.Draw) -> list[str]:
     label = draw.WhichOneof("label")
     labeled = draw.status == leadline_pb2.DRAW_STATUS_LABELED
     return [
         str(draw.draw_index),
-        draw.item_id,
-        draw.segment,
+        neutralise(draw.item_id),
+        neutralise(draw.segment),
         enum_name("DrawStatus", draw.status),
         repr(draw.selection_probability),
         repr(draw.expected_loss),
@@ -59,10 +83,10 @@ def _row(draw: leadline_pb2.Draw) -> list[str]:
         str(draw.class_label) if label == "class_label" else "",
         repr(draw.value) if label == "value" else "",
         repr(draw.loss) if labeled else "",
-        draw.labeler,
+        neutralise(draw.labeler),
         str(draw.draw_time_ms),
         str(draw.label_time_ms),
-        draw.skip_reason,
+        neutralise(draw.skip_reason),
     ]
 
 
@@ -71,7 +95,8 @@ def write_draws_csv(draws: Iterable[leadline_pb2.Draw], out: str | Path | TextIO
     if isinstance(out, str | Path):
         with Path(out).open("w", newline="", encoding="utf-8") as handle:
             return write_draws_csv(draws, handle)
-    writer = csv.writer(out, lineterminator="\n")
+    # RFC 4180 line ends: the csv module then also quotes a cell holding a lone CR.
+    writer = csv.writer(out, lineterminator="\r\n")
     writer.writerow(CSV_COLUMNS)
     count = 0
     for draw in draws:
@@ -99,6 +124,8 @@ def read_draws_csv(source: str | Path | TextIO) -> list[leadline_pb2.Draw]:
                 f"line {line_number}: {len(row)} columns, expected {len(CSV_COLUMNS)}."
             )
         fields = dict(zip(CSV_COLUMNS, row, strict=True))
+        for column in _TEXT_COLUMNS:
+            fields[column] = restore(fields[column])
         try:
             draw = leadline_pb2.Draw(
                 draw_index=int(fields["draw_index"]),

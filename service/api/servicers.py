@@ -274,7 +274,9 @@ class EstimateServicer(pb_grpc.EstimateServiceServicer):
         start = 0
         if request.page_token:
             text = _decode_token(request.page_token)
-            if not text.isdigit():
+            # ASCII digits only: str.isdigit() also takes '²' or '٣', which int() refuses
+            # or reads as another number.
+            if not (text.isascii() and text.isdigit() and len(text) <= 18):
                 raise errors.InvalidArgument(
                     f"page_token = {request.page_token!r}: not a token this server issued.",
                     field="page_token",

