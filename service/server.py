@@ -160,7 +160,8 @@ def _open_engine(config: ServerConfig, database: Database, auth: Authenticator) 
     try:
         engine.load()
     except Exception as error:
-        _LOG.exception("loading the pools from %s failed", database.path)
+        # The traceback is for developers (--log-level DEBUG); the message says what to do.
+        _LOG.debug("loading the pools from %s failed", database.path, exc_info=True)
         raise DataDirectoryError(
             f"{str(database.path)!r}: the stored pools do not load ({error}). "
             f"{restore_hint(database.data_dir)}"

@@ -122,6 +122,14 @@ def _unread_table(data_dir: Path) -> None:
         handle.write(bytes(range(200, 216)))
 
 
+def _rows_gap(data_dir: Path) -> None:
+    """Sound to SQLite, unsound to leadline: an item row missing from the middle (what two
+    servers on one directory once left behind)."""
+    with contextlib.closing(sqlite3.connect(data_dir / DATABASE_FILE)) as connection:
+        connection.execute("DELETE FROM items WHERE row = 100")
+        connection.commit()
+
+
 def _empty_beside_a_log(data_dir: Path) -> None:
     (data_dir / "leadline.marker").unlink()
     _empty(data_dir)
@@ -136,8 +144,17 @@ def _empty_beside_a_log(data_dir: Path) -> None:
         (_header, False, "SQLite cannot open the database"),
         (_unread_table, False, "damaged; SQLite's quick_check reports"),
         (_empty_beside_a_log, True, "bytes of logged writes"),
+        (_rows_gap, False, "the stored pools do not load (pool 'tumours': item rows are not"),
     ],
-    ids=["empty", "missing", "truncated", "header", "unread-table", "empty-beside-wal"],
+    ids=[
+        "empty",
+        "missing",
+        "truncated",
+        "header",
+        "unread-table",
+        "empty-beside-wal",
+        "rows-gap",
+    ],
 )
 def test_a_lost_or_damaged_database_is_refused_with_its_path_and_the_next_step(
     tmp_path: Path,
