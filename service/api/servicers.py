@@ -164,6 +164,7 @@ class IngestServicer(pb_grpc.IngestServiceServicer):
             rejected=result.rejected,
             errors=[convert.item_error(problem) for problem in result.errors],
             item_count=result.item_count,
+            errors_truncated=result.rejected > len(result.errors),
         )
 
 
