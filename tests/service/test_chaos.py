@@ -25,8 +25,11 @@ from functools import partial
 from pathlib import Path
 from typing import TypeVar
 
-from leadline.client import Client, LocalServer, Skip, Unavailable
+import grpc
+
+from leadline.client import Client, LocalServer, Skip, Unavailable, Verdict
 from leadline.v1 import leadline_pb2 as pb
+from leadline.v1 import leadline_pb2_grpc as pb_grpc
 from tests.service.helpers import Dataset
 
 _T = TypeVar("_T")
@@ -166,7 +169,7 @@ def _gate(client: Client, ledger: Ledger, stop: threading.Event) -> None:
             ledger,
             lambda: client.check_gate(_POOL, max_risk=0.5, confidence=0.9),
         )
-        assert result.verdict in (pb.VERDICT_PASS, pb.VERDICT_FAIL, pb.VERDICT_UNDECIDED)
+        assert result.verdict in (Verdict.PASS, Verdict.FAIL, Verdict.UNDECIDED)
         with ledger.lock:
             ledger.gate_polls += 1
         time.sleep(0.05)
@@ -183,15 +186,31 @@ def _guarded(ledger: Ledger, work: Callable[[], None]) -> Callable[[], None]:
     return run
 
 
-def _snapshot(client: Client) -> list[bytes]:
+def _snapshot(client: Client, target: str) -> list[bytes]:
+    """The pool, its draws, the estimate in each mode and a gate, as the bytes on the wire."""
     pool = client.get_pool(_POOL)
     answers = [pool.SerializeToString(deterministic=True)]
     answers += [d.SerializeToString(deterministic=True) for d in client.list_draws(_POOL)]
-    for mode in ("unbiased", "surrogate", "balanced"):
-        estimate = client.get_estimate(_POOL, mode=mode)
-        answers.append(estimate.SerializeToString(deterministic=True))
-    gate = client.check_gate(_POOL, max_risk=0.5, confidence=0.9)
-    answers.append(gate.SerializeToString(deterministic=True))
+    metadata = (("authorization", "Bearer chaos-admin-token"),)
+    with grpc.insecure_channel(target) as channel:
+        estimates = pb_grpc.EstimateServiceStub(channel)
+        for mode in (
+            pb.ESTIMATOR_MODE_UNBIASED,
+            pb.ESTIMATOR_MODE_SURROGATE,
+            pb.ESTIMATOR_MODE_BALANCED,
+        ):
+            estimate = estimates.GetEstimate(
+                pb.GetEstimateRequest(pool=f"pools/{_POOL}", mode=mode),
+                metadata=metadata,
+                timeout=60,
+            )
+            answers.append(estimate.SerializeToString(deterministic=True))
+        gate = estimates.CheckGate(
+            pb.CheckGateRequest(pool=f"pools/{_POOL}", max_risk=0.5, confidence=0.9),
+            metadata=metadata,
+            timeout=60,
+        )
+        answers.append(gate.SerializeToString(deterministic=True))
     return answers
 
 
@@ -333,10 +352,10 @@ def test_kill_9_under_load_loses_nothing_acknowledged(tmp_path: Path, digits_poo
 
         # A clean restart gives byte-identical answers.
         _quiet(admin)
-        before = _snapshot(admin)
+        before = _snapshot(admin, server.target)
         assert server.stop() == 0
         server.start()
-        assert _snapshot(admin) == before
+        assert _snapshot(admin, server.target) == before
     finally:
         for client in (admin, gate, *vendors):
             client.close()
