@@ -362,7 +362,7 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             cold_err += float(losses[item] - fitted[0].expected_loss[item]) ** 2
         return cold_err < fit_err
 
-    def own_surrogate(m: int, labeled: np.ndarray, order: list[int]) -> SurrogateScores:
+    def own_surrogate(m: int, _labeled: np.ndarray, order: list[int]) -> SurrogateScores:
         nonlocal fit_seconds
         if m == 0 or m in refit_points:
             t0 = time.perf_counter()
@@ -405,7 +405,7 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
     )
     snapshot_points = sorted(snapshots)
 
-    def shared_surrogate(m: int, labeled: np.ndarray, order: list[int]) -> SurrogateScores:
+    def shared_surrogate(m: int, _labeled: np.ndarray, _order: list[int]) -> SurrogateScores:
         # The latest snapshot fitted at or before m (on leadline's labels, not this run's).
         return snapshots[max(p for p in snapshot_points if p <= m)]
 
@@ -415,12 +415,12 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             scenario,
             config,
             rng,
-            proposal=lambda s, c, done: s.expected_loss,
+            proposal=lambda s, _c, _done: s.expected_loss,
             floor=config.floor,
             surrogate_for=shared_surrogate,
         )
 
-        def oracle_proposal(s: SurrogateScores, c: np.ndarray, done: int) -> np.ndarray:
+        def oracle_proposal(s: SurrogateScores, c: np.ndarray, _done: int) -> np.ndarray:
             return np.abs(losses[c] - s.expected_loss)
 
         runs["oracle"] = _sequential_run(

@@ -833,7 +833,7 @@ def run_system_benchmark(
 ) -> SystemReport:
     """Every measurement of the table. Phases run one after the other (no refit runs
     while latencies are taken); within a phase, server calls and bare figures alternate."""
-    say = _progress if progress else (lambda message: None)
+    say = _progress if progress else (lambda _message: None)
     started = time.perf_counter()
     report = SystemReport(config=config, load_before=_load_average(), code=_code_version())
     spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=config.num_classes)

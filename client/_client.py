@@ -357,16 +357,22 @@ class Client:
             pool_id=pool_id, pool=pool, request_id=request_id or str(uuid.uuid4())
         )
         try:
-            return self._call("CreatePool", self._pools.CreatePool, request, timeout=timeout)
+            created: leadline_pb2.Pool = self._call(
+                "CreatePool", self._pools.CreatePool, request, timeout=timeout
+            )
         except LeadlineError as error:
             if exist_ok and error.code == grpc.StatusCode.ALREADY_EXISTS:
                 return self.get_pool(pool_id, timeout=timeout)
             raise
+        return created
 
     def get_pool(self, pool: str, *, timeout: float | None = None) -> leadline_pb2.Pool:
         """The pool's settings and counts (``pool``: id or 'pools/{id}')."""
         request = leadline_pb2.GetPoolRequest(name=pool_name(pool))
-        return self._call("GetPool", self._pools.GetPool, request, timeout=timeout)
+        found: leadline_pb2.Pool = self._call(
+            "GetPool", self._pools.GetPool, request, timeout=timeout
+        )
+        return found
 
     def iter_pools(
         self, *, page_size: int = 0, timeout: float | None = None
@@ -594,7 +600,9 @@ class Client:
         )
         for assignment_id, outcome in pairs:
             request.labels.append(_submission(assignment_id, outcome))
-        reply = self._call("SubmitLabels", self._labeling.SubmitLabels, request, timeout=timeout)
+        reply: leadline_pb2.SubmitLabelsResponse = self._call(
+            "SubmitLabels", self._labeling.SubmitLabels, request, timeout=timeout
+        )
         if not allow_partial:
             _raise_if_partial("SubmitLabels", reply, reply.accepted, "labels")
         return reply
@@ -619,7 +627,9 @@ class Client:
             labeler=labeler,
             request_id=request_id or str(uuid.uuid4()),
         )
-        reply = self._call("ReleaseItems", self._labeling.ReleaseItems, request, timeout=timeout)
+        reply: leadline_pb2.ReleaseItemsResponse = self._call(
+            "ReleaseItems", self._labeling.ReleaseItems, request, timeout=timeout
+        )
         if not allow_partial:
             _raise_if_partial("ReleaseItems", reply, reply.released, "assignments")
         return reply

@@ -6,6 +6,8 @@ the proto has ``LOSS_KIND_ZERO_ONE``; the enum's integer value is accepted as we
 
 from __future__ import annotations
 
+from typing import Literal, overload
+
 from leadline.client._errors import invalid_argument
 from leadline.v1 import leadline_pb2
 
@@ -36,6 +38,29 @@ def choices(enum_type: str) -> list[str]:
     ]
 
 
+# One overload per enum: the number comes back typed as the generated message fields want it.
+@overload
+def parse_enum(
+    enum_type: Literal["TaskType"], value: str | int | None, *, field: str = ""
+) -> leadline_pb2.TaskType: ...
+@overload
+def parse_enum(
+    enum_type: Literal["LossKind"], value: str | int | None, *, field: str = ""
+) -> leadline_pb2.LossKind: ...
+@overload
+def parse_enum(
+    enum_type: Literal["EstimatorMode"], value: str | int | None, *, field: str = ""
+) -> leadline_pb2.EstimatorMode: ...
+@overload
+def parse_enum(
+    enum_type: Literal["BoundKind"], value: str | int | None, *, field: str = ""
+) -> leadline_pb2.BoundKind: ...
+@overload
+def parse_enum(
+    enum_type: Literal["DrawStatus"], value: str | int | None, *, field: str = ""
+) -> leadline_pb2.DrawStatus: ...
+@overload
+def parse_enum(enum_type: str, value: str | int | None, *, field: str = "") -> int: ...
 def parse_enum(enum_type: str, value: str | int | None, *, field: str = "") -> int:
     """The enum number for ``value``; None and "" give 0 (UNSPECIFIED).
 
@@ -65,4 +90,5 @@ def enum_name(enum_type: str, number: int) -> str:
     value = _descriptor(enum_type).values_by_number.get(number)
     if value is None:
         return f"unknown({number})"
-    return value.name.removeprefix(prefix).lower().replace("_", "-")
+    name: str = value.name
+    return name.removeprefix(prefix).lower().replace("_", "-")

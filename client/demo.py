@@ -214,7 +214,7 @@ def build_scenario(*, seed: int, items: int) -> Scenario:
 def _normalised(probabilities: np.ndarray) -> np.ndarray:
     # float32 rounding can leave a row summing to 1 +- 1e-7: renormalise in float64 first.
     wide = np.asarray(probabilities, dtype=np.float64)
-    return (wide / wide.sum(axis=1, keepdims=True)).astype(np.float32)
+    return np.asarray((wide / wide.sum(axis=1, keepdims=True)).astype(np.float32))
 
 
 def iid_labels_for_half_width(
@@ -227,7 +227,7 @@ def iid_labels_for_half_width(
     population correction n = n0 / (1 + (n0 - 1) / N) (the standard sample-size formula
     for a proportion, as in the textbook "Sampling Techniques", 3rd ed., 1977).
     """
-    if not 0 < half_width:
+    if not half_width > 0:
         raise ValueError(f"half_width == {half_width}, must be > 0.")
     z = statistics.NormalDist().inv_cdf(0.5 + confidence / 2)
     n0 = z * z * risk * (1 - risk) / (half_width * half_width)

@@ -377,7 +377,7 @@ def main(argv: list[str] | None = None) -> int:
     _setup_logging(config)
     stop = threading.Event()
 
-    def on_signal(number: int, frame: object) -> None:
+    def on_signal(number: int, _frame: object) -> None:
         _LOG.info("received signal %d", number)
         stop.set()
 

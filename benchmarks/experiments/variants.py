@@ -30,12 +30,12 @@ def _core(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
     return np.asarray(usefulness(scores, loss_bound=context.spec.bound), dtype=float)
 
 
-def _plain(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+def _plain(scores: SurrogateScores, _context: RuleContext) -> np.ndarray:
     # The core's rule before the hedge: sqrt(E[(L - g)^2]).
     return np.asarray(usefulness(scores), dtype=float)
 
 
-def _expected_loss(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+def _expected_loss(scores: SurrogateScores, _context: RuleContext) -> np.ndarray:
     return np.maximum(scores.expected_loss, 0.0)
 
 
@@ -52,20 +52,20 @@ def worst_case_second_moment(scores: SurrogateScores, context: RuleContext) -> n
 def _with_spread(weight: float) -> UsefulnessRule:
     # Extra weight on the epistemic part: a label where the ensemble disagrees also
     # improves g for similar items (its value for the rest of the pool).
-    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+    def rule(scores: SurrogateScores, _context: RuleContext) -> np.ndarray:
         return np.sqrt(_second(scores) + weight * scores.spread**2)
 
     return rule
 
 
 def _power(exponent: float) -> UsefulnessRule:
-    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+    def rule(scores: SurrogateScores, _context: RuleContext) -> np.ndarray:
         return _second(scores) ** exponent
 
     return rule
 
 
-def _root_plus_loss(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+def _root_plus_loss(scores: SurrogateScores, _context: RuleContext) -> np.ndarray:
     # sqrt(E[(L-g)^2]) plus the expected loss, each normalised to mean 1.
     root = np.sqrt(_second(scores))
     g = np.maximum(scores.expected_loss, 0.0)
@@ -74,7 +74,7 @@ def _root_plus_loss(scores: SurrogateScores, context: RuleContext) -> np.ndarray
 
 def _smoothed(share: float) -> UsefulnessRule:
     # sqrt(E[(L-g)^2] + share * mean): a floor in the square-root scale.
-    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
+    def rule(scores: SurrogateScores, _context: RuleContext) -> np.ndarray:
         second = _second(scores)
         return np.sqrt(second + share * second.mean())
 

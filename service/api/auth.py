@@ -25,7 +25,7 @@ import time
 import tomllib
 from collections.abc import Callable, Mapping
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import grpc
 
@@ -180,8 +180,14 @@ class Authenticator:
         return found[0] if found is not None else ANONYMOUS
 
 
-def _refusal(code: grpc.StatusCode, message: str) -> grpc.RpcMethodHandler:
-    def refuse(request: Any, context: grpc.ServicerContext) -> Any:
+if TYPE_CHECKING:  # generic only in typeshed's stubs
+    _Handler = grpc.RpcMethodHandler[Any, Any]
+else:
+    _Handler = grpc.RpcMethodHandler
+
+
+def _refusal(code: grpc.StatusCode, message: str) -> _Handler:
+    def refuse(_request: Any, context: grpc.ServicerContext) -> Any:
         context.abort(code, message)
 
     return grpc.unary_unary_rpc_method_handler(refuse)
@@ -204,11 +210,13 @@ class AuthInterceptor(grpc.ServerInterceptor):
         self._observe = observe
 
     def intercept_service(
-        self, continuation: Callable[[Any], Any], handler_call_details: Any
-    ) -> Any:
+        self,
+        continuation: Callable[[grpc.HandlerCallDetails], _Handler | None],
+        handler_call_details: grpc.HandlerCallDetails,
+    ) -> _Handler | None:
         method: str = handler_call_details.method
         roles = required_roles(method)
-        refusal: grpc.RpcMethodHandler | None = None
+        refusal: _Handler | None = None
         if roles is not None:
             found = self._auth.identify(handler_call_details.invocation_metadata)
             if found is None:
@@ -228,9 +236,10 @@ class AuthInterceptor(grpc.ServerInterceptor):
             return handler
         return self._timed(method, handler)
 
-    def _timed(self, method: str, handler: grpc.RpcMethodHandler) -> grpc.RpcMethodHandler:
+    def _timed(self, method: str, handler: _Handler) -> _Handler:
         inner = handler.unary_unary
         observe = self._observe
+        assert inner is not None
         assert observe is not None
 
         def behavior(request: Any, context: grpc.ServicerContext) -> Any:
@@ -238,6 +247,7 @@ class AuthInterceptor(grpc.ServerInterceptor):
             try:
                 return inner(request, context)
             finally:
+                # ServicerContext.code() exists since grpcio 1.38; typeshed's stubs lack it.
                 code = context.code() or grpc.StatusCode.OK  # type: ignore[attr-defined]
                 observe(method, code, time.perf_counter() - started)
 

@@ -2,6 +2,14 @@
 
 from __future__ import annotations
 
+from leadline.service.api.vocabulary import (
+    DRAW_STATUSES,
+    VERDICTS,
+    wire_bound,
+    wire_loss,
+    wire_mode,
+    wire_task,
+)
 from leadline.service.engine import (
     AssignmentInfo,
     DrawInfo,
@@ -10,7 +18,7 @@ from leadline.service.engine import (
     ItemProblem,
     PoolInfo,
 )
-from leadline.service.estimation import BoundKind, EstimatorMode, Verdict
+from leadline.service.estimation import LossKind
 from leadline.v1 import leadline_pb2 as pb
 
 __all__ = [
@@ -22,39 +30,18 @@ __all__ = [
     "pool_message",
 ]
 
-_TASKS = {"classification": pb.TASK_TYPE_CLASSIFICATION, "regression": pb.TASK_TYPE_REGRESSION}
-_LOSSES = {
-    "zero_one": pb.LOSS_KIND_ZERO_ONE,
-    "cross_entropy": pb.LOSS_KIND_CROSS_ENTROPY,
-    "brier": pb.LOSS_KIND_BRIER,
-    "cost_matrix": pb.LOSS_KIND_COST_MATRIX,
-    "squared_error": pb.LOSS_KIND_SQUARED_ERROR,
-    "absolute_error": pb.LOSS_KIND_ABSOLUTE_ERROR,
-}
-_MODES = {
-    EstimatorMode.UNBIASED: pb.ESTIMATOR_MODE_UNBIASED,
-    EstimatorMode.SURROGATE: pb.ESTIMATOR_MODE_SURROGATE,
-    EstimatorMode.BALANCED: pb.ESTIMATOR_MODE_BALANCED,
-}
-_VERDICTS = {
-    Verdict.PASS: pb.VERDICT_PASS,
-    Verdict.FAIL: pb.VERDICT_FAIL,
-    Verdict.UNDECIDED: pb.VERDICT_UNDECIDED,
-}
-_BOUNDS = {BoundKind.FIXED_TIME: pb.BOUND_KIND_FIXED_TIME, BoundKind.ANYTIME: pb.BOUND_KIND_ANYTIME}
-
 
 def pool_message(info: PoolInfo) -> pb.Pool:
     settings = info.settings
     return pb.Pool(
         name=f"pools/{settings.pool_id}",
-        task=_TASKS[settings.task],
+        task=wire_task(settings.task),
         num_classes=settings.num_classes,
         feature_dim=settings.feature_dim,
-        loss=_LOSSES[settings.loss],
+        loss=wire_loss(LossKind(settings.loss)),
         cost_matrix=list(settings.cost_matrix),
         loss_cap=settings.loss_cap,
-        default_mode=_MODES[EstimatorMode(settings.default_mode)],
+        default_mode=wire_mode(settings.mode),
         item_count=info.item_count,
         labeled_count=info.labeled_count,
         create_time_ms=info.create_time_ms,
@@ -100,7 +87,7 @@ def estimate_message(result: EstimateResult) -> pb.Estimate:
         anytime_lower=e.anytime_lower,
         anytime_upper=e.anytime_upper,
         bias_bound=e.bias_bound,
-        mode=_MODES[e.mode],
+        mode=wire_mode(e.mode),
         confidence=e.confidence,
         items_in_scope=result.items_in_scope,
         labels_used=e.labels_used,
@@ -125,11 +112,11 @@ def gate_message(outcome: GateOutcome) -> pb.GateResult:
         )
     )
     return pb.GateResult(
-        verdict=_VERDICTS[decision.verdict],
+        verdict=VERDICTS[decision.verdict],
         estimate=estimate,
         more_labels_hint=decision.more_labels_hint,
         reason=decision.reason,
-        bound=_BOUNDS[decision.bound],
+        bound=wire_bound(decision.bound),
     )
 
 
@@ -140,7 +127,7 @@ def draw_message(info: DrawInfo, *, classification: bool) -> pb.Draw:
         selection_probability=info.selection_probability,
         surrogate_version=info.surrogate_version,
         expected_loss=info.expected_loss,
-        status=info.status,
+        status=DRAW_STATUSES[info.status],
         labeler=info.labeler,
         draw_time_ms=info.draw_time_ms,
         label_time_ms=info.label_time_ms,

@@ -12,6 +12,7 @@ from typing import Any
 
 import numpy as np
 
+from leadline.service.api.vocabulary import BOUNDS, LOSSES, MODES, TASKS
 from leadline.service.engine import ItemBatch, LabelInput, PoolSettings, Scope, ValidationItems
 from leadline.service.errors import InvalidArgument, ResourceExhausted
 from leadline.service.estimation import BoundKind, EstimatorMode
@@ -53,28 +54,6 @@ MAX_SKIP_REASON = 512
 MAX_CLASSES = 10_000
 MAX_FEATURE_DIM = 100_000
 MAX_DESCRIPTION = 2048
-
-_TASKS = {pb.TASK_TYPE_CLASSIFICATION: "classification", pb.TASK_TYPE_REGRESSION: "regression"}
-_CLASSIFICATION_LOSSES = {
-    pb.LOSS_KIND_ZERO_ONE: "zero_one",
-    pb.LOSS_KIND_CROSS_ENTROPY: "cross_entropy",
-    pb.LOSS_KIND_BRIER: "brier",
-    pb.LOSS_KIND_COST_MATRIX: "cost_matrix",
-}
-_REGRESSION_LOSSES = {
-    pb.LOSS_KIND_SQUARED_ERROR: "squared_error",
-    pb.LOSS_KIND_ABSOLUTE_ERROR: "absolute_error",
-}
-_MODES = {
-    pb.ESTIMATOR_MODE_UNBIASED: EstimatorMode.UNBIASED,
-    pb.ESTIMATOR_MODE_SURROGATE: EstimatorMode.SURROGATE,
-    pb.ESTIMATOR_MODE_BALANCED: EstimatorMode.BALANCED,
-}
-_BOUNDS = {
-    pb.BOUND_KIND_UNSPECIFIED: BoundKind.ANYTIME,
-    pb.BOUND_KIND_ANYTIME: BoundKind.ANYTIME,
-    pb.BOUND_KIND_FIXED_TIME: BoundKind.FIXED_TIME,
-}
 
 
 def _loss_name(value: int) -> str:
@@ -120,12 +99,12 @@ def pool_settings(pool_id: str, pool: pb.Pool) -> PoolSettings:
     """Validate CreatePool's fields (output-only fields are ignored)."""
     if not POOL_ID_PATTERN.fullmatch(pool_id):
         raise _bad("pool_id", f"pool_id = {pool_id!r}: must match [a-z][a-z0-9-]{{0,62}}.")
-    if pool.task not in _TASKS:
+    if pool.task not in TASKS:
         raise _bad(
             "pool.task",
             f"pool.task = {pool.task}: must be TASK_TYPE_CLASSIFICATION or TASK_TYPE_REGRESSION.",
         )
-    task = _TASKS[pool.task]
+    task = TASKS[pool.task]
     if not 1 <= pool.feature_dim <= MAX_FEATURE_DIM:
         raise _bad(
             "pool.feature_dim",
@@ -139,13 +118,14 @@ def pool_settings(pool_id: str, pool: pb.Pool) -> PoolSettings:
                 f"pool.num_classes = {pool.num_classes}: a classification pool needs "
                 f"2..{MAX_CLASSES} classes.",
             )
-        if pool.loss not in _CLASSIFICATION_LOSSES:
+        kind = LOSSES.get(pool.loss)
+        if kind is None or not kind.is_classification:
             raise _bad(
                 "pool.loss",
                 f"pool.loss = {_loss_name(pool.loss)}: a classification pool takes ZERO_ONE, "
                 "CROSS_ENTROPY, BRIER or COST_MATRIX.",
             )
-        loss = _CLASSIFICATION_LOSSES[pool.loss]
+        loss = kind.value
         if pool.loss_cap != 0:
             raise _bad(
                 "pool.loss_cap",
@@ -180,13 +160,14 @@ def pool_settings(pool_id: str, pool: pb.Pool) -> PoolSettings:
                 "pool.num_classes",
                 f"pool.num_classes = {pool.num_classes}: a regression pool takes 0.",
             )
-        if pool.loss not in _REGRESSION_LOSSES:
+        kind = LOSSES.get(pool.loss)
+        if kind is None or kind.is_classification:
             raise _bad(
                 "pool.loss",
                 f"pool.loss = {_loss_name(pool.loss)}: a regression pool takes SQUARED_ERROR or "
                 "ABSOLUTE_ERROR.",
             )
-        loss = _REGRESSION_LOSSES[pool.loss]
+        loss = kind.value
         if not (math.isfinite(pool.loss_cap) and pool.loss_cap > 0):
             raise _bad(
                 "pool.loss_cap",
@@ -195,9 +176,7 @@ def pool_settings(pool_id: str, pool: pb.Pool) -> PoolSettings:
             )
         if len(pool.cost_matrix):
             raise _bad("pool.cost_matrix", "pool.cost_matrix: regression pools take none.")
-    if pool.default_mode != pb.ESTIMATOR_MODE_UNSPECIFIED and pool.default_mode not in _MODES:
-        raise _bad("pool.default_mode", f"pool.default_mode = {pool.default_mode}: unknown mode.")
-    mode = _MODES.get(pool.default_mode, EstimatorMode.BALANCED)
+    mode = check_mode(pool.default_mode, field="pool.default_mode") or EstimatorMode.BALANCED
     if not (pool.selection_floor == 0 or 0 < pool.selection_floor <= 1):
         raise _bad(
             "pool.selection_floor",
@@ -351,7 +330,7 @@ def _check_outputs(values: Any, ids: list[str], settings: PoolSettings) -> np.nd
             )
         # Rows are renormalised to sum to 1 (the core checks sums to a tighter tolerance);
         # the stored outputs are the renormalised ones.
-        return (wide / totals[:, None]).astype(np.float32)
+        return np.asarray((wide / totals[:, None]).astype(np.float32))
     if outputs.shape[0] != n:
         raise _bad(
             "model_outputs",
@@ -567,18 +546,22 @@ def check_max_risk(value: float, *, loss_bound: float, field: str = "max_risk") 
     return float(value)
 
 
-def check_mode(value: int, *, field: str = "mode") -> EstimatorMode | None:
+def check_mode(value: pb.EstimatorMode, *, field: str = "mode") -> EstimatorMode | None:
+    """The estimator mode asked for; None (UNSPECIFIED) leaves the pool's default."""
     if value == pb.ESTIMATOR_MODE_UNSPECIFIED:
         return None
-    if value not in _MODES:
+    if value not in MODES:
         raise _bad(field, f"{field} = {value}: unknown estimator mode.")
-    return _MODES[value]
+    return MODES[value]
 
 
-def check_bound(value: int) -> BoundKind:
-    if value not in _BOUNDS:
+def check_bound(value: pb.BoundKind) -> BoundKind:
+    """The gate's bound; UNSPECIFIED means ANYTIME (a gate is polled: API.md)."""
+    if value == pb.BOUND_KIND_UNSPECIFIED:
+        return BoundKind.ANYTIME
+    if value not in BOUNDS:
         raise _bad("bound", f"bound = {value}: unknown bound kind.")
-    return _BOUNDS[value]
+    return BOUNDS[value]
 
 
 def check_scope(segment: str, start_time_ms: int, end_time_ms: int) -> Scope:

@@ -20,6 +20,7 @@ failing calls get Unavailable ("not saved, retry with the same request_id").
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import logging
 import secrets
@@ -468,9 +469,8 @@ class Engine:
         self._check_open()
         self._check_writable(f"pool = 'pools/{pool_id}'")
         method = "delete_pool"
-        if call.request_id:
-            if self._claim_server_request(method, call, pool_id) is not None:
-                return
+        if call.request_id and self._claim_server_request(method, call, pool_id) is not None:
+            return
         try:
             self._delete_pool(pool_id, method=method, call=call)
         finally:
@@ -804,7 +804,7 @@ class Engine:
         if cached is None:
             cached = build_scope_inputs(pool, scope)
             pool.cache[key] = cached
-        return cached  # type: ignore[no-any-return]
+        return cached
 
     def _mode(self, pool: PoolState, mode: EstimatorMode | None) -> EstimatorMode:
         return mode if mode is not None else pool.settings.mode
@@ -1013,10 +1013,8 @@ class Engine:
             except Exception as error:
                 # Not saved (maybe behind a failed write of the pool): the pool reloads,
                 # the fit is redone on the saved labels when due.
-                try:
+                with contextlib.suppress(Unavailable):
                     self._recover(pool, epoch, error)
-                except Unavailable:
-                    pass
                 return False
             # Items that arrived while fitting: score them outside the lock until few are
             # left, so the final swap under the lock stays short even under heavy ingest.

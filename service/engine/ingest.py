@@ -47,7 +47,7 @@ def worst_deviation_of(scores: SurrogateScores, loss_bound: float) -> np.ndarray
     if scores.worst_squared_deviation is not None:
         return scores.worst_squared_deviation
     g = np.clip(scores.expected_loss, 0.0, loss_bound)
-    return np.maximum(g, loss_bound - g) ** 2
+    return np.asarray(np.maximum(g, loss_bound - g) ** 2)
 
 
 def append_items(

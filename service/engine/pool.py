@@ -42,7 +42,6 @@ AVAILABLE, DRAWN, ITEM_LABELED, ITEM_SKIPPED = 0, 1, 2, 3
 ASSIGNED, LABELED, SKIPPED, WAITING = 1, 2, 3, 4
 
 _REQUEST_MEMORY = 4096
-_CLASSIFICATION_LOSSES = {"zero_one", "cross_entropy", "brier", "cost_matrix"}
 
 
 @dataclass(frozen=True, kw_only=True)

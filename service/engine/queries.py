@@ -10,6 +10,7 @@ from leadline.service.engine.scopes import ScopeInputs
 from leadline.service.estimation import (
     DRAW_LABELED,
     EstimatorMode,
+    PlugInSums,
     estimate_risk,
 )
 
@@ -73,18 +74,13 @@ def trace(
     in_scope_labeled = terms.in_scope & (terms.status == DRAW_LABELED)
     for k in ks.tolist():
         stop = int(labeled_positions[k - 1]) + 1
-        prefix = type(terms)(
-            **{
-                name: None if getattr(terms, name) is None else getattr(terms, name)[:stop]
-                for name in terms.__dataclass_fields__
-            }
-        )
+        prefix = terms.first(stop)
         later_labeled = in_scope_labeled.copy()
         later_labeled[:stop] = False
         # Items labeled after the prefix count as unlabeled at this point: their loss is
         # replaced by their current predicted loss in the plug-in sums.
         rows = pool.draws.row.view[: len(later_labeled)][later_labeled]
-        sums = type(inputs.sums)(
+        sums = PlugInSums(
             scope_size=n_scope,
             labeled_loss_sum=float(np.nansum(terms.loss[:stop][terms.in_scope[:stop]])),
             unlabeled_expected_loss_sum=inputs.sums.unlabeled_expected_loss_sum

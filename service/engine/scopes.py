@@ -70,7 +70,7 @@ def _suffix_at(values: np.ndarray, marks: np.ndarray) -> np.ndarray:
     """sum(values[mark:]) for each mark (0 at mark == len(values))."""
     suffix = np.zeros(values.shape[0] + 1, dtype=np.float64)
     suffix[:-1] = np.cumsum(values[::-1])[::-1]
-    return suffix[marks]
+    return np.asarray(suffix[marks])
 
 
 def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:

@@ -94,7 +94,7 @@ def _log_capital(x: np.ndarray, lo: np.ndarray, bets: np.ndarray, r: np.ndarray)
     with np.errstate(divide="ignore"):
         cap = np.where(room > 0.0, BET_TRUNCATION / np.where(room > 0, room, 1.0), np.inf)
     lam = np.minimum(bets[:, None], cap)
-    return np.log1p(lam * (x[:, None] - r[None, :]))
+    return np.asarray(np.log1p(lam * (x[:, None] - r[None, :])))
 
 
 def _grid(low: float, high: float, center: float) -> np.ndarray:
@@ -155,14 +155,12 @@ def betting_lower_bound(
     *,
     alpha: float,
     support: tuple[float, float],
-    center: float,
     prior: Prior = None,
 ) -> float:
     """Final value of the lower confidence sequence, by bisection on the candidate risk.
 
     The excluded set is a half-line (capital decreases in r), so bisection over ``support``
     finds its edge in O(M) per step; the value returned is itself excluded (conservative).
-    ``center`` is unused here (kept for symmetry with the path).
     """
     m = x.shape[0]
     if m == 0:

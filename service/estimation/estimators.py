@@ -133,7 +133,7 @@ def lure_weights(probabilities: np.ndarray, pool_size: int) -> np.ndarray:
     index = np.arange(1, m + 1, dtype=np.float64)
     left = n - index
     coefficient = np.where(left > 0, (n - m) / np.where(left > 0, left, 1.0), 0.0)
-    return 1.0 + coefficient * (1.0 / ((n - index + 1.0) * q) - 1.0)
+    return np.asarray(1.0 + coefficient * (1.0 / ((n - index + 1.0) * q) - 1.0))
 
 
 # --------------------------------------------------------------------------------------
@@ -192,11 +192,7 @@ def _path(
             values = path[-1:] if final_only else path
         elif final_only:
             values = np.array(
-                [
-                    betting_lower_bound(
-                        x, lo, hi, alpha=alpha_side, support=support, center=middle, prior=prior
-                    )
-                ]
+                [betting_lower_bound(x, lo, hi, alpha=alpha_side, support=support, prior=prior)]
             )
         else:
             values = betting_lower_path(

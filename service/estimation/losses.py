@@ -53,6 +53,11 @@ class LossKind(enum.Enum):
     SQUARED_ERROR = "squared_error"
     ABSOLUTE_ERROR = "absolute_error"
 
+    @property
+    def is_classification(self) -> bool:
+        """True for the kinds that compare class probabilities with a class label."""
+        return self in _CLASSIFICATION
+
 
 _CLASSIFICATION = {
     LossKind.ZERO_ONE,
@@ -198,12 +203,14 @@ class LossSpec:
             table[np.arange(n), np.argmax(outputs, axis=1)] = 0.0
             return table
         if self.kind is LossKind.CROSS_ENTROPY:
-            return -np.log(np.clip(outputs, CROSS_ENTROPY_CLIP, 1.0))
+            return np.asarray(-np.log(np.clip(outputs, CROSS_ENTROPY_CLIP, 1.0)))
         if self.kind is LossKind.BRIER:
             # sum_j (p_j - 1[j = y])^2 = sum_j p_j^2 - 2 p_y + 1
-            return (np.sum(outputs**2, axis=1, keepdims=True) - 2.0 * outputs + 1.0).clip(0.0, 2.0)
+            return np.asarray(
+                (np.sum(outputs**2, axis=1, keepdims=True) - 2.0 * outputs + 1.0).clip(0.0, 2.0)
+            )
         assert self.cost_matrix is not None
-        return self.cost_matrix[np.argmax(outputs, axis=1)]
+        return np.asarray(self.cost_matrix[np.argmax(outputs, axis=1)])
 
     def losses(self, outputs: object, labels: object) -> np.ndarray:
         """Per-item losses in [0, B]: ``outputs`` (n, K) probabilities or (n,) predictions,
@@ -215,14 +222,14 @@ class LossSpec:
             if self.kind is LossKind.BRIER:
                 onehot = np.zeros_like(out)
                 onehot[np.arange(n), y] = 1.0
-                return np.sum((out - onehot) ** 2, axis=1)
+                return np.asarray(np.sum((out - onehot) ** 2, axis=1))
             if self.kind is LossKind.CROSS_ENTROPY:
-                return -np.log(np.clip(out[np.arange(n), y], CROSS_ENTROPY_CLIP, 1.0))
-            return self.loss_table(out)[np.arange(n), y]
+                return np.asarray(-np.log(np.clip(out[np.arange(n), y], CROSS_ENTROPY_CLIP, 1.0)))
+            return np.asarray(self.loss_table(out)[np.arange(n), y])
         error = out - y
         if self.kind is LossKind.SQUARED_ERROR:
-            return np.minimum(error**2, self.loss_cap)
-        return np.minimum(np.abs(error), self.loss_cap)
+            return np.asarray(np.minimum(error**2, self.loss_cap))
+        return np.asarray(np.minimum(np.abs(error), self.loss_cap))
 
     def expected_losses(self, outputs: object, predictive: object) -> tuple[np.ndarray, np.ndarray]:
         """(E[L], E[L^2]) per item when the label follows ``predictive``.

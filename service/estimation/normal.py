@@ -46,7 +46,7 @@ def _erfc(x: np.ndarray) -> np.ndarray:
     for coefficient in reversed(_ERFC_COEFFICIENTS[1:]):
         poly = t * (coefficient + poly)
     value = t * np.exp(-z * z + _ERFC_COEFFICIENTS[0] + poly)
-    return np.where(x >= 0.0, value, 2.0 - value)
+    return np.asarray(np.where(x >= 0.0, value, 2.0 - value))
 
 
 def normal_cdf(x: np.ndarray) -> np.ndarray:

@@ -89,7 +89,7 @@ def usefulness(scores: SurrogateScores, *, loss_bound: float | None = None) -> n
     second = check_finite_array("residual_second_moment", scores.residual_second_moment, ndim=1)
     second = np.maximum(second, 0.0)
     if loss_bound is None:
-        return np.sqrt(second)
+        return np.asarray(np.sqrt(second))
     bound = float(loss_bound)
     if not (np.isfinite(bound) and bound > 0.0):
         raise ValueError(f"loss_bound = {loss_bound!r}, must be finite and > 0.")
@@ -118,7 +118,7 @@ def usefulness(scores: SurrogateScores, *, loss_bound: float | None = None) -> n
     else:
         g = np.clip(g, 0.0, bound)
         worst = np.maximum(g, bound - g) ** 2
-    return np.sqrt(second + WORST_CASE_WEIGHT * worst)
+    return np.asarray(np.sqrt(second + WORST_CASE_WEIGHT * worst))
 
 
 def selection_probabilities(usefulness: np.ndarray, *, floor: float) -> np.ndarray:
@@ -131,7 +131,7 @@ def selection_probabilities(usefulness: np.ndarray, *, floor: float) -> np.ndarr
         return np.zeros(0)
     if total <= 0.0:
         return np.full(n, 1.0 / n)
-    return (1.0 - floor) * u / total + floor / n
+    return np.asarray((1.0 - floor) * u / total + floor / n)
 
 
 @dataclass(frozen=True)

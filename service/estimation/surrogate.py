@@ -281,7 +281,7 @@ class Surrogate:
         members = [
             _class_probabilities(b, x, out, self._seen_classes, init) for b in self._boosters
         ]
-        return np.mean(members, axis=0)
+        return np.asarray(np.mean(members, axis=0))
 
     # ----------------------------------------------------------------------------------
 
@@ -391,7 +391,7 @@ def worst_squared_deviation(
     g = np.clip(np.asarray(expected, dtype=np.float64), 0.0, spec.bound)
     if spec.is_classification:
         table = spec.loss_table(outputs)
-        return np.max((table - g[:, None]) ** 2, axis=1)
+        return np.asarray(np.max((table - g[:, None]) ** 2, axis=1))
     return np.maximum(g, spec.bound - g) ** 2
 
 
@@ -410,7 +410,7 @@ def _log_init(outputs: np.ndarray, temperature: float = 1.0) -> np.ndarray:
     """Log of the temperature-scaled model probabilities (the boosting start)."""
     logits = np.log(np.clip(outputs, CROSS_ENTROPY_CLIP, 1.0)) / temperature
     logits = logits - logits.max(axis=1, keepdims=True)
-    return logits - np.log(np.exp(logits).sum(axis=1, keepdims=True))
+    return np.asarray(logits - np.log(np.exp(logits).sum(axis=1, keepdims=True)))
 
 
 def _fit_temperature(
@@ -464,10 +464,12 @@ def _class_probabilities(
     learned_seen = learned_seen / learned_seen.sum(axis=1, keepdims=True)
     pi = start.copy()
     pi[:, seen_mask] = learned_seen * np.clip(1.0 - unseen_mass, 0.0, 1.0)
-    return pi / pi.sum(axis=1, keepdims=True)
+    return np.asarray(pi / pi.sum(axis=1, keepdims=True))
 
 
-def _params(settings: SurrogateSettings, objective: str, seed: int, **extra: object) -> dict:
+def _params(
+    settings: SurrogateSettings, objective: str, seed: int, **extra: object
+) -> dict[str, object]:
     params: dict[str, object] = {
         "objective": objective,
         "num_leaves": settings.num_leaves,
@@ -488,7 +490,7 @@ def _params(settings: SurrogateSettings, objective: str, seed: int, **extra: obj
 
 
 def _train(
-    params: dict,
+    params: dict[str, object],
     x: np.ndarray,
     y: np.ndarray,
     init: np.ndarray | None,
@@ -502,7 +504,7 @@ def _train(
 
 
 def _train_unlocked(
-    params: dict,
+    params: dict[str, object],
     x: np.ndarray,
     y: np.ndarray,
     init: np.ndarray | None,

@@ -19,7 +19,8 @@ prediction h for point estimates, 0 for lower bounds and B for upper bounds.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, fields, replace
+from typing import Any
 
 import numpy as np
 
@@ -69,6 +70,14 @@ class DrawTerms:
     def count(self) -> int:
         return int(np.asarray(self.probability).shape[0])
 
+    def first(self, count: int) -> DrawTerms:
+        """The terms of the first ``count`` draws (the ledger as it stood after them)."""
+        cut: dict[str, Any] = {}
+        for field in fields(self):
+            value = getattr(self, field.name)
+            cut[field.name] = None if value is None else value[:count]
+        return replace(self, **cut)
+
 
 @dataclass(frozen=True)
 class PlugInSums:
@@ -102,7 +111,7 @@ class TermSums:
 
     @property
     def labeled(self) -> np.ndarray:
-        return self.status == DRAW_LABELED
+        return np.asarray(self.status == DRAW_LABELED)
 
 
 def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:

@@ -26,6 +26,7 @@ quick_check``; any of these refuses with :class:`DataDirectoryError`.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import queue
 import sqlite3
@@ -454,11 +455,9 @@ class Database:
         self._writer.join()
         with self._readers_lock:
             for connection in self._readers:
-                try:
+                # Made in another thread that is gone; closing is best effort.
+                with contextlib.suppress(sqlite3.Error):
                     connection.close()
-                except sqlite3.Error:
-                    # Made in another thread that is gone; closing is best effort.
-                    pass
             self._readers.clear()
         self._lock.release()
 

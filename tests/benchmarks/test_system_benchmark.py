@@ -71,7 +71,9 @@ def test_harness_reports_every_row_against_a_real_server(tmp_path: Path) -> None
     assert table.count("\n") == len(report.rows) + 1  # header, rule, one line per row
     body = render_section(report, command="python benchmarks/system.py", quick=True)
     assert "- Command: `python benchmarks/system.py`" in body
-    assert "nproc" in body and "Wall time" in body and "- Code: " in body
+    assert "nproc" in body
+    assert "Wall time" in body
+    assert "- Code: " in body
     assert table in body
 
 
@@ -79,10 +81,12 @@ def test_pool_data_is_deterministic_and_well_formed() -> None:
     first = make_pool_data(500, feature_dim=4, num_classes=3, seed=7)
     again = make_pool_data(500, feature_dim=4, num_classes=3, seed=7)
     assert first.item_ids == again.item_ids
-    assert (first.features == again.features).all() and (first.labels == again.labels).all()
+    assert (first.features == again.features).all()
+    assert (first.labels == again.labels).all()
     # The server refuses probability rows that do not sum to 1 within 1e-3 (operations.md).
     assert abs(first.outputs.sum(axis=1) - 1).max() < 1e-5
-    assert first.labels.min() >= 0 and first.labels.max() <= 2
+    assert first.labels.min() >= 0
+    assert first.labels.max() <= 2
     assert first.row_of(first.item_ids[123]) == 123
 
 

@@ -110,4 +110,5 @@ def test_regression_outputs_may_be_one_dimensional() -> None:
     columns = IngestColumns.from_arrays(["a", "b"], np.zeros((2, 3)), [1.5, -2.0])
     (batch,) = build_batches("pools/r", columns, max_rows=10, max_bytes=4096)
     assert list(batch.model_outputs) == [1.5, -2.0]
-    assert not batch.segments and not batch.event_time_ms
+    assert not batch.segments
+    assert not batch.event_time_ms

@@ -75,8 +75,10 @@ def test_gate_json_output_and_error_exit(server: LocalServer, labeled_digits: Di
     assert done.returncode == 0
     result = json.loads(done.stdout)
     # Our own flat JSON: lower-case enum words and plain numbers (README "JSON output").
-    assert result["verdict"] == "pass" and result["bound"] == "anytime"
-    assert result["labels_used"] == 200 and result["sides"] == "one-sided"
+    assert result["verdict"] == "pass"
+    assert result["bound"] == "anytime"
+    assert result["labels_used"] == 200
+    assert result["sides"] == "one-sided"
     assert result["upper"] < result["max_risk"] == 0.999
     missing = _gate(server, "no-such-pool", 0.5)
     assert missing.returncode == 3
@@ -103,12 +105,12 @@ def test_status_shows_counts_surrogate_and_estimate(
     assert lines["validation"] == "none"
     est = admin.get_estimate("digits")
     assert lines["estimate"].startswith(f"{est.risk:.4f} ± {(est.upper - est.lower) / 2:.4f}")
-    assert "scanner-a" in done.stdout and "scanner-b" in done.stdout
+    assert "scanner-a" in done.stdout
+    assert "scanner-b" in done.stdout
 
 
-def test_report_writes_png_and_html_with_the_figures(
-    server: LocalServer, labeled_digits: Digits, tmp_path: Path
-) -> None:
+@pytest.mark.usefixtures("labeled_digits")
+def test_report_writes_png_and_html_with_the_figures(server: LocalServer, tmp_path: Path) -> None:
     done = run_cli(
         "report",
         "--pool",
@@ -227,7 +229,8 @@ def test_pool_create_list_show_delete(server: LocalServer) -> None:
         "--loss-cap",
         "4",
     )
-    assert again.returncode == 3 and "ALREADY_EXISTS" in again.stderr
+    assert again.returncode == 3
+    assert "ALREADY_EXISTS" in again.stderr
     listing = cli("list")
     assert re.search(
         r"^pools/cli-pool\s+regression\s+squared-error\s+0\s+0\s+v0$", listing.stdout, re.MULTILINE
@@ -238,7 +241,8 @@ def test_pool_create_list_show_delete(server: LocalServer) -> None:
     shown = cli("show", "--pool", "pools/cli-pool", "--json")
     assert json.loads(shown.stdout)["loss_cap"] == 4.0
     deleted = cli("delete", "--pool", "cli-pool", "--yes")
-    assert deleted.returncode == 0 and deleted.stdout.strip() == "deleted pools/cli-pool"
+    assert deleted.returncode == 0
+    assert deleted.stdout.strip() == "deleted pools/cli-pool"
     assert cli("show", "--pool", "cli-pool").returncode == 3
 
 
@@ -280,7 +284,8 @@ def test_console_script_is_installed_and_forwards_serve_help() -> None:
     assert done.stdout.startswith("usage: leadline serve")
 
 
-def test_all_roles_token_is_accepted(server: LocalServer, labeled_digits: Digits) -> None:
+@pytest.mark.usefixtures("labeled_digits")
+def test_all_roles_token_is_accepted(server: LocalServer) -> None:
     done = run_cli("pool", "list", "--json", token=ALL_ROLES_TOKEN, target=server.target)
     assert done.returncode == 0
     assert "pools/digits" in [p["name"] for p in json.loads(done.stdout)]

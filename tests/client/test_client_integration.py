@@ -31,7 +31,8 @@ def test_health_answers_without_a_token(server: LocalServer) -> None:
 def test_pool_errors_arrive_as_typed_exceptions(admin: Client, labeled_digits: Digits) -> None:
     with pytest.raises(NotFound) as missing:
         admin.get_pool("no-such-pool")
-    assert missing.value.code is grpc.StatusCode.NOT_FOUND and missing.value.method == "GetPool"
+    assert missing.value.code is grpc.StatusCode.NOT_FOUND
+    assert missing.value.method == "GetPool"
     with pytest.raises(AlreadyExists):
         admin.create_pool(
             "digits", task="classification", num_classes=10, feature_dim=64, loss="zero-one"
@@ -53,7 +54,8 @@ def test_pool_errors_arrive_as_typed_exceptions(admin: Client, labeled_digits: D
     admin.delete_pool("never-existed", missing_ok=True)
 
 
-def test_roles_limit_what_a_token_may_call(server: LocalServer, labeled_digits: Digits) -> None:
+@pytest.mark.usefixtures("labeled_digits")
+def test_roles_limit_what_a_token_may_call(server: LocalServer) -> None:
     with Client(server.target, token=TOKENS["labeler"]) as labeler:
         with pytest.raises(AccessDenied) as denied:
             labeler.check_gate("digits", max_risk=0.5)
@@ -113,7 +115,8 @@ def test_labeling_round_with_skip_and_release(server: LocalServer, admin: Client
     admin.ingest(data.pool, data.item_ids, data.features, data.probabilities)
     with Client(server.target, token=TOKENS["labeler"]) as vendor:
         held = vendor.acquire(data.pool, 6, labeler="vendor-a")
-        assert len(held) == 6 and all(a.selection_probability > 0 for a in held)
+        assert len(held) == 6
+        assert all(a.selection_probability > 0 for a in held)
         assert len({a.item_id for a in held}) == 6
         index = {item_id: i for i, item_id in enumerate(data.item_ids)}
         answers: dict[str, int | Skip] = {
@@ -136,27 +139,34 @@ def test_labeling_round_with_skip_and_release(server: LocalServer, admin: Client
     admin.delete_pool(data.pool)
 
 
-def test_estimates_trace_and_gate_are_consistent(admin: Client, labeled_digits: Digits) -> None:
+@pytest.mark.usefixtures("labeled_digits")
+def test_estimates_trace_and_gate_are_consistent(admin: Client) -> None:
     est = admin.get_estimate("digits", confidence=0.9)
-    assert est.labels_used == 200 and est.items_in_scope == 1197 and est.confidence == 0.9
+    assert est.labels_used == 200
+    assert est.items_in_scope == 1197
+    assert est.confidence == 0.9
     assert est.lower <= est.risk <= est.upper
     trace = admin.get_estimate_trace("digits", confidence=0.9, max_points=10)
     assert 2 <= len(trace) <= 10
     used = [point.labels_used for point in trace]
-    assert used == sorted(used) and used[-1] == 200
+    assert used == sorted(used)
+    assert used[-1] == 200
     for segment in ("scanner-a", "scanner-b"):
         part = admin.get_estimate("digits", segment=segment)
         assert 0 < part.items_in_scope < 1197
     gate = admin.check_gate("digits", max_risk=0.999, confidence=0.9, bound="fixed-time")
-    assert gate.verdict is Verdict.PASS and str(gate.verdict) == "pass"
-    assert gate.bound is BoundKind.FIXED_TIME and gate.estimate.mode is EstimatorMode.BALANCED
+    assert gate.verdict is Verdict.PASS
+    assert str(gate.verdict) == "pass"
+    assert gate.bound is BoundKind.FIXED_TIME
+    assert gate.estimate.mode is EstimatorMode.BALANCED
     # The verdict rests on the one-sided fixed-time upper bound.
     assert gate.upper == gate.estimate.upper < 0.999
     with pytest.raises(InvalidRequest, match="max_risk = nan: must be a finite risk > 0"):
         admin.check_gate("digits", max_risk=float("nan"))
 
 
-def test_list_pools_follows_pages(admin: Client, labeled_digits: Digits) -> None:
+@pytest.mark.usefixtures("labeled_digits")
+def test_list_pools_follows_pages(admin: Client) -> None:
     names = [f"page-{i}" for i in range(5)]
     for name in names:
         admin.create_pool(
@@ -169,7 +179,8 @@ def test_list_pools_follows_pages(admin: Client, labeled_digits: Digits) -> None
         admin.delete_pool(name)
 
 
-def test_regression_labels_are_sent_as_values(server: LocalServer, admin: Client) -> None:
+@pytest.mark.usefixtures("server")
+def test_regression_labels_are_sent_as_values(admin: Client) -> None:
     rng = np.random.default_rng(0)
     admin.create_pool(
         "regression-values", task="regression", feature_dim=2, loss="squared-error", loss_cap=100.0

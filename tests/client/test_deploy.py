@@ -69,7 +69,8 @@ def _serve_argvs() -> dict[str, list[str]]:
     compose = _yaml(DEPLOY / "compose.yaml")[0]["services"]["leadline"]
     container = _manifests()["Deployment"]["spec"]["template"]["spec"]["containers"][0]
     exec_start = shlex.split(_systemd_unit()["Service"]["ExecStart"])
-    assert exec_start[1] == "serve" and exec_start[0].endswith("/leadline")
+    assert exec_start[1] == "serve"
+    assert exec_start[0].endswith("/leadline")
     assert _dockerfile_instruction("ENTRYPOINT") == ["leadline", "serve"]
     return {
         "Dockerfile CMD": _dockerfile_instruction("CMD"),
@@ -147,7 +148,8 @@ def test_token_files_map_tokens_to_known_roles() -> None:
     example = (DEPLOY / "tokens.example.toml").read_text()
     for text in (secret, example):
         tokens = tomllib.loads(text)["tokens"]
-        assert tokens and all(set(roles) <= _ROLES and roles for roles in tokens.values())
+        assert tokens
+        assert all(set(roles) <= _ROLES and roles for roles in tokens.values())
         assert {role for roles in tokens.values() for role in roles} == _ROLES
         assert all(token.startswith("replace-me-") for token in tokens)
 

@@ -122,9 +122,11 @@ def test_cli_against_no_server_fails_fast_with_what_to_do(
     assert done.stderr.startswith(
         f"leadline status: UNAVAILABLE: cannot reach a leadline server at {target}"
     ), done.stderr
-    assert happened in done.stderr and advice in done.stderr
+    assert happened in done.stderr
+    assert advice in done.stderr
     assert "DEADLINE_EXCEEDED" not in done.stderr
-    assert "Traceback" not in done.stderr and "Handshake failed" not in done.stderr
+    assert "Traceback" not in done.stderr
+    assert "Handshake failed" not in done.stderr
 
 
 def test_python_client_error_class_and_message_agree() -> None:
@@ -153,7 +155,8 @@ def test_gate_wait_keeps_polling_an_unreachable_server() -> None:
     )
     assert done.returncode == 3
     polls = [line for line in done.stderr.splitlines() if "polling again in 0.5 s" in line]
-    assert polls and all("cannot reach a leadline server" in line for line in polls)
+    assert polls
+    assert all("cannot reach a leadline server" in line for line in polls)
     assert done.stderr.splitlines()[-1].startswith("leadline gate: UNAVAILABLE: cannot reach")
 
 
@@ -188,7 +191,8 @@ def test_gate_wait_prints_one_line_per_poll(
         r"0\.3 s$"
     )
     polls = done.stderr.splitlines()
-    assert len(polls) >= 2 and all(line.match(p) for p in polls), done.stderr
+    assert len(polls) >= 2, done.stderr
+    assert all(line.match(p) for p in polls), done.stderr
 
 
 # -- 4. a released assignment says so ---------------------------------------------------------
@@ -207,7 +211,8 @@ def test_submitting_a_released_assignment_says_it_was_released_and_when(admin: C
         with pytest.raises(Conflict) as caught:
             admin.submit_labels(data.pool, {held.assignment_id: 3}, labeler="vendor")
         message = caught.value.details
-        assert "released at " in message and "lease" not in message.split("released")[0]
+        assert "released at " in message
+        assert "lease" not in message.split("released")[0]
         when = int(re.search(r"\((\d+) unix ms\)", message).group(1))  # type: ignore[union-attr]
         # The release time, not the lease's end an hour ahead.
         assert before - 1000 <= when <= time.time() * 1000
@@ -270,7 +275,8 @@ def test_pool_create_errors_name_the_flag_and_its_spelling(
     )
     assert done.returncode == 3
     assert done.stderr.startswith(f"leadline pool create: INVALID_ARGUMENT: {message}")
-    assert "pool." not in done.stderr and "LOSS_KIND" not in done.stderr
+    assert "pool." not in done.stderr
+    assert "LOSS_KIND" not in done.stderr
 
 
 def test_token_problems_name_the_flag_or_the_variable(server: LocalServer, tmp_path: Path):
@@ -355,7 +361,8 @@ def test_gate_prints_the_one_sided_bound_the_verdict_used(
     lines = done.stdout.splitlines()
     assert lines[1] == f"  one-sided 95% anytime upper bound {result.upper:.4f} < 0.9"
     # No two-sided interval beside it: those are GetEstimate's, not the gate's.
-    assert "two-sided" not in done.stdout and "fixed-time" not in done.stdout
+    assert "two-sided" not in done.stdout
+    assert "fixed-time" not in done.stdout
 
 
 def test_labels_hint_never_exceeds_the_unlabeled_items_and_is_printed_once(
@@ -367,7 +374,8 @@ def test_labels_hint_never_exceeds_the_unlabeled_items_and_is_printed_once(
     # The estimate sits on the threshold: the 1/sqrt(labels) extrapolation asks for
     # "infinitely" many labels; the pool has 997 left, and they may not be enough.
     assert result.verdict is Verdict.UNDECIDED
-    assert result.more_labels_hint == unlabeled and result.labels_may_not_suffice
+    assert result.more_labels_hint == unlabeled
+    assert result.labels_may_not_suffice
     assert f"even labeling all {unlabeled:,} unlabeled items in scope" in result.reason
     done = _reader(server, "gate", "--pool", labeled_digits.pool, "--max-risk", repr(threshold))
     assert done.returncode == 2
@@ -377,7 +385,8 @@ def test_labels_hint_never_exceeds_the_unlabeled_items_and_is_printed_once(
     near = result.estimate.risk + 0.9 * (result.upper - result.estimate.risk)
     closer = admin.check_gate(labeled_digits.pool, max_risk=near)
     assert closer.verdict is Verdict.UNDECIDED
-    assert 0 < closer.more_labels_hint < unlabeled and not closer.labels_may_not_suffice
+    assert 0 < closer.more_labels_hint < unlabeled
+    assert not closer.labels_may_not_suffice
     done = _reader(server, "gate", "--pool", labeled_digits.pool, "--max-risk", repr(near))
     assert done.stdout.count("more labels") == 1, done.stdout
 
@@ -404,11 +413,14 @@ def test_report_plots_and_states_the_bound_the_gate_used(
 
 def test_python_results_carry_python_enums(admin: Client, labeled_digits: Digits) -> None:
     result = admin.check_gate(labeled_digits.pool, max_risk=0.9, bound="fixed-time")
-    assert result.verdict is Verdict.PASS and str(result.verdict) == "pass"
+    assert result.verdict is Verdict.PASS
+    assert str(result.verdict) == "pass"
     assert result.verdict == "pass"
-    assert result.bound is BoundKind.FIXED_TIME and str(result.bound) == "fixed-time"
+    assert result.bound is BoundKind.FIXED_TIME
+    assert str(result.bound) == "fixed-time"
     estimate = admin.get_estimate(labeled_digits.pool, mode="unbiased")
-    assert estimate.mode is EstimatorMode.UNBIASED and str(estimate.mode) == "unbiased"
+    assert estimate.mode is EstimatorMode.UNBIASED
+    assert str(estimate.mode) == "unbiased"
     trace = admin.get_estimate_trace(labeled_digits.pool, max_points=3)
     assert {point.mode for point in trace} == {EstimatorMode.BALANCED}
 
@@ -436,14 +448,18 @@ def test_json_output_is_flat_with_plain_numbers_and_enum_words(
     gate = json.loads(
         _reader(server, "gate", "--pool", labeled_digits.pool, "--max-risk", "0.9", "--json").stdout
     )
-    assert set(gate) == _GATE_KEYS and _flat(gate)
+    assert set(gate) == _GATE_KEYS
+    assert _flat(gate)
     assert (gate["verdict"], gate["bound"], gate["mode"]) == ("pass", "anytime", "balanced")
-    assert isinstance(gate["labels_used"], int) and gate["labels_used"] == 200
+    assert isinstance(gate["labels_used"], int)
+    assert gate["labels_used"] == 200
     status = json.loads(_reader(server, "status", "--pool", labeled_digits.pool, "--json").stdout)
     assert set(status) == {"pool", "estimate", "segments"}
-    assert _flat(status["pool"]) and _flat(status["estimate"])
+    assert _flat(status["pool"])
+    assert _flat(status["estimate"])
     assert all(_flat(s) for s in status["segments"])
-    assert status["pool"]["task"] == "classification" and status["pool"]["loss"] == "zero-one"
+    assert status["pool"]["task"] == "classification"
+    assert status["pool"]["loss"] == "zero-one"
     assert status["pool"]["item_count"] == len(labeled_digits.item_ids)
     assert status["estimate"]["sides"] == "two-sided"
     listed = json.loads(_reader(server, "pool", "list", "--json").stdout)
@@ -480,7 +496,8 @@ def test_every_flag_has_help_and_every_command_names_its_pool_with_pool() -> Non
             continue
         options = {s for a in parser._actions for s in a.option_strings}
         positionals = [a.dest for a in parser._actions if not a.option_strings]
-        assert "--pool" in options and positionals == [], name
+        assert "--pool" in options, name
+        assert positionals == [], name
 
 
 def test_pool_defaults_are_spelled_like_the_server_settings_they_override() -> None:
@@ -495,10 +512,12 @@ def test_pool_defaults_are_spelled_like_the_server_settings_they_override() -> N
         "--default-confidence",
         "--refit-every-labels",
     ):
-        assert flag in create_flags and flag in serve_flags
+        assert flag in create_flags
+        assert flag in serve_flags
     # The other settings' help names the pool field they set.
     helps = {a.option_strings[0]: a.help for a in create._actions if a.option_strings}
-    assert "(num_classes)" in helps["--classes"] and "(feature_dim)" in helps["--features"]
+    assert "(num_classes)" in helps["--classes"]
+    assert "(feature_dim)" in helps["--features"]
 
 
 def test_version_flag() -> None:

@@ -119,7 +119,8 @@ def test_every_rpc_of_the_contract_has_a_client_method() -> None:
 )
 def test_every_exception_is_a_leadline_error_with_a_docstring(cls: type) -> None:
     assert issubclass(cls, LeadlineError)
-    assert cls.__doc__ and cls.__doc__.strip()
+    assert cls.__doc__
+    assert cls.__doc__.strip()
 
 
 def test_error_string_names_code_and_method() -> None:

@@ -54,7 +54,8 @@ def _run_shell(block: str, env: dict[str, str], cwd: Path) -> tuple[str, dict[st
     )
     assert done.returncode == 0, f"{block}\n--- stdout\n{done.stdout}\n--- stderr\n{done.stderr}"
     # A newcomer sees no traceback and no warning.
-    assert "Traceback" not in done.stderr and "Warning" not in done.stderr, done.stderr
+    assert "Traceback" not in done.stderr, done.stderr
+    assert "Warning" not in done.stderr, done.stderr
     pairs = env_file.read_text().split("\0")
     after = dict(pair.split("=", 1) for pair in pairs if "=" in pair)
     return done.stdout, after

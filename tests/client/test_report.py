@@ -93,7 +93,9 @@ def test_report_writes_a_png_and_html_with_three_embedded_figures(
     files = write_report(data, tmp_path / "out", stem="demo")
     assert files.png == tmp_path / "out" / "demo.png"
     image = matplotlib.image.imread(files.png)  # decodes the PNG: it really opens
-    assert image.ndim == 3 and image.shape[0] > 200 and image.shape[1] > 600
+    assert image.ndim == 3
+    assert image.shape[0] > 200
+    assert image.shape[1] > 600
     page = files.html.read_text(encoding="utf-8")
     embedded = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', page)
     assert len(embedded) == 3
@@ -106,7 +108,8 @@ def test_report_writes_a_png_and_html_with_three_embedded_figures(
     ):
         assert f"<h2>{title}</h2>" in page
     # Self-contained: no external resources.
-    assert "http://" not in page and "https://" not in page
+    assert "http://" not in page
+    assert "https://" not in page
 
 
 @pytest.fixture(scope="module")

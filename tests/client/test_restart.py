@@ -21,7 +21,7 @@ from leadline.client import AlreadyExists, Client, IngestResult, LocalServer, No
 from .conftest import Digits, digits_pool
 
 
-@pytest.fixture()
+@pytest.fixture
 def restartable(tmp_path: Path) -> Iterator[LocalServer]:
     local = LocalServer(tmp_path)
     local.start()

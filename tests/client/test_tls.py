@@ -113,7 +113,8 @@ def test_mutual_tls_client_can_call(mtls_server: LocalServer, certificates: Path
         cert=certificates / "client.pem",
         key=certificates / "client.key",
     )
-    assert "<hidden>" in repr(tls) and "BEGIN" not in repr(tls)
+    assert "<hidden>" in repr(tls)
+    assert "BEGIN" not in repr(tls)
     with Client(mtls_server.target, token=TOKENS["admin"], tls=tls) as client:
         assert client.health() == "SERVING"
         client.create_pool(
@@ -152,9 +153,11 @@ def test_clients_without_the_right_credentials_cannot_connect(
     config = (
         TlsConfig.from_files(ca=certificates / "ca.pem") if tls == "no-client-certificate" else None
     )
-    with Client(mtls_server.target, token=TOKENS["admin"], tls=config, timeout=1.5) as client:
-        with pytest.raises(Unavailable):
-            client.list_pools()
+    with (
+        Client(mtls_server.target, token=TOKENS["admin"], tls=config, timeout=1.5) as client,
+        pytest.raises(Unavailable),
+    ):
+        client.list_pools()
 
 
 def test_half_a_client_key_pair_is_refused() -> None:

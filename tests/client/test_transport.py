@@ -60,7 +60,7 @@ class _ScriptedIngest(leadline_pb2_grpc.IngestServiceServicer):
         )
 
 
-@pytest.fixture()
+@pytest.fixture
 def scripted() -> Iterator[tuple[_ScriptedIngest, str]]:
     servicer = _ScriptedIngest()
     server = grpc.server(futures.ThreadPoolExecutor(max_workers=4))
@@ -154,9 +154,11 @@ def test_unreachable_server_fails_at_the_deadline() -> None:
 
 
 def test_unreachable_server_gives_unavailable_after_retries_without_wait_for_ready() -> None:
-    with Client("127.0.0.1:9", timeout=20, wait_for_ready=False) as client:
-        with pytest.raises(Unavailable) as caught:
-            client.get_pool("p")
+    with (
+        Client("127.0.0.1:9", timeout=20, wait_for_ready=False) as client,
+        pytest.raises(Unavailable) as caught,
+    ):
+        client.get_pool("p")
     assert caught.value.code is grpc.StatusCode.UNAVAILABLE
 
 

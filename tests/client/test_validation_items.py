@@ -167,7 +167,8 @@ def test_cli_adds_validation_items_from_npz_and_csv_and_status_shows_them(
         "validation", "add", "--pool", data.pool, "--file", str(npz),
         token=TOKENS["reader"], target=server.target,
     )  # fmt: skip
-    assert refused.returncode == 3 and "PERMISSION_DENIED" in refused.stderr
+    assert refused.returncode == 3
+    assert "PERMISSION_DENIED" in refused.stderr
     np.savez(tmp_path / "bad.npz", item_ids=rows["item_ids"][:3], features=rows["features"][:3])
     bad = run_cli(
         "validation", "add", "--pool", data.pool, "--file", str(tmp_path / "bad.npz"),

@@ -92,7 +92,7 @@ def _enumerate(losses: np.ndarray, draws: int, scope: np.ndarray):
         yield probability, terms, sequence
 
 
-def _sums(losses: np.ndarray, scope: np.ndarray) -> PlugInSums:
+def _sums(_losses: np.ndarray, scope: np.ndarray) -> PlugInSums:
     return PlugInSums(
         scope_size=int(scope.sum()),
         labeled_loss_sum=0.0,
@@ -184,7 +184,8 @@ def test_late_items_bias_stays_within_the_reported_bias_bound():
         bias_bound = estimate.bias_bound
     exact_bias = (late_score.sum() - losses[~present].sum()) / 7
     assert abs(expectation - losses.mean() - exact_bias) < 1e-12
-    assert bias_bound is not None and abs(exact_bias) <= bias_bound + 1e-12
+    assert bias_bound is not None
+    assert abs(exact_bias) <= bias_bound + 1e-12
     assert bias_bound <= 2 * _BOUND / 7 + 1e-12  # mean(late_count) * B / N_D
 
 

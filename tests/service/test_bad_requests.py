@@ -64,7 +64,7 @@ CASES = [
         "pool id with capitals",
         "pools",
         "CreatePool",
-        lambda c: pb.CreatePoolRequest(pool_id="Bad_Id", pool=_pool()),
+        lambda _c: pb.CreatePoolRequest(pool_id="Bad_Id", pool=_pool()),
         INVALID,
         "pool_id",
     ),
@@ -72,7 +72,7 @@ CASES = [
         "task unspecified",
         "pools",
         "CreatePool",
-        lambda c: pb.CreatePoolRequest(pool_id="p1", pool=_pool(task=0)),
+        lambda _c: pb.CreatePoolRequest(pool_id="p1", pool=_pool(task=0)),
         INVALID,
         "pool.task",
     ),
@@ -80,7 +80,7 @@ CASES = [
         "one class",
         "pools",
         "CreatePool",
-        lambda c: pb.CreatePoolRequest(pool_id="p1", pool=_pool(num_classes=1)),
+        lambda _c: pb.CreatePoolRequest(pool_id="p1", pool=_pool(num_classes=1)),
         INVALID,
         "pool.num_classes",
     ),
@@ -88,7 +88,7 @@ CASES = [
         "feature_dim zero",
         "pools",
         "CreatePool",
-        lambda c: pb.CreatePoolRequest(pool_id="p1", pool=_pool(feature_dim=0)),
+        lambda _c: pb.CreatePoolRequest(pool_id="p1", pool=_pool(feature_dim=0)),
         INVALID,
         "pool.feature_dim",
     ),
@@ -96,7 +96,7 @@ CASES = [
         "regression with zero-one loss",
         "pools",
         "CreatePool",
-        lambda c: pb.CreatePoolRequest(
+        lambda _c: pb.CreatePoolRequest(
             pool_id="p1", pool=_pool(task=pb.TASK_TYPE_REGRESSION, num_classes=0, loss_cap=1.0)
         ),
         INVALID,
@@ -106,7 +106,7 @@ CASES = [
         "cost matrix of the wrong shape",
         "pools",
         "CreatePool",
-        lambda c: pb.CreatePoolRequest(
+        lambda _c: pb.CreatePoolRequest(
             pool_id="p1", pool=_pool(loss=pb.LOSS_KIND_COST_MATRIX, cost_matrix=[0, 1, 1])
         ),
         INVALID,
@@ -116,7 +116,7 @@ CASES = [
         "regression without loss cap",
         "pools",
         "CreatePool",
-        lambda c: pb.CreatePoolRequest(
+        lambda _c: pb.CreatePoolRequest(
             pool_id="p1",
             pool=_pool(
                 task=pb.TASK_TYPE_REGRESSION, num_classes=0, loss=pb.LOSS_KIND_SQUARED_ERROR
@@ -129,7 +129,7 @@ CASES = [
         "selection floor above one",
         "pools",
         "CreatePool",
-        lambda c: pb.CreatePoolRequest(pool_id="p1", pool=_pool(selection_floor=1.5)),
+        lambda _c: pb.CreatePoolRequest(pool_id="p1", pool=_pool(selection_floor=1.5)),
         INVALID,
         "pool.selection_floor",
     ),
@@ -137,7 +137,7 @@ CASES = [
         "pool id in use",
         "pools",
         "CreatePool",
-        lambda c: pb.CreatePoolRequest(pool_id="bad", pool=_pool()),
+        lambda _c: pb.CreatePoolRequest(pool_id="bad", pool=_pool()),
         grpc.StatusCode.ALREADY_EXISTS,
         "pool_id",
     ),
@@ -145,7 +145,7 @@ CASES = [
         "pool name without prefix",
         "pools",
         "GetPool",
-        lambda c: pb.GetPoolRequest(name="bad"),
+        lambda _c: pb.GetPoolRequest(name="bad"),
         INVALID,
         "name",
     ),
@@ -153,7 +153,7 @@ CASES = [
         "unknown pool",
         "pools",
         "GetPool",
-        lambda c: pb.GetPoolRequest(name="pools/absent"),
+        lambda _c: pb.GetPoolRequest(name="pools/absent"),
         grpc.StatusCode.NOT_FOUND,
         "pool",
     ),
@@ -161,7 +161,7 @@ CASES = [
         "negative page size",
         "pools",
         "ListPools",
-        lambda c: pb.ListPoolsRequest(page_size=-1),
+        lambda _c: pb.ListPoolsRequest(page_size=-1),
         INVALID,
         "page_size",
     ),
@@ -169,7 +169,7 @@ CASES = [
         "forged page token",
         "pools",
         "ListPools",
-        lambda c: pb.ListPoolsRequest(page_token="%%%"),
+        lambda _c: pb.ListPoolsRequest(page_token="%%%"),
         INVALID,
         "page_token",
     ),
@@ -241,7 +241,7 @@ CASES = [
         "empty batch",
         "ingest",
         "IngestItems",
-        lambda c: pb.ItemBatch(pool=_POOL),
+        lambda _c: pb.ItemBatch(pool=_POOL),
         INVALID,
         "item_ids",
     ),
@@ -265,7 +265,7 @@ CASES = [
         "acquire zero items",
         "labeling",
         "AcquireItems",
-        lambda c: pb.AcquireItemsRequest(pool=_POOL, count=0, labeler="vendor-a"),
+        lambda _c: pb.AcquireItemsRequest(pool=_POOL, count=0, labeler="vendor-a"),
         INVALID,
         "count",
     ),
@@ -273,7 +273,7 @@ CASES = [
         "acquire without labeler",
         "labeling",
         "AcquireItems",
-        lambda c: pb.AcquireItemsRequest(pool=_POOL, count=1),
+        lambda _c: pb.AcquireItemsRequest(pool=_POOL, count=1),
         INVALID,
         "labeler",
     ),
@@ -281,7 +281,7 @@ CASES = [
         "lease above seven days",
         "labeling",
         "AcquireItems",
-        lambda c: pb.AcquireItemsRequest(
+        lambda _c: pb.AcquireItemsRequest(
             pool=_POOL, count=1, labeler="vendor-a", lease_seconds=8 * 86400
         ),
         INVALID,
@@ -315,7 +315,7 @@ CASES = [
         "unknown assignment",
         "labeling",
         "SubmitLabels",
-        lambda c: pb.SubmitLabelsRequest(
+        lambda _c: pb.SubmitLabelsRequest(
             pool=_POOL,
             labeler="vendor-a",
             labels=[pb.LabelSubmission(assignment_id="d999-000000000000", class_label=0)],
@@ -339,7 +339,7 @@ CASES = [
         "release nothing",
         "labeling",
         "ReleaseItems",
-        lambda c: pb.ReleaseItemsRequest(pool=_POOL, labeler="vendor-a"),
+        lambda _c: pb.ReleaseItemsRequest(pool=_POOL, labeler="vendor-a"),
         INVALID,
         "assignment_ids",
     ),
@@ -347,7 +347,7 @@ CASES = [
         "confidence above one",
         "estimates",
         "GetEstimate",
-        lambda c: pb.GetEstimateRequest(pool=_POOL, confidence=1.5),
+        lambda _c: pb.GetEstimateRequest(pool=_POOL, confidence=1.5),
         INVALID,
         "confidence",
     ),
@@ -355,7 +355,7 @@ CASES = [
         "unknown mode",
         "estimates",
         "GetEstimate",
-        lambda c: pb.GetEstimateRequest(pool=_POOL, mode=9),
+        lambda _c: pb.GetEstimateRequest(pool=_POOL, mode=9),
         INVALID,
         "mode",
     ),
@@ -363,7 +363,7 @@ CASES = [
         "unknown segment",
         "estimates",
         "GetEstimate",
-        lambda c: pb.GetEstimateRequest(pool=_POOL, segment="nowhere"),
+        lambda _c: pb.GetEstimateRequest(pool=_POOL, segment="nowhere"),
         grpc.StatusCode.NOT_FOUND,
         "segment",
     ),
@@ -371,7 +371,7 @@ CASES = [
         "empty window",
         "estimates",
         "GetEstimate",
-        lambda c: pb.GetEstimateRequest(pool=_POOL, start_time_ms=20, end_time_ms=10),
+        lambda _c: pb.GetEstimateRequest(pool=_POOL, start_time_ms=20, end_time_ms=10),
         INVALID,
         "start_time_ms",
     ),
@@ -379,7 +379,7 @@ CASES = [
         "gate threshold NaN",
         "estimates",
         "CheckGate",
-        lambda c: pb.CheckGateRequest(pool=_POOL, max_risk=math.nan),
+        lambda _c: pb.CheckGateRequest(pool=_POOL, max_risk=math.nan),
         INVALID,
         "max_risk",
     ),
@@ -387,7 +387,7 @@ CASES = [
         "gate threshold at the largest loss",
         "estimates",
         "CheckGate",
-        lambda c: pb.CheckGateRequest(pool=_POOL, max_risk=1.0),
+        lambda _c: pb.CheckGateRequest(pool=_POOL, max_risk=1.0),
         INVALID,
         "max_risk",
     ),
@@ -395,7 +395,7 @@ CASES = [
         "gate threshold above the largest loss",
         "estimates",
         "CheckGate",
-        lambda c: pb.CheckGateRequest(pool=_POOL, max_risk=5.0),
+        lambda _c: pb.CheckGateRequest(pool=_POOL, max_risk=5.0),
         INVALID,
         "max_risk",
     ),
@@ -403,7 +403,7 @@ CASES = [
         "gate threshold zero",
         "estimates",
         "CheckGate",
-        lambda c: pb.CheckGateRequest(pool=_POOL, max_risk=0.0),
+        lambda _c: pb.CheckGateRequest(pool=_POOL, max_risk=0.0),
         INVALID,
         "max_risk",
     ),
@@ -411,7 +411,7 @@ CASES = [
         "gate confidence below one half",
         "estimates",
         "CheckGate",
-        lambda c: pb.CheckGateRequest(pool=_POOL, max_risk=0.2, confidence=0.3),
+        lambda _c: pb.CheckGateRequest(pool=_POOL, max_risk=0.2, confidence=0.3),
         INVALID,
         "confidence",
     ),
@@ -419,7 +419,7 @@ CASES = [
         "unknown bound kind",
         "estimates",
         "CheckGate",
-        lambda c: pb.CheckGateRequest(pool=_POOL, max_risk=0.2, bound=7),
+        lambda _c: pb.CheckGateRequest(pool=_POOL, max_risk=0.2, bound=7),
         INVALID,
         "bound",
     ),
@@ -427,7 +427,7 @@ CASES = [
         "draw page too large",
         "estimates",
         "ListDraws",
-        lambda c: pb.ListDrawsRequest(pool=_POOL, page_size=20_000),
+        lambda _c: pb.ListDrawsRequest(pool=_POOL, page_size=20_000),
         INVALID,
         "page_size",
     ),
@@ -513,10 +513,7 @@ def test_gate_threshold_outside_the_loss_range_names_the_largest_loss(
     # A zero-one pool: each item's loss is 0 or 1, so its risk (a mean loss) lies in
     # [0, 1]; a threshold at or above 1 would pass every model, at or below 0 none.
     harness, _ = bad_setup
-    with harness.stubs("reader") as stubs:
-        with pytest.raises(grpc.RpcError) as caught:
-            stubs.call(
-                stubs.estimates.CheckGate, pb.CheckGateRequest(pool=_POOL, max_risk=max_risk)
-            )
+    with harness.stubs("reader") as stubs, pytest.raises(grpc.RpcError) as caught:
+        stubs.call(stubs.estimates.CheckGate, pb.CheckGateRequest(pool=_POOL, max_risk=max_risk))
     assert caught.value.code() == INVALID
     assert caught.value.details().startswith(f"max_risk = {max_risk:g}: must be in (0, 1)")

@@ -61,7 +61,8 @@ def test_concurrent_ingest_labeling_and_gates_add_up(
                 assert (summary.accepted, summary.duplicates, summary.rejected) == (_BATCH, 0, 0)
                 # A retry with the same request id is answered from the first result ...
                 retry = stubs.call(stubs.ingest.IngestItems, batch)
-                assert retry.accepted == _BATCH and retry.item_count == summary.item_count
+                assert retry.accepted == _BATCH
+                assert retry.item_count == summary.item_count
                 # ... and re-sending the previous batch under a new id counts duplicates only.
                 if previous is not None:
                     previous.request_id = str(uuid.uuid4())
@@ -106,7 +107,8 @@ def test_concurrent_ingest_labeling_and_gates_add_up(
                     stubs.labeling.SubmitLabels,
                     pb.SubmitLabelsRequest(pool=_POOL, labeler="vendor-a", labels=submissions),
                 )
-                assert reply.accepted == len(submissions) and not reply.errors
+                assert reply.accepted == len(submissions)
+                assert not reply.errors
                 skipped = sum(s.WhichOneof("outcome") == "skip_reason" for s in submissions)
                 record(labeled=len(submissions) - skipped, skipped=skipped)
                 if released:
@@ -161,7 +163,9 @@ def test_concurrent_ingest_labeling_and_gates_add_up(
     assert pool.pending_count <= tally["released"]
     assert estimate.labels_used == tally["labeled"]
     assert estimate.items_in_scope == pool.item_count
-    assert tally["polls"] > 10 and tally["labeled"] > 50 and tally["accepted"] > 10 * _BATCH
+    assert tally["polls"] > 10
+    assert tally["labeled"] > 50
+    assert tally["accepted"] > 10 * _BATCH
 
 
 _SEED = 200

@@ -175,7 +175,8 @@ def test_a_lost_or_damaged_database_is_refused_with_its_path_and_the_next_step(
     log = _refused(data_dir, tokens)
     assert said in log, log
     assert str(data_dir / DATABASE_FILE) in log
-    assert "restore" in log and "latest backup" in log
+    assert "restore" in log
+    assert "latest backup" in log
     assert f"leadline check --data-dir {data_dir}" in log
 
 

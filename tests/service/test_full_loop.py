@@ -28,7 +28,8 @@ def test_full_loop_estimate_tracks_true_risk(harness_factory, digits_pool: Datas
             summary = stubs.call(
                 stubs.ingest.IngestItems, item_batch("digits", data, range(start, start + 500))
             )
-            assert summary.accepted == 500 and summary.rejected == 0
+            assert summary.accepted == 500
+            assert summary.rejected == 0
         assert summary.item_count == 2000
         labeled = 0
         for _ in range(10):

@@ -9,6 +9,7 @@ import urllib.request
 from collections.abc import Callable
 
 import grpc
+import pytest
 
 from leadline.v1 import leadline_pb2 as pb
 from tests.service.helpers import Harness
@@ -33,10 +34,9 @@ def test_random_method_names_without_a_token_land_in_one_bucket(
             # Unknown methods of known and unknown services, as a scanner would send them.
             service = "PoolService" if number % 2 else f"S{secrets.token_hex(4)}"
             call = channel.unary_unary(f"/leadline.v1.{service}/M{secrets.token_hex(8)}")
-            try:
+            with pytest.raises(grpc.RpcError) as refused:
                 call(b"", timeout=10)
-            except grpc.RpcError as error:
-                assert error.code() == grpc.StatusCode.UNAUTHENTICATED
+            assert refused.value.code() == grpc.StatusCode.UNAUTHENTICATED
         with harness.stubs() as stubs:
             stubs.call(stubs.pools.ListPools, pb.ListPoolsRequest())
     body = _scrape(harness)

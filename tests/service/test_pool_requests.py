@@ -68,7 +68,8 @@ def test_retried_create_and_delete_get_the_first_answer_across_a_restart(
         assert _code(lambda: _delete(stubs, "tumours")) == grpc.StatusCode.NOT_FOUND
         # The first reply once the pool is gone; nothing is created again.
         first = _create(stubs, "tumours", data, "create-1")
-        assert first.create_time_ms == created.create_time_ms and first.item_count == 0
+        assert first.create_time_ms == created.create_time_ms
+        assert first.item_count == 0
         assert (
             _code(lambda: stubs.call(stubs.pools.GetPool, pb.GetPoolRequest(name="pools/tumours")))
             == grpc.StatusCode.NOT_FOUND

@@ -56,7 +56,9 @@ def test_estimate_trace_has_increasing_label_counts(harness: Harness, cancer_poo
         )
     used = [point.labels_used for point in trace.points]
     assert len(used) == 5
-    assert used == sorted(used) and used[-1] == 30 and used[0] >= 1
+    assert used == sorted(used)
+    assert used[-1] == 30
+    assert used[0] >= 1
     # Bounds lie in [0, B]; the point estimate itself may leave it with very few labels
     # (a difference estimator is not clipped).
     assert all(0 <= p.lower <= p.upper <= p.loss_bound == 1 for p in trace.points)

@@ -47,7 +47,8 @@ def test_an_ingest_id_reused_for_other_rows_is_refused_not_answered(
         # and the 25 rows were silently dropped.
         reused = item_batch("tumours", data, range(10, 35), request_id="hour-7")
         message = _refused(lambda: stubs.call(stubs.ingest.IngestItems, reused))
-        assert "request_id = 'hour-7'" in message and _REUSED in message
+        assert "request_id = 'hour-7'" in message
+        assert _REUSED in message
         # The identical request again (a retry) is still answered from the first result.
         again = stubs.call(
             stubs.ingest.IngestItems, item_batch("tumours", data, range(10), request_id="hour-7")
@@ -78,7 +79,8 @@ def test_a_labelers_request_id_is_its_own(harness: Harness, cancer_pool: Dataset
         theirs = stubs.call(stubs.labeling.AcquireItems, request, who="labeler2")
         replay = stubs.call(stubs.labeling.AcquireItems, request, who="labeler")
     ids = [a.assignment_id for a in mine.assignments]
-    assert len(ids) == 5 and [a.assignment_id for a in replay.assignments] == ids
+    assert len(ids) == 5
+    assert [a.assignment_id for a in replay.assignments] == ids
     assert not set(ids) & {a.assignment_id for a in theirs.assignments}
     assert len(theirs.assignments) == 5
 

@@ -102,9 +102,8 @@ def test_health_answers_without_token(roles_pool: Harness) -> None:
             assert reply.status == health_pb2.HealthCheckResponse.SERVING
 
 
-def test_labeler_cannot_submit_or_release_another_labelers_assignment(
-    roles_pool: Harness, cancer_pool: Dataset
-) -> None:
+@pytest.mark.usefixtures("cancer_pool")
+def test_labeler_cannot_submit_or_release_another_labelers_assignment(roles_pool: Harness) -> None:
     with roles_pool.stubs("labeler") as stubs:
         held = stubs.call(
             stubs.labeling.AcquireItems,

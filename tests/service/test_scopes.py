@@ -22,11 +22,11 @@ def _columns(n: int) -> tuple[list[str], list[int]]:
 
 
 _SCOPES = [
-    ({}, lambda seg, t: np.ones(len(seg), bool)),
-    ({"segment": "south"}, lambda seg, t: seg == "south"),
+    ({}, lambda seg, _t: np.ones(len(seg), bool)),
+    ({"segment": "south"}, lambda seg, _t: seg == "south"),
     (
         {"start_time_ms": _T0 + 60_000 * 30, "end_time_ms": _T0 + 60_000 * 90},
-        lambda seg, t: (t >= _T0 + 60_000 * 30) & (t < _T0 + 60_000 * 90),
+        lambda _seg, t: (t >= _T0 + 60_000 * 30) & (t < _T0 + 60_000 * 90),
     ),
     (
         {"segment": "north", "start_time_ms": _T0 + 60_000 * 50},

@@ -62,7 +62,8 @@ def test_serve_logs_real_port_and_exits_zero_on_sigterm(tmp_path: Path) -> None:
     try:
         line = _listening_line(process)
         host, port = line.removeprefix("leadline listening on ").rsplit(":", 1)
-        assert host == "127.0.0.1" and int(port) > 0
+        assert host == "127.0.0.1"
+        assert int(port) > 0
         with grpc.insecure_channel(f"127.0.0.1:{port}") as channel:
             pools = pb_grpc.PoolServiceStub(channel)
             created = pools.CreatePool(
@@ -157,7 +158,7 @@ def test_malformed_token_file_is_refused(tmp_path: Path, text: str, message: str
         start_server(ServerConfig(data_dir=tmp_path / "d", listen="127.0.0.1:0", tokens=path))
 
 
-def test_metrics_and_health(harness_factory, tmp_path: Path) -> None:
+def test_metrics_and_health(harness_factory) -> None:
     harness: Harness = harness_factory(metrics_listen="127.0.0.1:0")
     assert harness.server is not None
     with harness.stubs("reader") as stubs:
@@ -191,7 +192,8 @@ def test_reflection_is_off_by_default_and_on_with_the_flag(harness_factory) -> N
 
     assert services(harness_factory()) == grpc.StatusCode.UNIMPLEMENTED
     listed = services(harness_factory(enable_reflection=True))
-    assert isinstance(listed, list) and "leadline.v1.EstimateService" in listed
+    assert isinstance(listed, list)
+    assert "leadline.v1.EstimateService" in listed
 
 
 def _openssl(*args: str, cwd: Path) -> None:

@@ -41,7 +41,7 @@ def test_failing_write_does_not_undo_its_group(tmp_path: Path) -> None:
         )
         barrier = threading.Event()
         # Hold the writer so the next three writes share one group commit.
-        blocker = database.submit(lambda c: barrier.wait(5))
+        blocker = database.submit(lambda _c: barrier.wait(5))
         good = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (1, 'kept')"))
         bad = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (1, 'duplicate')"))
         also = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (2, 'kept too')"))
@@ -66,7 +66,7 @@ def test_committed_write_is_visible_to_a_fresh_connection(tmp_path: Path) -> Non
         assert other.execute("SELECT x FROM t").fetchall() == [(42,)]
     database.close()
     with pytest.raises(RuntimeError, match="closed"):
-        database.submit(lambda c: None)
+        database.submit(lambda _c: None)
 
 
 def test_lane_fails_later_writes_until_reopened(tmp_path: Path) -> None:
@@ -79,7 +79,7 @@ def test_lane_fails_later_writes_until_reopened(tmp_path: Path) -> None:
         )
         database.write(lambda c: c.execute("INSERT INTO notes VALUES (1, 'a')"))
         barrier = threading.Event()
-        blocker = database.submit(lambda c: barrier.wait(5))
+        blocker = database.submit(lambda _c: barrier.wait(5))
         bad = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (1, 'a')"), lane="a")
         behind = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (2, 'a')"), lane="a")
         other = database.submit(lambda c: c.execute("INSERT INTO notes VALUES (3, 'b')"), lane="b")

@@ -122,7 +122,7 @@ CASES = [
     ),
     Case(
         "no items",
-        lambda d: pb.ValidationBatch(pool="pools/bad"),
+        lambda _d: pb.ValidationBatch(pool="pools/bad"),
         INVALID,
         "item_ids is empty: a batch needs at least one item.",
     ),
@@ -217,20 +217,20 @@ CASES = [
     ),
     Case(
         "class labels sent to a regression pool",
-        lambda d: _regression(class_labels=[0, 1]),
+        lambda _d: _regression(class_labels=[0, 1]),
         INVALID,
         "class_labels has 2 entries: pool 'pools/bad-regression' is a regression pool; send "
         "the targets as values and leave class_labels empty.",
     ),
     Case(
         "no values for a regression pool",
-        lambda d: _regression(values=[]),
+        lambda _d: _regression(values=[]),
         INVALID,
         "values has 0 entries for 2 item ids: a regression pool needs one target value per item.",
     ),
     Case(
         "infinite target",
-        lambda d: _regression(values=[1.0, math.inf]),
+        lambda _d: _regression(values=[1.0, math.inf]),
         INVALID,
         "values[1] = inf (item 'r-1'): must be finite.",
     ),
