@@ -8,7 +8,7 @@ budgets.
 Methods (all on the same pool, same repetition seed):
 
 - ``iid``: uniform random sampling without replacement, sample mean, 90% t interval with
-  the finite-population correction (Cochran, "Sampling Techniques", 3rd ed., 1977, §2.6).
+  the finite-population correction ("Sampling Techniques", 3rd ed., 1977, §2.6).
 - ``lure``: the active-testing baseline; proposal q proportional to the surrogate's expected
   loss (with the same floor), LURE weights (``lure_weights``), normal interval from the
   weighted losses' sample variance (common practice, no source).
@@ -17,8 +17,9 @@ Methods (all on the same pool, same repetition seed):
   ``estimate_risk`` on the same draws.
 - ``oracle``: the proposal q proportional to |L - g| from the TRUE losses (unattainable; the
   limit of what a proposal can do with this surrogate), UNBIASED estimator.
-- ``gate``: leadline's selection with the gate floor (a larger epsilon, DESIGN §3.6) for
-  the anytime bound, UNBIASED estimator.
+- ``gate``: leadline's selection with the gate floor (a larger epsilon: docs/estimation.md
+  §6, pools gated often draw with a larger floor) for the anytime bound, UNBIASED
+  estimator.
 
 The surrogate sequence is fitted once per repetition, on leadline's own labels, at the
 refit points; ``lure``, ``oracle`` and ``gate`` reuse that sequence. A surrogate fitted on

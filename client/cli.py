@@ -7,7 +7,8 @@ Connection settings come from flags or the environment: ``--target`` /
 ``LEADLINE_TARGET`` (host:port), ``--token`` / ``LEADLINE_TOKEN`` (or ``--token-file``),
 ``--tls`` / ``--tls-ca`` / ``--tls-cert`` / ``--tls-key`` for TLS and mutual TLS.
 ``leadline serve`` runs the server itself and takes the server's own flags; ``leadline
-check --data-dir DIR`` checks a server's database (both need the server's dependencies).
+check --data-dir DIR`` checks a server's database (both load the server's modules, the
+other commands do not).
 
 Every command names its pool with ``--pool``. ``--json`` prints our own flat JSON (plain
 numbers, lower-case enum words; the keys are listed in the README and kept stable).
@@ -46,7 +47,6 @@ _LOG = logging.getLogger(__name__)
 
 DEFAULT_TARGET = "localhost:50051"
 EXIT_PASS = 0
-EXIT_OK = 0
 EXIT_FAIL = 1
 EXIT_UNDECIDED = 2
 EXIT_ERROR = 3
@@ -700,7 +700,7 @@ def _run_pool(args: argparse.Namespace) -> int:
                 )
             client.delete_pool(args.pool)
             print(f"deleted {pool_name(args.pool)}")
-    return EXIT_OK
+    return 0
 
 
 def _run_validation(args: argparse.Namespace) -> int:
@@ -727,7 +727,7 @@ def _run_validation(args: argparse.Namespace) -> int:
         print(f"  rejected {problem.item_id}: {problem.reason}")
     if result.accepted:
         print("  a surrogate refit on them starts now; the next draw waits for it")
-    return EXIT_OK
+    return 0
 
 
 def _run_status(args: argparse.Namespace) -> int:
@@ -752,7 +752,7 @@ def _run_status(args: argparse.Namespace) -> int:
             "segments": [{"segment": s, **e.to_dict()} for s, e in sorted(segments.items())],
         }
         print(_json(payload))
-        return EXIT_OK
+        return 0
     rows = _pool_rows(pool)
     if est is None:
         rows.append(("estimate", "none yet: the pool has no items"))
@@ -790,7 +790,7 @@ def _run_status(args: argparse.Namespace) -> int:
         print(_columns(header, table))
         if est is not None:
             print(f"(intervals two-sided at {est.confidence:.0%})")
-    return EXIT_OK
+    return 0
 
 
 def describe_gate(result: GateResult) -> list[str]:
@@ -895,7 +895,7 @@ def _run_report(args: argparse.Namespace) -> int:
     files = write_report(data, args.out, stem=pool_name(args.pool).removeprefix("pools/"))
     print(f"wrote {files.png}")
     print(f"wrote {files.html}")
-    return EXIT_OK
+    return 0
 
 
 def _run_export(args: argparse.Namespace) -> int:
@@ -906,7 +906,7 @@ def _run_export(args: argparse.Namespace) -> int:
         else:
             count = write_draws_csv(draws, args.out)
             print(f"wrote {count} draws to {args.out}", file=sys.stderr)
-    return EXIT_OK
+    return 0
 
 
 def _run_demo(args: argparse.Namespace) -> int:
@@ -970,8 +970,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit code (see the module docstring)."""
     arguments = list(sys.argv[1:] if argv is None else argv)
     if arguments and arguments[0] == "serve":
-        # The only place the client touches the service, imported lazily so that a client
-        # install does not pay for (or need) the server's dependencies.
+        # The only place the client touches the service. Imported lazily: the server's
+        # modules load scikit-learn and LightGBM, which the other commands never need, so
+        # they start without that import time.
         from leadline.service.server import main as serve
 
         return int(serve(arguments[1:]))
@@ -999,7 +1000,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         # tools. Point stdout at /dev/null so the interpreter's final flush cannot fail.
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
-        return EXIT_OK
+        return 0
     except _UsageError as error:
         message = str(error)
         print(

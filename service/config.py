@@ -12,7 +12,7 @@ import ipaddress
 import os
 import tomllib
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -58,7 +58,6 @@ class ServerConfig:
     draw_seed: int = 0
     # A write's request_id is remembered (for retries) this long, then forgotten.
     request_retention_hours: float = 168.0
-    extra: Mapping[str, Any] = field(default_factory=dict, repr=False)
 
     def __post_init__(self) -> None:
         _check(self)
@@ -162,7 +161,7 @@ def load_config(
     e.g. its token). ``overrides`` values of ``None`` are ignored. A value that breaks a
     rule is reported with where it came from (the variable, the flag or the file).
     """
-    fields = {f.name: f for f in dataclasses.fields(ServerConfig) if f.name != "extra"}
+    fields = {f.name: f for f in dataclasses.fields(ServerConfig)}
     merged: dict[str, Any] = {}
     sources: dict[str, str] = {}
     if config_file is not None:

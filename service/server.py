@@ -20,7 +20,7 @@ import time
 from concurrent import futures
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
 
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
@@ -36,6 +36,9 @@ from leadline.service.store.directory import restore_hint
 __all__ = ["RunningServer", "ServerConfig", "main", "start_server"]
 
 _LOG = logging.getLogger(__name__)
+
+# The `leadline` command's exit code for an error (0 and 1-2 belong to gate verdicts).
+_EXIT_ERROR = 3
 
 
 @dataclass
@@ -334,16 +337,21 @@ _HELP = {
 }
 
 
+class _Parser(argparse.ArgumentParser):
+    """Bad flags raise ValueError (exit 3 with one line) instead of argparse's exit 2."""
+
+    def error(self, message: str) -> NoReturn:
+        raise ValueError(f"{message} (see leadline serve --help)")
+
+
 def _parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="leadline serve",
         description="Run the leadline server. Settings come from defaults, then --config, "
         "then LEADLINE_* environment variables, then these flags.",
     )
     parser.add_argument("--config", type=Path, help="TOML config file")
     for item in dataclasses.fields(ServerConfig):
-        if item.name == "extra":
-            continue
         flag = "--" + item.name.replace("_", "-")
         if "bool" in str(item.type):
             parser.add_argument(
@@ -361,19 +369,22 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """``leadline serve ...``: run until SIGTERM / SIGINT, then shut down gracefully; 0 on a
-    clean stop, 2 on a configuration error, 3 when the data directory cannot be served
-    (in use by another server, damaged, unreadable)."""
+    """``leadline serve ...``: run until SIGTERM / SIGINT, then shut down gracefully.
+
+    Exit codes are the ``leadline`` command's (2 is an UNDECIDED gate there): 0 on a clean
+    stop, 3 on any error: bad flags or configuration, or a data directory that cannot be
+    served (in use by another server, damaged, unreadable).
+    """
     args = list(sys.argv[1:] if argv is None else argv)
     if args[:1] == ["serve"]:
         args = args[1:]
-    namespace = _parser().parse_args(args)
-    overrides = {k: v for k, v in vars(namespace).items() if k != "config"}
     try:
+        namespace = _parser().parse_args(args)
+        overrides = {k: v for k, v in vars(namespace).items() if k != "config"}
         config = load_config(config_file=namespace.config, overrides=overrides)
     except ValueError as error:
         print(f"leadline serve: {error}", file=sys.stderr)
-        return 2
+        return _EXIT_ERROR
     _setup_logging(config)
     stop = threading.Event()
 
@@ -385,12 +396,9 @@ def main(argv: list[str] | None = None) -> int:
     try:
         try:
             running = start_server(config)
-        except ValueError as error:
+        except (ValueError, DataDirectoryError) as error:
             print(f"leadline serve: {error}", file=sys.stderr)
-            return 2
-        except DataDirectoryError as error:
-            print(f"leadline serve: {error}", file=sys.stderr)
-            return 3
+            return _EXIT_ERROR
         print(f"leadline listening on {running.address}", file=sys.stderr, flush=True)
         while not stop.wait(0.5):
             pass

@@ -76,7 +76,6 @@ def _arms() -> dict[str, dict[str, Any]]:
         "cold_start_guard": {"cold_start_guard": True},
         "adaptive_floor": {"adaptive_floor": True},
         "adaptive_floor_0.1": {"adaptive_floor": True, "floor": 0.1},
-        "out_of_bag_stopping": {"surrogate_settings": replace(base, out_of_bag_stopping=True)},
     }
 
 

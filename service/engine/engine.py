@@ -184,7 +184,7 @@ class Engine:
             )
         model = store.load_latest_model(reader, settings.pool_id)
         if model is not None:
-            version, label_count, data = model
+            _, label_count, data = model
             pool.surrogate = Surrogate.from_bytes(pool.spec, data)
             pool.surrogate_label_count = label_count
         for chunk in store.load_items(

@@ -12,6 +12,7 @@ from .estimators import (
     RiskEstimate,
     anytime_path,
     empirical_bernstein_path,
+    estimate_one_sided,
     estimate_risk,
     lure_weights,
 )
@@ -67,6 +68,7 @@ __all__ = [
     "concatenate_scores",
     "draw_batch",
     "empirical_bernstein_path",
+    "estimate_one_sided",
     "estimate_risk",
     "fit_surrogate",
     "lure_weights",

@@ -63,6 +63,7 @@ __all__ = [
     "RiskEstimate",
     "anytime_path",
     "empirical_bernstein_path",
+    "estimate_one_sided",
     "estimate_risk",
     "lure_weights",
 ]
@@ -342,6 +343,30 @@ def estimate_risk(
         alpha_side=(1.0 - confidence) / 2.0,
         confidence=confidence,
         loss_bound=loss_bound,
+    )
+
+
+def estimate_one_sided(
+    terms: DrawTerms,
+    sums: PlugInSums,
+    *,
+    mode: EstimatorMode,
+    confidence: float,
+    loss_bound: float,
+    anytime: bool = True,
+) -> RiskEstimate:
+    """As :func:`estimate_risk`, but every bound is one-sided at ``confidence`` (a gate
+    compares each side with its threshold on its own). ``anytime=False`` skips the
+    confidence sequence: ``anytime_lower`` / ``anytime_upper`` are then 0 and B."""
+    confidence = check_confidence(confidence)
+    return _estimate(
+        terms,
+        sums,
+        mode=mode,
+        alpha_side=1.0 - confidence,
+        confidence=confidence,
+        loss_bound=loss_bound,
+        anytime=anytime,
     )
 
 

@@ -20,7 +20,7 @@ from leadline.v1.rules import max_risk_problem
 
 from ._checks import check_confidence, describe
 from .bounds import BoundKind
-from .estimators import EstimatorMode, RiskEstimate, _estimate
+from .estimators import EstimatorMode, RiskEstimate, estimate_one_sided
 from .terms import DrawTerms, PlugInSums
 
 __all__ = ["MAX_LABELS_HINT", "GateDecision", "Verdict", "check_gate"]
@@ -69,11 +69,10 @@ def check_gate(
     problem = max_risk_problem(max_risk, loss_bound=loss_bound)
     if problem is not None:
         raise ValueError(problem)
-    estimate = _estimate(
+    estimate = estimate_one_sided(
         terms,
         sums,
         mode=mode,
-        alpha_side=1.0 - confidence,
         confidence=confidence,
         loss_bound=loss_bound,
         anytime=bound is BoundKind.ANYTIME,

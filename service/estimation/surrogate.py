@@ -79,6 +79,9 @@ __all__ = [
 _LOG = logging.getLogger(__name__)
 _FORMAT = "leadline-surrogate"
 _FORMAT_VERSION = 1
+# Rounds without improvement on the hold-out before boosting stops (common practice, no
+# source; docs/estimation.md §2).
+_EARLY_STOPPING_PATIENCE = 5
 _REGRESSION_SPREAD_FLOOR = 0.1  # share of the squared-error fit kept as variance
 
 #: Regression pools keep the cold start until this many labels exist (our choice: the
@@ -116,12 +119,9 @@ class SurrogateSettings:
     lambda_l2: float = 5.0
     max_bin: int = 63
     max_training_rows: int = 20_000
-    #: With at least this many labels a 20% hold-out picks the number of rounds.
+    #: With at least this many labels a 20% hold-out picks the number of rounds (boosting
+    #: stops after ``_EARLY_STOPPING_PATIENCE`` rounds without improvement on it).
     early_stopping_min_labels: int = 200
-    #: Below that, each member's out-of-bag rows pick its number of rounds. Off: it lost
-    #: in the label-efficiency experiments (benchmarks/experiments/NOTES.md).
-    out_of_bag_stopping: bool = False
-    out_of_bag_patience: int = 5
     num_threads: int = 1
     # -- validation rows (used only when a fit is given ``ValidationRows``) --------------
     #: At most this many validation rows per fit (a seeded subsample beyond).
@@ -143,7 +143,6 @@ class SurrogateSettings:
             "max_bin",
             "max_training_rows",
             "num_threads",
-            "out_of_bag_patience",
             "max_validation_rows",
         ):
             value = getattr(self, name)
@@ -516,19 +515,11 @@ def _train_unlocked(
     n = x.shape[0]
     rows = np.arange(n)
     stop_rows: np.ndarray | None = None  # rows that pick the number of rounds, if any
-    patience = 5
     if n >= settings.early_stopping_min_labels:
         order = rng.permutation(n)
         cut = n // 5
         stop_rows, rows = order[:cut], order[cut:]
     sample = rng.choice(rows, size=rows.size, replace=True)
-    if stop_rows is None and settings.out_of_bag_stopping:
-        # Below the hold-out threshold the rows this member's bootstrap left out (about a
-        # third) pick its number of rounds: with tens of labels the full schedule can fit
-        # noise and predict held-out losses worse than the warm start it began from.
-        out_of_bag = np.setdiff1d(rows, sample)
-        if out_of_bag.size:
-            stop_rows, patience = out_of_bag, settings.out_of_bag_patience
     train = lgb.Dataset(
         x[sample],
         label=y[sample],
@@ -549,7 +540,7 @@ def _train_unlocked(
             reference=train,
         )
         valid_sets = [valid]
-        callbacks = [lgb.early_stopping(patience, verbose=False)]
+        callbacks = [lgb.early_stopping(_EARLY_STOPPING_PATIENCE, verbose=False)]
     return lgb.train(
         params,
         train,

@@ -438,14 +438,6 @@ class Database:
                 self._readers.append(connection)
         return connection
 
-    def backup(self, destination: Path) -> None:
-        """Consistent online copy of the database into ``destination`` (SQLite backup API)."""
-        target = sqlite3.connect(destination)
-        try:
-            self.reader().backup(target)
-        finally:
-            target.close()
-
     def close(self) -> None:
         """Commit what is queued, checkpoint the WAL into the main file, close, unlock."""
         if self._closed:

@@ -15,6 +15,7 @@ from pathlib import Path
 import matplotlib.image
 import numpy as np
 import pytest
+from sklearn.metrics import zero_one_loss
 
 from leadline.client import Client, LocalServer, Skip
 from leadline.client.export import read_draws_csv
@@ -152,11 +153,14 @@ def test_export_round_trips_the_draws_and_their_losses(
     assert len(labeled) == 200
     index = {item_id: i for i, item_id in enumerate(labeled_digits.item_ids)}
     rows = np.array([index[d.item_id] for d in labeled])
-    # Zero-one loss recomputed from the bundled labels (scikit-learn's zero_one_loss
-    # definition, per item): the exported label and loss match the truth.
-    np.testing.assert_array_equal([d.class_label for d in labeled], labeled_digits.labels[rows])
+    # The exported label is the bundled one and the loss is scikit-learn's zero_one_loss of
+    # the model's prediction, item by item.
+    truth = labeled_digits.labels[rows]
+    np.testing.assert_array_equal([d.class_label for d in labeled], truth)
     predicted = labeled_digits.probabilities[rows].argmax(axis=1)
-    expected_loss = (predicted != labeled_digits.labels[rows]).astype(float)
+    expected_loss = [
+        zero_one_loss(truth[i : i + 1], predicted[i : i + 1]) for i in range(len(labeled))
+    ]
     np.testing.assert_array_equal([d.loss for d in labeled], expected_loss)
 
 

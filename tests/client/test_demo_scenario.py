@@ -23,6 +23,10 @@ from leadline.client.demo import iid_labels_for_half_width
 def test_iid_sample_size_matches_the_textbook_values(
     risk: float, half_width: float, population: int, expected: int
 ) -> None:
+    # The remembered values, recomputed: n0 = z^2 p (1 - p) / e^2 with scipy's normal
+    # quantile, then the finite-population correction n0 / (1 + (n0 - 1) / N).
+    n0 = stats.norm.ppf(0.975) ** 2 * risk * (1 - risk) / half_width**2
+    assert int(np.ceil(n0 / (1 + (n0 - 1) / population))) == expected
     assert (
         iid_labels_for_half_width(risk, half_width, confidence=0.95, population=population)
         == expected

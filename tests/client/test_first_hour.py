@@ -309,7 +309,7 @@ def test_server_config_errors_from_the_environment_name_the_variable(tmp_path: P
         timeout=60,
         check=False,
     )
-    assert done.returncode == 2
+    assert done.returncode == 3
     assert done.stderr.startswith(
         "leadline serve: environment variable LEADLINE_SELECTION_FLOOR: selection_floor = 2.0"
     ), done.stderr
@@ -339,7 +339,7 @@ def test_a_second_server_on_a_taken_port_says_so(tmp_path: Path) -> None:
             timeout=60,
             check=False,
         )
-    assert done.returncode == 2
+    assert done.returncode == 3
     assert done.stderr.splitlines()[-1] == (
         f"leadline serve: listen = '127.0.0.1:{port}': cannot bind (address already in use). "
         "Another leadline server or another program may listen there: stop it, or give this "

@@ -20,6 +20,7 @@ from leadline.client import (
     Overloaded,
     Unavailable,
 )
+from tests.surface import public_names
 
 _PUBLIC = {
     "AccessDenied",
@@ -64,6 +65,10 @@ _CLIENT_METHODS = {
     "release",
     "submit_labels",
 }
+
+
+def test_all_is_every_public_name_in_order() -> None:
+    assert client_package.__all__ == public_names(client_package)
 
 
 def test_all_lists_exactly_the_public_names() -> None:

@@ -198,7 +198,7 @@ def test_any_small_pool_logs_exact_probabilities_and_covering_ranges(data, n, fl
 def test_own_reach_ranges_cover_every_possible_loss_and_are_narrower():
     # The betting confidence sequence needs each draw's correction inside a range known
     # before the draw ("Estimating means of bounded random variables by betting", JRSS-B
-    # 2023). With max_deviation = sqrt(worst_squared_deviation) the logged range must still
+    # 2024). With max_deviation = sqrt(worst_squared_deviation) the logged range must still
     # contain (L - g)/q for every candidate and every label it could get, computed here
     # from scikit-learn's log_loss, and be no wider than the [0, B] range.
     from sklearn.metrics import log_loss

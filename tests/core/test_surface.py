@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import leadline.service.estimation as core
+from tests.surface import public_names
 
 # Source: docs/core-api.md, the contract the service and benchmarks program against.
 _CONTRACT = {
@@ -21,7 +22,12 @@ _ADDED = {
     "PROBABILITY_SUM_TOLERANCE", "concatenate_scores",
     "worst_squared_deviation",
     "ValidationRows",  # docs/core-api.md, surrogate.py (validation items)
+    "estimate_one_sided",  # docs/core-api.md: the gate's one-sided estimate
 }  # fmt: skip
+
+
+def test_all_is_every_public_name_in_order():
+    assert core.__all__ == public_names(core)
 
 
 def test_every_contract_name_is_exported():

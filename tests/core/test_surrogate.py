@@ -186,27 +186,6 @@ def test_bad_surrogate_inputs_raise_value_error(digits):
         Surrogate.from_bytes(spec, b"\x80not json")
 
 
-def test_out_of_bag_stopping_cuts_rounds_on_noise_and_survives_a_byte_round_trip(digits):
-    # Labels shuffled away from the features (sklearn digits, permuted): nothing to learn,
-    # so each member's out-of-bag rows stop its boosting early (LightGBM's early-stopping
-    # callback keeps best_iteration); the saved text holds that iteration, so a restored
-    # surrogate scores identically.
-    features, outputs, labels = digits
-    spec = LossSpec(kind=LossKind.ZERO_ONE, num_classes=10)
-    noise = np.random.default_rng(3).permutation(labels[:120])
-    settings = SurrogateSettings(ensemble_size=3, num_rounds=60, out_of_bag_stopping=True)
-    fitted = fit_surrogate(
-        spec, features[:120], outputs[:120], noise, version=1, seed=5, settings=settings
-    )
-    rounds = [booster.best_iteration for booster in fitted._boosters]
-    assert all(0 < r < 60 for r in rounds), rounds
-    restored = Surrogate.from_bytes(spec, fitted.to_bytes())
-    np.testing.assert_array_equal(
-        fitted.score(features, outputs).expected_loss,
-        restored.score(features, outputs).expected_loss,
-    )
-
-
 # ---------------------------------------------------------------------------------------
 # validation rows
 # ---------------------------------------------------------------------------------------

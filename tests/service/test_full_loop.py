@@ -72,6 +72,9 @@ def test_full_loop_estimate_tracks_true_risk(harness_factory, digits_pool: Datas
         losses = np.array([d.loss for d in draws.draws])
         index = {item_id: i for i, item_id in enumerate(data.ids)}
         rows = np.array([index[d.item_id] for d in draws.draws])
-        # Observed losses equal scikit-learn's per-item zero-one loss.
-        expected = (data.outputs[rows].argmax(axis=1) != data.labels[rows]).astype(float)
+        # Observed losses equal scikit-learn's zero_one_loss, item by item.
+        predicted = data.outputs[rows].argmax(axis=1)
+        expected = [
+            zero_one_loss(data.labels[r : r + 1], predicted[i : i + 1]) for i, r in enumerate(rows)
+        ]
         np.testing.assert_array_equal(losses, expected)

@@ -23,6 +23,14 @@ def _version(stubs: Stubs) -> int:
     return stubs.call(stubs.pools.GetPool, pb.GetPoolRequest(name=_POOL)).surrogate_version
 
 
+def _due(harness: Harness, *, after_seconds: float) -> bool:
+    """Would the refit worker start a refit of the pool ``after_seconds`` from now, with no
+    further call? (Asks the engine's rule directly instead of sleeping and watching.)"""
+    assert harness.server is not None
+    engine = harness.server.engine
+    return engine.refit_due(engine.pool("fits"), time.monotonic() + after_seconds)
+
+
 def _wait_version(stubs: Stubs, wanted: int, seconds: float) -> float:
     started = time.monotonic()
     while _version(stubs) < wanted:
@@ -36,13 +44,13 @@ def test_refit_after_interval_with_few_new_labels(harness_factory, cancer_pool: 
     with harness.stubs() as stubs:
         stubs.call(stubs.pools.CreatePool, classification_pool("fits", cancer_pool))
         stubs.call(stubs.ingest.IngestItems, item_batch("fits", cancer_pool, range(200)))
-        time.sleep(1.2)
         # No labels yet: time alone never refits.
+        assert not _due(harness, after_seconds=60)
         assert _version(stubs) == 0
         label_round(stubs, "fits", cancer_pool, 6)
         _wait_version(stubs, 1, 30)
-        # Nothing new: the version stays.
-        time.sleep(1.5)
+        # Nothing new: the version stays, however long the pool waits.
+        assert not _due(harness, after_seconds=60)
         assert _version(stubs) == 1
         label_round(stubs, "fits", cancer_pool, 6)
         _wait_version(stubs, 2, 30)
@@ -66,7 +74,8 @@ def test_pool_setting_overrides_server_refit_count(harness_factory, cancer_pool:
         )
         stubs.call(stubs.ingest.IngestItems, item_batch("fits", cancer_pool, range(200)))
         label_round(stubs, "fits", cancer_pool, 4)
-        time.sleep(1.0)
+        # Four new labels: below the pool's five, and the server's 3600 s are far away.
+        assert not _due(harness, after_seconds=60)
         assert _version(stubs) == 0
         label_round(stubs, "fits", cancer_pool, 1)
         _wait_version(stubs, 1, 30)
