@@ -99,7 +99,7 @@ def test_serve_logs_real_port_and_exits_zero_on_sigterm(tmp_path: Path) -> None:
 
 def test_serve_refuses_to_start_without_tokens(tmp_path: Path, capsys) -> None:
     code = main(["--data-dir", str(tmp_path / "data"), "--listen", "127.0.0.1:0"])
-    assert code == 2
+    assert code == 3
     assert "--tokens" in capsys.readouterr().err
 
 
