@@ -39,10 +39,9 @@ class SmallFilesystem:
                         raise
                     break
         # Fill the last partial chunk too.
-        with path.open("ab", buffering=0) as handle:
-            with contextlib.suppress(OSError):
-                while handle.write(b"\0" * 512):
-                    written += 512
+        with path.open("ab", buffering=0) as handle, contextlib.suppress(OSError):
+            while handle.write(b"\0" * 512):
+                written += 512
         return written
 
     def free(self, name: str = "filler") -> None:
@@ -71,7 +70,8 @@ def small_filesystem(mount_point: Path, *, size_mib: int) -> Iterator[SmallFiles
         text=True,
     )
     try:
-        assert holder.stdout is not None and holder.stderr is not None
+        assert holder.stdout is not None
+        assert holder.stderr is not None
         if holder.stdout.readline().strip() != "mounted":
             holder.wait(timeout=30)
             reason = holder.stderr.read().strip() or f"exit {holder.returncode}"

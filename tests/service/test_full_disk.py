@@ -41,13 +41,16 @@ def _reloads_logged(server: ServerProcess) -> int:
 
 def _unavailable(call: Callable[[], Any]) -> bool:
     """True if the call was refused with UNAVAILABLE ("not saved"); False if it went through."""
+    refusal: grpc.RpcError | None = None
     try:
         call()
     except grpc.RpcError as error:
-        assert error.code() == grpc.StatusCode.UNAVAILABLE, error.details()
-        assert "not saved" in error.details()
-        return True
-    return False
+        refusal = error
+    if refusal is None:
+        return False
+    assert refusal.code() == grpc.StatusCode.UNAVAILABLE, refusal.details()
+    assert "not saved" in refusal.details()
+    return True
 
 
 def _snapshot(stubs: Stubs) -> tuple[bytes, list[bytes], bytes]:

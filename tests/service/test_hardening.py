@@ -58,7 +58,8 @@ def test_a_token_file_other_users_can_read_is_refused_unless_allowed(
     assert main(args) == 2
     error = capsys.readouterr().err
     assert f"tokens file {str(tokens)!r}: mode 0644 lets every user" in error
-    assert f"chmod 600 {tokens}" in error and "--allow-readable-tokens" in error
+    assert f"chmod 600 {tokens}" in error
+    assert "--allow-readable-tokens" in error
     config = ServerConfig(
         data_dir=tmp_path / "d", listen="127.0.0.1:0", tokens=tokens, allow_readable_tokens=True
     )
@@ -152,7 +153,8 @@ def test_a_key_that_does_not_match_the_certificate_is_reported_as_such(
     assert main(base + tls) == 2
     error = capsys.readouterr().err
     # Before: "listen = '127.0.0.1:0': cannot bind (...)".
-    assert "the key does not belong to the certificate" in error and "cannot bind" not in error
+    assert "the key does not belong to the certificate" in error
+    assert "cannot bind" not in error
     tls[-1] = str(tmp_path / "not-pem.key")
     assert main(base + tls) == 2
     assert "not a usable PEM certificate chain and private key" in capsys.readouterr().err
