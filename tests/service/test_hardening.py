@@ -55,7 +55,7 @@ def test_a_token_file_other_users_can_read_is_refused_unless_allowed(
     tokens = write_tokens(tmp_path / "tokens.toml")
     tokens.chmod(0o644)
     args = ["--data-dir", str(tmp_path / "d"), "--listen", "127.0.0.1:0", "--tokens", str(tokens)]
-    assert main(args) == 2
+    assert main(args) == 3
     error = capsys.readouterr().err
     assert f"tokens file {str(tokens)!r}: mode 0644 lets every user" in error
     assert f"chmod 600 {tokens}" in error
@@ -150,13 +150,13 @@ def test_a_key_that_does_not_match_the_certificate_is_reported_as_such(
     tokens = write_tokens(tmp_path / "tokens.toml")
     base = ["--data-dir", str(tmp_path / "d"), "--listen", "127.0.0.1:0", "--tokens", str(tokens)]
     tls = ["--tls-cert", str(tmp_path / "one.pem"), "--tls-key", str(tmp_path / "two.key")]
-    assert main(base + tls) == 2
+    assert main(base + tls) == 3
     error = capsys.readouterr().err
     # Before: "listen = '127.0.0.1:0': cannot bind (...)".
     assert "the key does not belong to the certificate" in error
     assert "cannot bind" not in error
     tls[-1] = str(tmp_path / "not-pem.key")
-    assert main(base + tls) == 2
+    assert main(base + tls) == 3
     assert "not a usable PEM certificate chain and private key" in capsys.readouterr().err
     tls[-1] = str(tmp_path / "one.key")
     config = ServerConfig(
