@@ -53,6 +53,7 @@ if str(_ROOT) not in sys.path:  # run as a script: make `benchmarks` importable
 from benchmarks.markdown import replace_section  # noqa: E402
 from leadline.client import Client, LocalServer  # noqa: E402
 from leadline.service.estimation import (  # noqa: E402
+    DEFAULT_FLOOR,
     DRAW_LABELED,
     DRAW_PENDING,
     DrawTerms,
@@ -95,7 +96,7 @@ POOL_ID = "parcel-sorting"
 LABELER = "bench-vendor"
 SEGMENT_NAMES = ("hall-a", "hall-b", "hall-c", "hall-d")
 # The server's default defensive floor (docs/operations.md); the bare draws use the same.
-SELECTION_FLOOR = 0.3
+SELECTION_FLOOR = DEFAULT_FLOOR  # the server default
 CONFIDENCE = 0.95
 _METRICS = re.compile(r"metrics on (http://\S+:\d+/metrics)")
 _ARRIVAL_STEP_MS = 50  # one parcel every 50 ms

@@ -16,6 +16,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from leadline.service.estimation import DEFAULT_FLOOR
+
 __all__ = ["ServerConfig", "load_config", "is_loopback_host", "split_host_port"]
 
 _ENV_PREFIX = "LEADLINE_"
@@ -44,7 +46,7 @@ class ServerConfig:
     refit_interval_seconds: float = 300.0
     default_lease_seconds: int = 3600
     # Defensive floor epsilon of the selection when the pool does not set one.
-    selection_floor: float = 0.3
+    selection_floor: float = DEFAULT_FLOOR
     default_confidence: float = 0.95
     max_batch_items: int = 10_000
     max_message_bytes: int = 64 * 1024 * 1024

@@ -320,20 +320,20 @@ _HELP = {
     "tls_client_ca": "PEM CA bundle: require client certificates (mutual TLS)",
     "metrics_listen": "loopback HOST:PORT for Prometheus metrics at /metrics",
     "enable_reflection": "turn on gRPC server reflection",
-    "refit_every_labels": "refit the surrogate after this many new labels (default 10)",
-    "refit_interval_seconds": "... or after this many seconds with new labels (default 300)",
-    "default_lease_seconds": "lease when neither request nor pool sets one (default 3600)",
-    "selection_floor": "defensive floor of the selection when the pool sets none (0.3)",
-    "default_confidence": "confidence when neither request nor pool sets one (0.95)",
-    "max_batch_items": "items per IngestItems call (default 10000)",
-    "max_message_bytes": "gRPC message size limit (default 64 MiB)",
-    "max_workers": "gRPC worker threads (default 16)",
-    "shutdown_grace_seconds": "time in-flight calls get after SIGTERM (default 10)",
+    "refit_every_labels": "refit the surrogate after this many new labels",
+    "refit_interval_seconds": "... or after this many seconds with new labels",
+    "default_lease_seconds": "lease when neither request nor pool sets one",
+    "selection_floor": "defensive floor of the selection when the pool sets none",
+    "default_confidence": "confidence when neither request nor pool sets one",
+    "max_batch_items": "items per IngestItems call",
+    "max_message_bytes": "gRPC message size limit",
+    "max_workers": "gRPC worker threads",
+    "shutdown_grace_seconds": "time in-flight calls get after SIGTERM",
     "log_level": "DEBUG, INFO, WARNING or ERROR",
     "log_format": "text or json",
     "surrogate_threads": "LightGBM threads of a refit (1 or 2)",
     "draw_seed": "0 = random pool seeds; else seeds derive from it (reproducible draws)",
-    "request_retention_hours": "how long a write's request_id is remembered (default 168)",
+    "request_retention_hours": "how long a write's request_id is remembered",
 }
 
 
@@ -358,12 +358,14 @@ def _parser() -> argparse.ArgumentParser:
                 flag, dest=item.name, action="store_true", default=None, help=_HELP[item.name]
             )
         else:
+            # The default shown is the one in force: ServerConfig's own (one owner).
+            shown = item.default not in (dataclasses.MISSING, None, "", 0)
             parser.add_argument(
                 flag,
                 dest=item.name,
                 default=None,
                 metavar=item.name.split("_")[-1].upper(),
-                help=_HELP[item.name],
+                help=_HELP[item.name] + (f" (default {item.default})" if shown else ""),
             )
     return parser
 

@@ -82,7 +82,9 @@ class PoolServicer(pb_grpc.PoolServiceServicer):
 
     @rpc_method
     def CreatePool(self, request: pb.CreatePoolRequest, context: grpc.ServicerContext) -> pb.Pool:
-        settings = validation.pool_settings(request.pool_id, request.pool)
+        settings = validation.pool_settings(
+            request.pool_id, request.pool, defaults=self._engine.config
+        )
         request_id = validation.check_request_id(request.request_id)
         call = _write_call(self._auth, context, request, request_id)
         return convert.pool_message(self._engine.create_pool(settings, call=call))
@@ -133,7 +135,7 @@ class IngestServicer(pb_grpc.IngestServiceServicer):
     def IngestItems(self, request: pb.ItemBatch, context: grpc.ServicerContext) -> pb.IngestSummary:
         pool_id = validation.parse_pool_name(request.pool)
         request_id = validation.check_request_id(request.request_id)
-        settings = self._engine.pool(pool_id).settings
+        settings = self._engine.settings(pool_id)
         batch = validation.item_batch(request, settings, max_items=self._max_items)
         call = _write_call(self._auth, context, request, request_id)
         result = self._engine.ingest(pool_id, batch, call=call)
@@ -152,7 +154,7 @@ class IngestServicer(pb_grpc.IngestServiceServicer):
     ) -> pb.IngestSummary:
         pool_id = validation.parse_pool_name(request.pool)
         request_id = validation.check_request_id(request.request_id)
-        settings = self._engine.pool(pool_id).settings
+        settings = self._engine.settings(pool_id)
         batch = validation.validation_batch(request, settings, max_items=self._max_items)
         call = _write_call(self._auth, context, request, request_id)
         result = self._engine.add_validation(pool_id, batch, call=call)
@@ -259,7 +261,7 @@ class EstimateServicer(pb_grpc.EstimateServiceServicer):
         bound = validation.check_bound(request.bound)
         scope = validation.check_scope(request.segment, request.start_time_ms, request.end_time_ms)
         max_risk = validation.check_max_risk(
-            request.max_risk, loss_bound=self._engine.pool(pool_id).loss_bound
+            request.max_risk, loss_bound=self._engine.settings(pool_id).loss_bound
         )
         outcome = self._engine.check_gate(
             pool_id, scope, max_risk=max_risk, confidence=confidence, bound=bound, mode=mode
@@ -283,7 +285,7 @@ class EstimateServicer(pb_grpc.EstimateServiceServicer):
                     field="page_token",
                 )
             start = int(text)
-        classification = self._engine.pool(pool_id).settings.is_classification
+        classification = self._engine.settings(pool_id).is_classification
         infos, next_start = self._engine.list_draws(pool_id, start=start, limit=size)
         return pb.ListDrawsResponse(
             draws=[convert.draw_message(i, classification=classification) for i in infos],

@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 
 from leadline.service.api.vocabulary import BOUNDS, LOSSES, MODES, TASKS
+from leadline.service.config import ServerConfig
 from leadline.service.engine import ItemBatch, LabelInput, PoolSettings, Scope, ValidationItems
 from leadline.service.errors import InvalidArgument, ResourceExhausted
 from leadline.service.estimation import BoundKind, EstimatorMode
@@ -95,8 +96,9 @@ def check_labeler(value: str) -> str:
     return _text("labeler", value, max_length=MAX_LABELER)
 
 
-def pool_settings(pool_id: str, pool: pb.Pool) -> PoolSettings:
-    """Validate CreatePool's fields (output-only fields are ignored)."""
+def pool_settings(pool_id: str, pool: pb.Pool, *, defaults: ServerConfig) -> PoolSettings:
+    """Validate CreatePool's fields (output-only fields are ignored); messages name the
+    server's ``defaults`` that a 0 stands for."""
     if not POOL_ID_PATTERN.fullmatch(pool_id):
         raise _bad("pool_id", f"pool_id = {pool_id!r}: must match [a-z][a-z0-9-]{{0,62}}.")
     if pool.task not in TASKS:
@@ -181,25 +183,25 @@ def pool_settings(pool_id: str, pool: pb.Pool) -> PoolSettings:
         raise _bad(
             "pool.selection_floor",
             f"pool.selection_floor = {pool.selection_floor}: must be in (0, 1], or 0 for the "
-            "server default.",
+            f"server default ({defaults.selection_floor:g}).",
         )
     if not 0 <= pool.default_lease_seconds <= MAX_LEASE_SECONDS:
         raise _bad(
             "pool.default_lease_seconds",
             f"pool.default_lease_seconds = {pool.default_lease_seconds}: must be in "
-            f"0..{MAX_LEASE_SECONDS} (0 = server default).",
+            f"0..{MAX_LEASE_SECONDS} (0 = the server default, {defaults.default_lease_seconds}).",
         )
     if not (pool.default_confidence == 0 or 0 < pool.default_confidence < 1):
         raise _bad(
             "pool.default_confidence",
             f"pool.default_confidence = {pool.default_confidence}: must be in (0, 1), or 0 for "
-            "0.95.",
+            f"the server default ({defaults.default_confidence:g}).",
         )
     if pool.refit_every_labels < 0:
         raise _bad(
             "pool.refit_every_labels",
             f"pool.refit_every_labels = {pool.refit_every_labels}: must be >= 0 "
-            "(0 = server default).",
+            f"(0 = the server default, {defaults.refit_every_labels}).",
         )
     if len(pool.description) > MAX_DESCRIPTION:
         raise _bad(

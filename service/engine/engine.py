@@ -69,10 +69,12 @@ from leadline.service.estimation import (
     concatenate_scores,
     estimate_risk,
     fit_surrogate,
+    worst_squared_deviation_of,
 )
 from leadline.service.store import Database, EarlierWriteFailed
 from leadline.service.store import records as store
 from leadline.service.store.records import RememberedRequest, Write
+from leadline.v1.rules import gate_confidence_problem
 
 __all__ = ["Engine", "WriteCall"]
 
@@ -277,6 +279,15 @@ class Engine:
     # ------------------------------------------------------------------------------------
     # pools
     # ------------------------------------------------------------------------------------
+    @property
+    def config(self) -> ServerConfig:
+        """The server's settings (frozen): the defaults in force where a pool sets none."""
+        return self._config
+
+    def settings(self, pool_id: str) -> PoolSettings:
+        """What CreatePool fixed for the pool (frozen); NotFound if there is none."""
+        return self.pool(pool_id).settings
+
     def pool(self, pool_id: str) -> PoolState:
         with self._pools_lock:
             pool = self._pools.get(pool_id)
@@ -668,8 +679,9 @@ class Engine:
         rejected (listed per item)."""
         pool = self.pool(pool_id)
         # Score outside the lock (the expensive part); apply_batch rescores if a refit
-        # swapped the surrogate in between.
+        # swapped the surrogate in between, and checks the shape again.
         with pool.lock:
+            ingest.check_shape(pool, batch.features, batch.outputs)
             surrogate = pool.surrogate
         current = surrogate.score(batch.features, batch.outputs)
         cold = pool.cold.score(batch.features, batch.outputs)
@@ -860,13 +872,12 @@ class Engine:
         with pool.lock:
             chosen_mode = self._mode(pool, mode)
             level = self._confidence(pool, confidence)
-            if not level > 0.5:
-                # Gates use one-sided bounds on each side: below 0.5 they would cross.
-                raise InvalidArgument(
-                    f"confidence = {level}: a gate needs a confidence in (0.5, 1) (the pool "
-                    "default applies when the request leaves it 0).",
-                    field="confidence",
-                )
+        # Checked here, not at the API boundary: the value in force may be the pool's
+        # default (a pool may default to any confidence in (0, 1) for its estimates).
+        problem = gate_confidence_problem(level)
+        if problem is not None:
+            source = "" if confidence else " (the pool's default, as the request left it 0)"
+            raise InvalidArgument(problem + source, field="confidence")
 
         def answer(inputs: ScopeInputs) -> GateOutcome:
             decision = check_gate(
@@ -1042,7 +1053,9 @@ class Engine:
                 pool.expected_loss.replace(rescored.expected_loss)
                 pool.second_moment.replace(rescored.residual_second_moment)
                 pool.spread.replace(rescored.spread)
-                pool.worst_deviation.replace(ingest.worst_deviation_of(rescored, pool.loss_bound))
+                pool.worst_deviation.replace(
+                    worst_squared_deviation_of(rescored, loss_bound=pool.loss_bound)
+                )
                 pool.surrogate = surrogate
                 pool.surrogate_label_count = int(labels.shape[0])
                 pool.last_fit_time = time.monotonic()

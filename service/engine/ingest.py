@@ -19,12 +19,14 @@ from leadline.service.engine.results import (
     ItemProblem,
     ValidationItems,
 )
-from leadline.service.estimation import Surrogate, SurrogateScores
+from leadline.service.errors import FailedPrecondition
+from leadline.service.estimation import Surrogate, SurrogateScores, worst_squared_deviation_of
 from leadline.service.store import records as store
 from leadline.service.store.records import Write
 
 __all__ = [
     "MAX_ITEM_ERRORS",
+    "check_shape",
     "append_items",
     "append_validation",
     "apply_batch",
@@ -41,13 +43,20 @@ def now_ms() -> int:
     return int(time.time() * 1000)
 
 
-def worst_deviation_of(scores: SurrogateScores, loss_bound: float) -> np.ndarray:
-    """The scores' worst-case squared deviation, or the loss-bound form max(g, B - g)^2
-    when the surrogate did not compute it (the selection hedge needs one or the other)."""
-    if scores.worst_squared_deviation is not None:
-        return scores.worst_squared_deviation
-    g = np.clip(scores.expected_loss, 0.0, loss_bound)
-    return np.asarray(np.maximum(g, loss_bound - g) ** 2)
+def check_shape(pool: PoolState, features: np.ndarray, outputs: np.ndarray) -> None:
+    """FailedPrecondition unless the rows fit the pool's columns (call with ``pool.lock``
+    held). The API layer validated the batch against the pool's settings before this
+    call; a pool deleted and created again meanwhile may have other ones, and rows of
+    another shape would put its item and feature arrays out of step."""
+    settings = pool.settings
+    width = (settings.num_classes,) if settings.is_classification else ()
+    if features.shape[1:] != (settings.feature_dim,) or outputs.shape[1:] != width:
+        raise FailedPrecondition(
+            f"pool = 'pools/{pool.pool_id}': was created again while the request was checked "
+            f"(now feature_dim = {settings.feature_dim}, {settings.task}); the batch was "
+            "checked against the old settings. Send it again.",
+            field="pool",
+        )
 
 
 def append_items(
@@ -76,7 +85,7 @@ def append_items(
     pool.expected_loss.extend(current.expected_loss)
     pool.second_moment.extend(current.residual_second_moment)
     pool.spread.extend(current.spread)
-    pool.worst_deviation.extend(worst_deviation_of(current, pool.loss_bound))
+    pool.worst_deviation.extend(worst_squared_deviation_of(current, loss_bound=pool.loss_bound))
     pool.status.extend(np.full(len(item_ids), AVAILABLE, dtype=np.int8))
     pool.item_draw.extend(np.full(len(item_ids), -1, dtype=np.int64))
 
@@ -94,6 +103,7 @@ def apply_batch(
     ``current`` are the batch's scores under ``scored_with``; rescored here if a refit
     swapped the surrogate since. Returns the result and the durable writes to queue.
     """
+    check_shape(pool, batch.features, batch.outputs)
     known = [pool.index.get(item_id) for item_id in batch.item_ids]
     existing = np.array([-1 if k is None else k for k in known], dtype=np.int64)
     is_new = existing < 0
@@ -142,7 +152,9 @@ def apply_batch(
                 expected_loss=scores.expected_loss[new_positions],
                 residual_second_moment=scores.residual_second_moment[new_positions],
                 spread=scores.spread[new_positions],
-                worst_squared_deviation=worst_deviation_of(scores, pool.loss_bound)[new_positions],
+                worst_squared_deviation=worst_squared_deviation_of(
+                    scores, loss_bound=pool.loss_bound
+                )[new_positions],
             )
 
         append_items(
@@ -242,6 +254,7 @@ def apply_validation(pool: PoolState, batch: ValidationItems) -> tuple[IngestRes
     ``item_count`` is the pool's validation count after the batch. Nothing here touches
     the pool's items, scores or estimates, so the query caches stay valid.
     """
+    check_shape(pool, batch.features, batch.outputs)
     known = [pool.validation_index.get(item_id) for item_id in batch.item_ids]
     existing = np.array([-1 if k is None else k for k in known], dtype=np.int64)
     problems: list[ItemProblem] = []

@@ -85,6 +85,11 @@ class PoolSettings:
     def mode(self) -> EstimatorMode:
         return EstimatorMode(self.default_mode)
 
+    @property
+    def loss_bound(self) -> float:
+        """B, the largest loss one item can have (what a gate's max_risk must stay below)."""
+        return float(self.loss_spec().bound)
+
     def to_json(self) -> dict[str, Any]:
         data = asdict(self)
         data["cost_matrix"] = list(self.cost_matrix)

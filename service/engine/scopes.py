@@ -25,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from leadline.service.engine.pool import ITEM_LABELED, LABELED, SKIPPED, PoolState
-from leadline.service.errors import FailedPrecondition, InvalidArgument, NotFound
+from leadline.service.errors import FailedPrecondition, NotFound
 from leadline.service.estimation import (
     DRAW_LABELED,
     DRAW_PENDING,
@@ -39,7 +39,8 @@ __all__ = ["Scope", "ScopeInputs", "build_scope_inputs"]
 
 @dataclass(frozen=True)
 class Scope:
-    """Which items an estimate is about; empty / 0 fields mean "no restriction"."""
+    """Which items an estimate is about; empty / 0 fields mean "no restriction". A window
+    is [start_time_ms, end_time_ms) in event time (start < end when both are set)."""
 
     segment: str = ""
     start_time_ms: int = 0
@@ -76,7 +77,8 @@ def _suffix_at(values: np.ndarray, marks: np.ndarray) -> np.ndarray:
 def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
     """The core's inputs for ``scope``; call with ``pool.lock`` held.
 
-    Raises NotFound for an unknown segment, InvalidArgument for an empty window, and
+    ``scope`` comes checked from the API layer (``validation.check_scope``: a window is
+    [start, end) with start < end). Raises NotFound for an unknown segment and
     FailedPrecondition when the scope holds no items.
     """
     n = pool.item_count
@@ -86,12 +88,6 @@ def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
     marks = draws.arrival_mark.view
     g0 = pool.g0.view
 
-    if scope.start_time_ms and scope.end_time_ms and scope.start_time_ms >= scope.end_time_ms:
-        raise InvalidArgument(
-            f"start_time_ms = {scope.start_time_ms}, end_time_ms = {scope.end_time_ms}: "
-            "the window [start, end) must not be empty (start < end).",
-            field="start_time_ms",
-        )
     mask: np.ndarray | None = None
     code = -1
     if scope.segment:

@@ -35,6 +35,7 @@ from .surrogate import (
     concatenate_scores,
     fit_surrogate,
     worst_squared_deviation,
+    worst_squared_deviation_of,
 )
 from .terms import DRAW_LABELED, DRAW_PENDING, DRAW_SKIPPED, DrawTerms, PlugInSums
 
@@ -77,4 +78,5 @@ __all__ = [
     "selection_probabilities",
     "usefulness",
     "worst_squared_deviation",
+    "worst_squared_deviation_of",
 ]

@@ -46,6 +46,7 @@ import numpy as np
 
 from ._checks import check_confidence, check_finite_array, describe
 from .bounds import betting_lower_bound, betting_lower_path, empirical_bernstein_lower_path
+from .losses import loss_reach
 from .normal import normal_quantile, student_t_quantile
 from .terms import (
     DRAW_PENDING,
@@ -302,7 +303,7 @@ def _design(ts: TermSums, scope_size: int, bound: float) -> _Design:
     unresolved = ts.in_scope & ((ts.status == DRAW_PENDING) | (ts.status == DRAW_SKIPPED))
     t = np.arange(m)
     coefficient = (1.0 / ts.probability + (m - 1 - t)) / (n * m)
-    worst = np.maximum(ts.expected_loss, bound - ts.expected_loss)
+    worst = loss_reach(ts.expected_loss, bound)
     allowance = float(np.sum(np.where(unresolved, coefficient * worst, 0.0)))
     return _Design(
         risk=float(a.mean()),

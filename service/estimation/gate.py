@@ -16,9 +16,9 @@ import enum
 import math
 from dataclasses import dataclass
 
-from leadline.v1.rules import max_risk_problem
+from leadline.v1.rules import gate_confidence_problem, max_risk_problem
 
-from ._checks import check_confidence, describe
+from ._checks import describe
 from .bounds import BoundKind
 from .estimators import EstimatorMode, RiskEstimate, estimate_one_sided
 from .terms import DrawTerms, PlugInSums
@@ -57,12 +57,10 @@ def check_gate(
     loss_bound: float,
 ) -> GateDecision:
     """Decide the gate; the estimate's bounds are one-sided at ``confidence`` each."""
-    confidence = check_confidence(confidence)
-    if confidence <= 0.5:
-        raise ValueError(
-            f"confidence = {describe(confidence)}, must be in (0.5, 1) for a gate (its bounds "
-            "are one-sided at this confidence)."
-        )
+    # One rule for the server and this core: a gate's confidence lies in (0.5, 1).
+    problem = gate_confidence_problem(confidence)
+    if problem is not None:
+        raise ValueError(problem)
     if not isinstance(bound, BoundKind):
         raise ValueError(f"bound = {describe(bound)}, must be a BoundKind member.")
     # One rule for the server, this core and the client: max_risk in (0, loss_bound).

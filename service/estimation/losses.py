@@ -67,6 +67,13 @@ _CLASSIFICATION = {
 }
 
 
+def loss_reach(expected_loss: np.ndarray, loss_bound: float) -> np.ndarray:
+    """max(g, B - g): the farthest a loss in [0, B] can lie from its prediction g (g is
+    clipped into [0, B] first). The one place this bound is written."""
+    g = np.clip(np.asarray(expected_loss, dtype=np.float64), 0.0, loss_bound)
+    return np.maximum(g, loss_bound - g)
+
+
 @dataclass(frozen=True, kw_only=True, eq=False)
 class LossSpec:
     """A validated loss definition.

@@ -51,6 +51,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._checks import check_finite_array, check_fraction, describe
+from .losses import loss_reach
 from .surrogate import SurrogateScores
 
 __all__ = [
@@ -116,8 +117,7 @@ def usefulness(scores: SurrogateScores, *, loss_bound: float | None = None) -> n
             )
         worst = np.clip(worst, 0.0, bound**2)
     else:
-        g = np.clip(g, 0.0, bound)
-        worst = np.maximum(g, bound - g) ** 2
+        worst = loss_reach(g, bound) ** 2
     return np.asarray(np.sqrt(second + WORST_CASE_WEIGHT * worst))
 
 

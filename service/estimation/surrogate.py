@@ -55,7 +55,7 @@ import lightgbm as lgb
 import numpy as np
 
 from ._checks import check_finite_array, describe
-from .losses import CROSS_ENTROPY_CLIP, LossKind, LossSpec
+from .losses import CROSS_ENTROPY_CLIP, LossKind, LossSpec, loss_reach
 
 # LightGBM's native code is called one call at a time in this process. A server scores
 # ingest batches on request threads while a background refit trains: a full test run once
@@ -73,6 +73,7 @@ __all__ = [
     "cold_start_surrogate",
     "concatenate_scores",
     "worst_squared_deviation",
+    "worst_squared_deviation_of",
     "fit_surrogate",
 ]
 
@@ -387,11 +388,19 @@ def worst_squared_deviation(
     Regression: the loss can be anywhere in [0, B], so max(g, B - g)^2. ``outputs`` must
     be validated by ``spec.check_outputs``.
     """
-    g = np.clip(np.asarray(expected, dtype=np.float64), 0.0, spec.bound)
     if spec.is_classification:
+        g = np.clip(np.asarray(expected, dtype=np.float64), 0.0, spec.bound)
         table = spec.loss_table(outputs)
         return np.asarray(np.max((table - g[:, None]) ** 2, axis=1))
-    return np.maximum(g, spec.bound - g) ** 2
+    return loss_reach(expected, spec.bound) ** 2
+
+
+def worst_squared_deviation_of(scores: SurrogateScores, *, loss_bound: float) -> np.ndarray:
+    """The scores' ``worst_squared_deviation``, or when they carry none the form any loss
+    in [0, B] allows, max(g, B - g)^2 (the selection hedge needs one or the other)."""
+    if scores.worst_squared_deviation is not None:
+        return scores.worst_squared_deviation
+    return loss_reach(scores.expected_loss, loss_bound) ** 2
 
 
 def _design(

@@ -327,7 +327,10 @@ def test_confidence_outside_the_open_unit_interval_is_rejected(confidence):
             confidence=confidence,
             loss_bound=1.0,
         )
-    with pytest.raises(ValueError, match=r"confidence = .*, must be in \(0, 1\)"):
+    # A gate's rule is narrower (leadline.v1.rules.gate_confidence_problem).
+    with pytest.raises(
+        ValueError, match=r"confidence = .*: a gate needs a confidence in \(0.5, 1\)"
+    ):
         check_gate(
             _one_draw(),
             PlugInSums(20, 1.0, 2.0, 1.0),
@@ -356,7 +359,9 @@ def test_threshold_outside_the_loss_range_is_refused(max_risk, loss_bound):
 
 def test_other_bad_arguments_are_rejected():
     sums = PlugInSums(20, 1.0, 2.0, 1.0)
-    with pytest.raises(ValueError, match=r"confidence = 0.5, must be in \(0.5, 1\) for a gate"):
+    with pytest.raises(
+        ValueError, match=r"confidence = 0.5: a gate needs a confidence in \(0.5, 1\)"
+    ):
         check_gate(_one_draw(), sums, max_risk=0.1, confidence=0.5, loss_bound=1.0)
     with pytest.raises(ValueError, match=r"max_risk = nan: must be in \(0, 1\)"):
         check_gate(_one_draw(), sums, max_risk=math.nan, confidence=0.9, loss_bound=1.0)

@@ -20,7 +20,7 @@ _ADDED = {
     "DEFAULT_FLOOR", "selection_probabilities", "normal_quantile", "normal_cdf",
     "empirical_bernstein_path", "BALANCED_MIN_LABELS", "BET_TRUNCATION", "MAX_LABELS_HINT",
     "PROBABILITY_SUM_TOLERANCE", "concatenate_scores",
-    "worst_squared_deviation",
+    "worst_squared_deviation", "worst_squared_deviation_of",
     "ValidationRows",  # docs/core-api.md, surrogate.py (validation items)
     "estimate_one_sided",  # docs/core-api.md: the gate's one-sided estimate
 }  # fmt: skip

@@ -62,3 +62,27 @@ def test_estimate_trace_has_increasing_label_counts(harness: Harness, cancer_poo
     # Bounds lie in [0, B]; the point estimate itself may leave it with very few labels
     # (a difference estimator is not clipped).
     assert all(0 <= p.lower <= p.upper <= p.loss_bound == 1 for p in trace.points)
+
+
+def test_a_batch_checked_against_a_pool_that_was_created_again_is_refused(
+    harness: Harness, cancer_pool: Dataset
+) -> None:
+    # The servicer checks a batch against the pool's settings, then the engine applies it:
+    # a pool deleted and created again in between (another feature_dim) must refuse the
+    # batch under its lock instead of taking rows of the wrong width.
+    from leadline.service.api import validation
+    from leadline.service.errors import FailedPrecondition
+
+    assert harness.server is not None
+    engine = harness.server.engine
+    with harness.stubs() as stubs:
+        stubs.call(stubs.pools.CreatePool, classification_pool("again", cancer_pool))
+        request = item_batch("again", cancer_pool, range(20))
+        checked = validation.item_batch(request, engine.settings("again"), max_items=100)
+        stubs.call(stubs.pools.DeletePool, pb.DeletePoolRequest(name="pools/again"))
+        narrower = classification_pool("again", cancer_pool)
+        narrower.pool.feature_dim = cancer_pool.features.shape[1] - 1
+        stubs.call(stubs.pools.CreatePool, narrower)
+    with pytest.raises(FailedPrecondition, match="was created again while the request"):
+        engine.ingest("again", checked)
+    assert engine.get_pool("again").item_count == 0

@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 import numbers
 
-__all__ = ["max_risk_problem"]
+__all__ = ["gate_confidence_problem", "max_risk_problem"]
 
 
 def _shown(value: float) -> str:
@@ -49,5 +49,23 @@ def max_risk_problem(
             f"{name} = {_shown(value)}: must be in (0, {_shown(bound)}). The risk is a mean "
             f"loss and no item's loss in this pool exceeds {_shown(bound)}, so a threshold "
             f"at or above {_shown(bound)} would pass every model, and one at or below 0 none."
+        )
+    return None
+
+
+def gate_confidence_problem(confidence: object, *, name: str = "confidence") -> str | None:
+    """Why ``confidence`` cannot be a gate's confidence, or None when it can.
+
+    A gate compares each side of the estimate with ``max_risk`` on its own, so each bound
+    is one-sided at the confidence: below 0.5 the lower bound would lie above the upper
+    one. The confidence must lie in (0.5, 1).
+    """
+    if isinstance(confidence, bool) or not isinstance(confidence, numbers.Real):
+        return f"{name} = {confidence!r}: must be a number."
+    value = float(confidence)
+    if not (math.isfinite(value) and 0.5 < value < 1):
+        return (
+            f"{name} = {_shown(value)}: a gate needs a confidence in (0.5, 1) (each of its "
+            "bounds is one-sided at it)."
         )
     return None
