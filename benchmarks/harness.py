@@ -44,9 +44,11 @@ from leadline.service.estimation import (
     EstimatorMode,
     LossSpec,
     PlugInSums,
+    Reliance,
     SurrogateScores,
     SurrogateSettings,
     anytime_path,
+    choose_reliance,
     cold_start_surrogate,
     draw_batch,
     estimate_risk,
@@ -99,6 +101,9 @@ class HarnessConfig:
     refit_at: tuple[int, ...] = (10, 25, 50, 100)
     floor: float = DEFAULT_FLOOR
     gate_floor: float = 0.85
+    # leadline's runs choose each batch's control variate and floor with the core's
+    # reliance guard (``choose_reliance``); False = full reliance on the surrogate.
+    guard: bool = True
     # Experiment (not adopted): leadline's runs raise the floor per batch with
     # benchmarks.experiments.adaptive_floor.
     adaptive_floor: bool = False
@@ -162,6 +167,8 @@ class _Run:
     residual_second_moment: list[float] = field(default_factory=list)
     floor: list[float] = field(default_factory=list)
     remaining_count: list[int] = field(default_factory=list)
+    surrogate_expected_loss: list[float] = field(default_factory=list)
+    usefulness_share: list[float] = field(default_factory=list)
     sums_at: dict[int, PlugInSums] = field(default_factory=dict)
 
     def terms(self, losses: np.ndarray, count: int) -> DrawTerms:
@@ -179,6 +186,7 @@ class _Run:
             correction_low=np.asarray(self.correction_low[:count]),
             correction_high=np.asarray(self.correction_high[:count]),
             residual_second_moment=np.asarray(self.residual_second_moment[:count]),
+            remaining_count=np.asarray(self.remaining_count[:count]),
         )
 
 
@@ -204,6 +212,7 @@ def _plug_in_sums(scenario: Scenario, labeled: np.ndarray, scores: SurrogateScor
         labeled_loss_sum=float(scenario.losses[labeled].sum()),
         unlabeled_expected_loss_sum=float(scores.expected_loss[unlabeled].sum()),
         unlabeled_second_moment_sum=float(scores.residual_second_moment[unlabeled].sum()),
+        unlabeled_count=int(np.count_nonzero(unlabeled)),
     )
 
 
@@ -217,6 +226,19 @@ def _subset(scores: SurrogateScores, idx: np.ndarray) -> SurrogateScores:
     )
 
 
+def _reliance(run: _Run, scenario: Scenario, floor: float) -> Reliance:
+    """The core's reliance guard over the run's labeled draws so far."""
+    order = np.asarray(run.order, dtype=np.int64)
+    return choose_reliance(
+        losses=scenario.losses[order],
+        surrogate_expected_loss=np.asarray(run.surrogate_expected_loss),
+        probabilities=np.asarray(run.probability),
+        remaining_counts=np.asarray(run.remaining_count, dtype=float),
+        usefulness_shares=np.asarray(run.usefulness_share),
+        minimum_floor=floor,
+    )
+
+
 def _sequential_run(
     scenario: Scenario,
     config: HarnessConfig,
@@ -226,10 +248,12 @@ def _sequential_run(
     floor: float,
     surrogate_for: Callable[[int, np.ndarray, list[int]], SurrogateScores],
     adapt: bool = False,
+    guard: bool = False,
 ) -> _Run:
     """Draw ``max_budget`` items in batches; ``surrogate_for(m, labeled, order)`` gives the
     pool-wide scores current at draw m (fitted on labels before m only). ``adapt``: each
-    batch's floor from ``adaptive_floor`` over the draws so far (``floor`` the minimum)."""
+    batch's floor from ``adaptive_floor`` over the draws so far (``floor`` the minimum).
+    ``guard``: each batch's control variate and floor from ``choose_reliance``."""
     n = scenario.pool_size
     run = _Run(pool_size=n)
     labeled = np.zeros(n, dtype=bool)
@@ -238,9 +262,11 @@ def _sequential_run(
     scores = surrogate_for(0, labeled, run.order)
     for size in _batches(config):
         candidates = np.flatnonzero(~labeled)
-        cand_scores = _subset(scores, candidates)
+        raw_scores = _subset(scores, candidates)
+        reliance = _reliance(run, scenario, floor) if guard else Reliance(floor=floor)
+        cand_scores = reliance.apply(raw_scores, loss_bound=bound)
         u = proposal(cand_scores, candidates, done)
-        batch_floor = floor
+        batch_floor = reliance.floor
         if adapt:
             from benchmarks.experiments.adaptive_floor import adaptive_floor
 
@@ -268,6 +294,10 @@ def _sequential_run(
         run.floor.extend([batch_floor] * size)
         run.remaining_count.extend(int(c) for c in batch.remaining_counts)
         run.expected_loss.extend(cand_scores.expected_loss[batch.positions].tolist())
+        run.surrogate_expected_loss.extend(raw_scores.expected_loss[batch.positions].tolist())
+        total_u = float(np.sum(u))
+        share = u[batch.positions] * len(candidates) / total_u if total_u > 0 else np.ones(size)
+        run.usefulness_share.extend(np.asarray(share, dtype=float).tolist())
         run.remaining_expected_loss.extend(batch.remaining_expected_loss.tolist())
         run.correction_low.extend(batch.correction_low.tolist())
         run.correction_high.extend(batch.correction_high.tolist())
@@ -278,7 +308,9 @@ def _sequential_run(
         done += size
         scores = surrogate_for(done, labeled, run.order)
         if done in config.budgets:
-            run.sums_at[done] = _plug_in_sums(scenario, labeled, scores)
+            run.sums_at[done] = _plug_in_sums(
+                scenario, labeled, reliance.apply(scores, loss_bound=bound)
+            )
     return run
 
 
@@ -317,6 +349,7 @@ def _iid_terms(losses: np.ndarray, pool_size: int, bound: float) -> DrawTerms:
         loss=losses.astype(float),
         correction_low=zeros,
         correction_high=bound * remaining.astype(float),
+        remaining_count=remaining,
     )
 
 
@@ -403,6 +436,7 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
         floor=config.floor,
         surrogate_for=own_surrogate,
         adapt=config.adaptive_floor,
+        guard=config.guard,
     )
     snapshot_points = sorted(snapshots)
 
@@ -440,6 +474,7 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             floor=config.gate_floor,
             surrogate_for=shared_surrogate,
             adapt=config.adaptive_floor,
+            guard=config.guard,
         )
 
     shape = (len(METHODS), len(budgets))

@@ -234,6 +234,11 @@ def _parse(argv: Sequence[str] | None) -> argparse.Namespace:
     parser.add_argument("--seed", type=int, default=HarnessConfig().seed)
     parser.add_argument("--output", type=Path, default=None, help="markdown file to write")
     parser.add_argument("--gate-floor", type=float, default=HarnessConfig().gate_floor)
+    parser.add_argument(
+        "--no-guard",
+        action="store_true",
+        help="full reliance on the surrogate (switch off the core's reliance guard)",
+    )
     return parser.parse_args(argv)
 
 
@@ -250,7 +255,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         _ROOT / "bench-out" / "labels-quick.md" if quick else _ROOT / "BENCHMARKS.md"
     )
     config = HarnessConfig(
-        seed=args.seed, surrogate_settings=surrogate_settings(), gate_floor=args.gate_floor
+        seed=args.seed,
+        surrogate_settings=surrogate_settings(),
+        gate_floor=args.gate_floor,
+        guard=not args.no_guard,
     )
     print(
         f"label-efficiency benchmark ({'QUICK: ' if quick else ''}{len(names)} scenarios, "

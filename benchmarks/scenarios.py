@@ -15,9 +15,15 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
-from sklearn.datasets import load_breast_cancer, load_digits, make_classification, make_friedman1
+from sklearn.datasets import (
+    load_breast_cancer,
+    load_digits,
+    make_classification,
+    make_friedman1,
+    make_regression,
+)
 from sklearn.ensemble import HistGradientBoostingClassifier
-from sklearn.linear_model import LogisticRegression, Ridge
+from sklearn.linear_model import LinearRegression, LogisticRegression, Ridge
 from sklearn.model_selection import train_test_split
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
@@ -25,7 +31,13 @@ from sklearn.tree import DecisionTreeClassifier
 
 from leadline.service.estimation import LossKind, LossSpec
 
-__all__ = ["SCENARIO_NAMES", "QUICK_SCENARIO_NAMES", "Scenario", "build_scenario"]
+__all__ = [
+    "HARD_SCENARIO_NAMES",
+    "QUICK_SCENARIO_NAMES",
+    "SCENARIO_NAMES",
+    "Scenario",
+    "build_scenario",
+]
 
 _LOG = logging.getLogger(__name__)
 
@@ -48,6 +60,8 @@ class Scenario:
     losses: np.ndarray
     true_risk: float
     well_fit_classifier: bool
+    #: Built to break estimators (rare costly mistakes, heavy tails, no signal to learn).
+    hard: bool = False
 
     @property
     def pool_size(self) -> int:
@@ -63,6 +77,7 @@ def _finish(
     outputs: np.ndarray,
     labels: np.ndarray,
     well_fit_classifier: bool = False,
+    hard: bool = False,
 ) -> Scenario:
     losses = np.asarray(spec.losses(outputs, labels), dtype=float)
     return Scenario(
@@ -75,6 +90,7 @@ def _finish(
         losses=losses,
         true_risk=float(losses.mean()),
         well_fit_classifier=well_fit_classifier,
+        hard=hard,
     )
 
 
@@ -235,6 +251,128 @@ def _cost_matrix_synthetic(*, quick: bool) -> Scenario:
     )
 
 
+# --------------------------------------------------------------------------------------
+# Hard pools: each one is built so that a surrogate-driven estimate can go wrong.
+
+
+def _rare_mistakes(*, marked: bool) -> Scenario:
+    """A near-perfect, extremely confident classifier; 10 of 2,000 pool labels disagree.
+
+    ``marked``: the 10 mistakes are the items with the largest value of a feature the
+    model never used (a signature a surrogate can learn once it has seen one); otherwise
+    they are scattered at random (nothing to learn).
+    """
+    x, y = make_classification(
+        n_samples=6_000,
+        n_features=10,
+        n_informative=5,
+        n_redundant=0,
+        n_clusters_per_class=1,
+        flip_y=0.0,
+        class_sep=3.0,
+        random_state=31,
+    )
+    x_train, x_pool, y_train, y_pool = train_test_split(x, y, train_size=4_000, random_state=31)
+    model = HistGradientBoostingClassifier(max_iter=200, early_stopping=False, random_state=0)
+    model.fit(x_train, y_train)
+    outputs = model.predict_proba(x_pool)
+    labels = y_pool.astype(np.int64).copy()
+    correct = np.flatnonzero(outputs.argmax(axis=1) == labels)
+    if marked:
+        # Column 9 is pure noise for make_classification with 5 informative features.
+        wrong = correct[np.argsort(-x_pool[correct, 9], kind="stable")][:10]
+    else:
+        wrong = np.random.default_rng(31).choice(correct, size=10, replace=False)
+    labels[wrong] = 1 - labels[wrong]
+    kind = "marked by one unused feature" if marked else "scattered at random"
+    return _finish(
+        name="rare_mistakes_marked" if marked else "rare_mistakes_scattered",
+        description=(
+            "make_classification (sklearn), boosted trees at >= 0.9999 confidence, pool "
+            f"2,000 with 10 flipped labels {kind}, 0-1 loss"
+        ),
+        spec=LossSpec(kind=LossKind.ZERO_ONE, num_classes=2),
+        features=x_pool,
+        outputs=outputs,
+        labels=labels,
+        hard=True,
+    )
+
+
+def _rare_class(*, kind: LossKind) -> Scenario:
+    """A 4% class and a depth-3 tree: the mistakes sit in the rare class."""
+    x, y = make_classification(
+        n_samples=7_000,
+        n_features=12,
+        n_informative=4,
+        n_redundant=2,
+        weights=[0.96, 0.04],
+        flip_y=0.0,
+        class_sep=0.8,
+        random_state=32,
+    )
+    x_train, x_pool, y_train, y_pool = train_test_split(
+        x, y, train_size=3_000, random_state=32, stratify=y
+    )
+    model = DecisionTreeClassifier(max_depth=3, random_state=0).fit(x_train, y_train)
+    loss_name = "0-1 loss" if kind is LossKind.ZERO_ONE else "cross-entropy"
+    return _finish(
+        name="rare_class_tree" if kind is LossKind.ZERO_ONE else "rare_class_tree_xent",
+        description=(
+            f"make_classification (sklearn), 4% minority class, depth-3 tree, pool 4,000, "
+            f"{loss_name}"
+        ),
+        spec=LossSpec(kind=kind, num_classes=2),
+        features=x_pool,
+        outputs=model.predict_proba(x_pool),
+        labels=y_pool.astype(np.int64),
+        hard=True,
+    )
+
+
+def _heavy_tail_regression() -> Scenario:
+    """Student-t (2 degrees of freedom) noise: a few capped squared errors dominate."""
+    x, y = make_regression(n_samples=9_000, n_features=8, n_informative=6, random_state=33)
+    y = y + 10.0 * np.random.default_rng(33).standard_t(2, size=y.shape)
+    x_train, x_pool, y_train, y_pool = train_test_split(x, y, train_size=3_000, random_state=33)
+    model = Ridge(alpha=1.0).fit(x_train, y_train)
+    cap = float(np.quantile((model.predict(x_train) - y_train) ** 2, 0.995))
+    return _finish(
+        name="heavy_tail_regression",
+        description=(
+            "make_regression (sklearn) plus Student-t(2) noise, ridge regression, pool "
+            f"6,000, squared error capped at {cap:,.0f} (training 99.5th percentile)"
+        ),
+        spec=LossSpec(kind=LossKind.SQUARED_ERROR, loss_cap=cap),
+        features=x_pool,
+        outputs=model.predict(x_pool),
+        labels=y_pool.astype(float),
+        hard=True,
+    )
+
+
+def _noise_only_regression() -> Scenario:
+    """A correct linear model with Gaussian noise: no feature predicts the loss."""
+    x, y = make_regression(
+        n_samples=9_000, n_features=8, n_informative=6, noise=20.0, random_state=34
+    )
+    x_train, x_pool, y_train, y_pool = train_test_split(x, y, train_size=3_000, random_state=34)
+    model = LinearRegression().fit(x_train, y_train)
+    cap = float(np.quantile((model.predict(x_train) - y_train) ** 2, 0.99))
+    return _finish(
+        name="noise_only_regression",
+        description=(
+            "make_regression (sklearn), Gaussian noise, the true linear model, pool 6,000, "
+            f"squared error capped at {cap:,.0f}: nothing for a surrogate to learn"
+        ),
+        spec=LossSpec(kind=LossKind.SQUARED_ERROR, loss_cap=cap),
+        features=x_pool,
+        outputs=model.predict(x_pool),
+        labels=y_pool.astype(float),
+        hard=True,
+    )
+
+
 _BUILDERS: dict[str, Callable[..., Scenario]] = {
     "digits_logistic": _digits_logistic,
     "digits_weak_tree": _digits_shallow_tree,
@@ -242,9 +380,24 @@ _BUILDERS: dict[str, Callable[..., Scenario]] = {
     "shifted_synthetic": _shifted_synthetic,
     "friedman_regression": _friedman_regression,
     "cost_matrix_triage": _cost_matrix_synthetic,
+    "rare_mistakes_scattered": lambda *, quick: _rare_mistakes(marked=False),
+    "rare_mistakes_marked": lambda *, quick: _rare_mistakes(marked=True),
+    "rare_class_tree": lambda *, quick: _rare_class(kind=LossKind.ZERO_ONE),
+    "rare_class_tree_xent": lambda *, quick: _rare_class(kind=LossKind.CROSS_ENTROPY),
+    "heavy_tail_regression": lambda *, quick: _heavy_tail_regression(),
+    "noise_only_regression": lambda *, quick: _noise_only_regression(),
 }
 
 SCENARIO_NAMES: tuple[str, ...] = tuple(_BUILDERS)
+#: The pools built to break estimators (``Scenario.hard``).
+HARD_SCENARIO_NAMES: tuple[str, ...] = (
+    "rare_mistakes_scattered",
+    "rare_mistakes_marked",
+    "rare_class_tree",
+    "rare_class_tree_xent",
+    "heavy_tail_regression",
+    "noise_only_regression",
+)
 QUICK_SCENARIO_NAMES: tuple[str, ...] = ("digits_logistic", "breast_cancer", "shifted_synthetic")
 
 

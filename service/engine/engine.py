@@ -814,7 +814,10 @@ class Engine:
         key = ("inputs", scope)
         cached = pool.cache.get(key)
         if cached is None:
-            cached = build_scope_inputs(pool, scope)
+            floor = pool.settings.selection_floor or self._config.selection_floor
+            cached = build_scope_inputs(
+                pool, scope, reliance=labeling.current_reliance(pool, floor=floor)
+            )
             pool.cache[key] = cached
         return cached
 

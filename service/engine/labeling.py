@@ -32,11 +32,31 @@ from leadline.service.errors import (
     PermissionDenied,
     ServiceError,
 )
-from leadline.service.estimation import SurrogateScores, draw_batch, usefulness
+from leadline.service.estimation import (
+    Reliance,
+    SurrogateScores,
+    choose_reliance,
+    draw_batch,
+    usefulness,
+)
 from leadline.service.store import records as store
 from leadline.service.store.records import Write
 
-__all__ = ["acquire", "release", "submit"]
+__all__ = ["acquire", "current_reliance", "release", "submit"]
+
+
+def current_reliance(pool: PoolState, *, floor: float) -> Reliance:
+    """The reliance guard's choice from the pool's labeled draws so far (O(draws))."""
+    draws = pool.draws
+    labeled = draws.status.view == LABELED
+    return choose_reliance(
+        losses=draws.loss.view[labeled],
+        surrogate_expected_loss=draws.surrogate_expected_loss.view[labeled],
+        probabilities=draws.probability.view[labeled],
+        remaining_counts=draws.remaining_count.view[labeled].astype(np.float64),
+        usefulness_shares=draws.usefulness_share.view[labeled],
+        minimum_floor=floor,
+    )
 
 
 def acquire(
@@ -228,26 +248,34 @@ def _new_draws(
     if k == 0:
         return []
     g = pool.expected_loss.view[candidates]
-    worst = pool.worst_deviation.view[candidates]
-    scores = SurrogateScores(
+    surrogate_scores = SurrogateScores(
         expected_loss=g,
         residual_second_moment=pool.second_moment.view[candidates],
         spread=pool.spread.view[candidates],
-        worst_squared_deviation=worst,
+        worst_squared_deviation=pool.worst_deviation.view[candidates],
     )
+    # The guard picks the control variate h (g shrunk towards a constant) and the floor
+    # from the labeled draws so far: predictable, so every estimator keeps its guarantees.
+    reliance = current_reliance(pool, floor=floor)
+    scores = reliance.apply(surrogate_scores, loss_bound=pool.loss_bound)
+    h = scores.expected_loss
+    worst = scores.worst_squared_deviation
+    assert worst is not None
+    # The hedged rule: the label-efficiency benchmark measured it against the plain one.
+    u = usefulness(scores, loss_bound=pool.loss_bound)
+    total_u = float(u.sum())
     start = len(pool.draws)
     rng = np.random.default_rng([pool.seed, start])
     batch = draw_batch(
-        # The hedged rule: the label-efficiency benchmark measured it against the plain one.
-        usefulness(scores, loss_bound=pool.loss_bound),
-        g,
+        u,
+        h,
         k,
-        floor=floor,
+        floor=reliance.floor,
         loss_bound=pool.loss_bound,
         rng=rng,
         groups=pool.segment.view[candidates].astype(np.int64),
         num_groups=len(pool.segment_names),
-        # Each item's own reach |L - g| narrows the anytime bound's per-draw ranges.
+        # Each item's own reach |L - h| narrows the anytime bound's per-draw ranges.
         max_deviation=np.sqrt(worst),
     )
     rows = candidates[batch.positions]
@@ -271,8 +299,14 @@ def _new_draws(
                 "correction_low": float(batch.correction_low[j]),
                 "correction_high": float(batch.correction_high[j]),
                 "min_probability": min(float(batch.min_probability[j]), 1.0),
-                "expected_loss": float(g[batch.positions[j]]),
+                "expected_loss": float(h[batch.positions[j]]),
                 "second_moment": float(scores.residual_second_moment[batch.positions[j]]),
+                "surrogate_expected_loss": float(g[batch.positions[j]]),
+                "usefulness_share": (
+                    float(u[batch.positions[j]]) * len(candidates) / total_u
+                    if total_u > 0.0
+                    else 1.0
+                ),
                 "surrogate_version": version,
                 "arrival_mark": pool.item_count,
                 "draw_time_ms": now,

@@ -19,6 +19,7 @@ from .estimators import (
 from .gate import MAX_LABELS_HINT, GateDecision, Verdict, check_gate
 from .losses import CROSS_ENTROPY_CLIP, PROBABILITY_SUM_TOLERANCE, LossKind, LossSpec
 from .normal import normal_cdf, normal_quantile
+from .reliance import MIN_DRAWS, Reliance, choose_reliance
 from .selection import (
     DEFAULT_FLOOR,
     DrawBatch,
@@ -48,6 +49,7 @@ __all__ = [
     "DRAW_PENDING",
     "DRAW_SKIPPED",
     "MAX_LABELS_HINT",
+    "MIN_DRAWS",
     "PROBABILITY_SUM_TOLERANCE",
     "BoundKind",
     "DrawBatch",
@@ -57,6 +59,7 @@ __all__ = [
     "LossKind",
     "LossSpec",
     "PlugInSums",
+    "Reliance",
     "RiskEstimate",
     "Surrogate",
     "SurrogateScores",
@@ -65,6 +68,7 @@ __all__ = [
     "Verdict",
     "anytime_path",
     "check_gate",
+    "choose_reliance",
     "cold_start_surrogate",
     "concatenate_scores",
     "draw_batch",

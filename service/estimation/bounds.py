@@ -1,7 +1,22 @@
-"""Anytime-valid confidence bounds on the scope risk from the per-draw terms a_m.
+"""Confidence bounds on the scope risk from the per-draw terms a_m, valid in finite samples.
 
-(The fixed-time interval, a martingale central limit theorem with a model-guarded
-variance, lives with the estimators in ``estimators.py``.)
+Every bound here rests on one fact: E[a_m | draws before m] = risk, and each a_m lies in a
+range [lo_m, hi_m] known before draw m (the logged correction range). Nothing assumes a
+normal approximation, so a bound cannot be fooled by a rare costly mistake that has not
+been drawn yet: its possibility is priced through the range.
+
+Fixed-time bound (one look at a sample size chosen in advance):
+
+- ``betting_fixed_lower_bound``: the betting confidence interval for bounded means
+  ("Estimating means of bounded random variables by betting", JRSS-B 2024, its fixed-time
+  intervals). The lower-side capital after all M terms is
+  K_M(r) = prod_t (1 + lambda_t(r) (x_t - r)) with predictable bets tuned for M,
+  lambda_t = sqrt(2 log(1/alpha) / (M v_t tau_{t-1}^2)), truncated at c / (r - lo_t). Under
+  r = risk, K_M is a nonnegative supermartingale with E[K_M] <= 1, so by Markov's
+  inequality P(K_M(risk) >= 1/alpha) <= alpha: every r with K_M(r) >= 1/alpha is excluded.
+  ``scale`` v_t (optional, predictable) is each term's variance relative to the others
+  (finite-population shrinkage near census); tau^2 is the running mean of the past terms'
+  squared deviations divided by their v.
 
 Anytime-valid bounds (confidence sequences, valid however often they are queried):
 
@@ -32,6 +47,7 @@ import numpy as np
 __all__ = [
     "BET_TRUNCATION",
     "BoundKind",
+    "betting_fixed_lower_bound",
     "betting_lower_path",
     "betting_lower_bound",
     "empirical_bernstein_lower_path",
@@ -86,6 +102,66 @@ def _base_bets(
     variance_before = (prior_var + sq_sum) / t
     variance_before = np.maximum(variance_before, 1e-30)
     return np.sqrt(2.0 * math.log(1.0 / alpha) / (variance_before * t * np.log1p(t)))
+
+
+def _fixed_bets(
+    x: np.ndarray, lo: np.ndarray, hi: np.ndarray, alpha: float, prior: Prior, scale: np.ndarray
+) -> np.ndarray:
+    """Bets for the fixed-time interval: lambda_t = sqrt(2 log(1/alpha) / (M v_t tau^2)),
+    tau^2 from x_0..x_{t-1} only (``prior`` = one pseudo-observation, as in ``_base_bets``).
+    """
+    m = x.shape[0]
+    t = np.arange(1, m + 1, dtype=np.float64)
+    prior_mean, prior_var = _prior(lo, hi, prior)
+    csum = np.concatenate([[0.0], np.cumsum(x)])
+    mean_before = (prior_mean + csum[:-1]) / t
+    squares = (x - mean_before) ** 2 / scale
+    sq_sum = np.concatenate([[0.0], np.cumsum(squares)])[:-1]
+    # The prior's variance is stated for a term of relative variance 1 (the first one).
+    tau_before = np.maximum((prior_var / scale[0] + sq_sum) / t, 1e-30)
+    return np.sqrt(2.0 * math.log(1.0 / alpha) / (m * scale * tau_before))
+
+
+def betting_fixed_lower_bound(
+    x: np.ndarray,
+    lo: np.ndarray,
+    hi: np.ndarray,
+    *,
+    alpha: float,
+    support: tuple[float, float],
+    prior: Prior = None,
+    scale: np.ndarray | None = None,
+) -> float:
+    """Lower confidence bound at level 1 - alpha for ONE look after all M terms.
+
+    Bisection on the candidate risk over ``support`` (the final capital decreases in r, so
+    the excluded set is a half-line); the value returned is itself excluded
+    (conservative). ``scale`` (M,) > 0: predictable relative variances of the terms
+    (default all 1). See the module docstring for the construction.
+    """
+    m = x.shape[0]
+    if m == 0:
+        return float(support[0])
+    v = np.ones(m) if scale is None else np.maximum(np.asarray(scale, dtype=np.float64), 1e-300)
+    bets = _fixed_bets(x, lo, hi, alpha, prior, v)
+    threshold = math.log(1.0 / alpha)
+
+    def crossed(r: float) -> bool:
+        logs = _log_capital(x, lo, bets, np.array([r]))[:, 0]
+        return bool(np.sum(logs) >= threshold)
+
+    rejected, accepted = float(support[0]), float(support[1])
+    if not crossed(rejected):
+        return rejected
+    if crossed(accepted):
+        return accepted
+    for _ in range(_BISECTION_STEPS):
+        middle = 0.5 * (rejected + accepted)
+        if crossed(middle):
+            rejected = middle
+        else:
+            accepted = middle
+    return rejected
 
 
 def _log_capital(x: np.ndarray, lo: np.ndarray, bets: np.ndarray, r: np.ndarray) -> np.ndarray:

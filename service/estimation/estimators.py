@@ -45,9 +45,14 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._checks import check_confidence, check_finite_array, describe
-from .bounds import betting_lower_bound, betting_lower_path, empirical_bernstein_lower_path
+from .bounds import (
+    betting_fixed_lower_bound,
+    betting_lower_bound,
+    betting_lower_path,
+    empirical_bernstein_lower_path,
+)
 from .losses import loss_reach
-from .normal import normal_quantile, student_t_quantile
+from .normal import student_t_quantile
 from .terms import (
     DRAW_PENDING,
     DRAW_SKIPPED,
@@ -204,6 +209,69 @@ def _path(
     return np.clip(lows[0], 0.0, bound), np.clip(highs[0], 0.0, bound)
 
 
+def _fixed_time_interval(
+    ts: TermSums, scope_size: int, bound: float, alpha_side: float, center: float
+) -> tuple[float, float]:
+    """(lower, upper) of the fixed-time betting interval, each side at ``alpha_side``.
+
+    The same terms and predictable ranges as the anytime bounds (unknown and late losses
+    at their worst case), with bets tuned for one look after all M terms and scaled by the
+    finite-population relative variances (``_relative_variance``)."""
+    prior_var = (bound / 2.0) ** 2
+    scale = _relative_variance(ts)
+    sides = []
+    for upper in (False, True):
+        x, lo, hi, first_guess = _anytime_side(ts, scope_size, bound, upper=upper)
+        if upper:
+            x, lo, hi = -x, -hi, -lo
+            support, prior = (-bound, 0.0), (-first_guess, prior_var)
+        else:
+            support, prior = (0.0, bound), (first_guess, prior_var)
+        value = betting_fixed_lower_bound(
+            x, lo, hi, alpha=alpha_side, support=support, prior=prior, scale=scale
+        )
+        sides.append(-value if upper else value)
+    del center
+    return min(max(sides[0], 0.0), bound), min(max(sides[1], 0.0), bound)
+
+
+def _relative_variance(ts: TermSums) -> np.ndarray:
+    """v_m = |U_m| (|U_m| - 1): each term's variance up to a common factor.
+
+    For uniform draws without replacement from N items, Var(a_m) = |U_m| (|U_m| - 1)
+    sigma^2 / N^2 (sigma^2 the pool's loss variance, divisor N - 1): a term made from a
+    nearly exhausted remaining set is nearly exact, and the one made from the last item
+    (|U_m| = 1) is the scope risk itself. Without logged counts every term counts alike.
+    A term with |U_m| = 1 but items arriving later is not exact; it gets v = 1.
+    """
+    if ts.remaining_count is None:
+        return np.ones(ts.count)
+    n = ts.remaining_count
+    v = n * (n - 1.0)
+    return np.where((v == 0.0) & (ts.late_count > 0), 1.0, v)
+
+
+def _term_weights(ts: TermSums) -> np.ndarray:
+    """Weights w_m (summing to 1) of the point estimate sum_m w_m a_m: 1 / v_m normalised.
+
+    The weights depend only on the candidate counts, which are fixed before each draw and
+    do not depend on which items were drawn, so sum_m w_m a_m is exactly unbiased like the
+    plain mean. For uniform draws from a fixed pool with no control variate they reproduce
+    the sample mean exactly (the finite-population weights w_m = N (N - M) /
+    (M |U_m| (|U_m| - 1)) sum to 1), and when the last item of the pool is drawn (a
+    census) all weight goes to that exact term. Terms with v_m = 0 are exact: they share
+    the weight.
+    """
+    v = _relative_variance(ts)
+    if ts.count == 0:
+        return v
+    exact = v <= 0.0
+    if np.any(exact):
+        return exact / float(np.count_nonzero(exact))
+    inverse = 1.0 / v
+    return inverse / float(inverse.sum())
+
+
 def _check_scope(scope_size: int) -> int:
     if isinstance(scope_size, bool) or int(scope_size) != scope_size or scope_size < 1:
         raise ValueError(f"scope_size = {describe(scope_size)}, must be an integer >= 1.")
@@ -261,7 +329,7 @@ def _point_unbiased(ts: TermSums, scope_size: int) -> float:
     if ts.count == 0:
         return float("nan")
     known, correction = term_sums(ts, ts.expected_loss, late=ts.late_expected)
-    return float(np.mean(known + correction) / scope_size)
+    return float(np.dot(_term_weights(ts), known + correction) / scope_size)
 
 
 @dataclass(frozen=True)
@@ -297,20 +365,33 @@ def _design(ts: TermSums, scope_size: int, bound: float) -> _Design:
     n = scope_size
     known, correction = term_sums(ts, ts.expected_loss, late=ts.late_expected)
     a = (known + correction) / n
+    weights = _term_weights(ts)
+    v = _relative_variance(ts)
+    risk = float(np.dot(weights, a))
     model = np.where(ts.in_scope, ts.second_moment / (n * ts.probability) ** 2, 0.0)
-    model_variance = float(model.sum()) / m**2 * _calibration(ts)
-    empirical = float(np.var(a, ddof=1)) / m if m >= 2 else 0.0
+    model_variance = float(np.dot(weights**2, model)) * _calibration(ts)
+    empirical = 0.0
+    if m >= 2:
+        # Var(sum w a) = sum w^2 Var(a_m) with Var(a_m) = v_m tau^2 (martingale differences
+        # are uncorrelated); tau^2 from the squared deviations scaled by 1 / v_m.
+        used = v > 0.0
+        if np.count_nonzero(used) >= 2:
+            tau = float(np.sum((a[used] - risk) ** 2 / v[used])) / (np.count_nonzero(used) - 1)
+            empirical = tau * float(np.dot(weights[used] ** 2, v[used]))
     unresolved = ts.in_scope & ((ts.status == DRAW_PENDING) | (ts.status == DRAW_SKIPPED))
-    t = np.arange(m)
-    coefficient = (1.0 / ts.probability + (m - 1 - t)) / (n * m)
+    # An unknown loss enters its own correction (weight w_t / q_t) and the earlier-loss sum
+    # of every later term (the later weights' total).
+    later = np.concatenate([np.cumsum(weights[::-1])[::-1][1:], [0.0]]) if m else weights
+    coefficient = (weights / ts.probability + later) / n
     worst = loss_reach(ts.expected_loss, bound)
     allowance = float(np.sum(np.where(unresolved, coefficient * worst, 0.0)))
     return _Design(
-        risk=float(a.mean()),
+        risk=risk,
         variance=max(empirical, model_variance),
         allowance=allowance,
-        late_down=float(np.mean(ts.late_expected)) / n,
-        late_up=float(np.mean(np.maximum(ts.late_count * bound - ts.late_expected, 0.0))) / n,
+        late_down=float(np.dot(weights, ts.late_expected)) / n,
+        late_up=float(np.dot(weights, np.maximum(ts.late_count * bound - ts.late_expected, 0.0)))
+        / n,
     )
 
 
@@ -324,6 +405,14 @@ def _check_sums(sums: PlugInSums) -> None:
             and value >= -1e-9
         ):
             raise ValueError(f"{name} = {describe(value)}, must be a finite number >= 0.")
+    count = sums.unlabeled_count
+    if count is not None and (
+        isinstance(count, bool) or int(count) != count or not 0 <= count <= sums.scope_size
+    ):
+        raise ValueError(
+            f"unlabeled_count = {describe(count)}, must be an integer in [0, scope_size "
+            f"({sums.scope_size})]."
+        )
 
 
 def estimate_risk(
@@ -387,10 +476,8 @@ def _estimate(
     ts = check_terms(terms, loss_bound=loss_bound)
     bound = float(loss_bound)
     n = int(sums.scope_size)
-    z = normal_quantile(1.0 - alpha_side)
-    # Design-based margins use Student's t with M - 1 degrees of freedom: the common
-    # small-sample choice; it widens M = 50 intervals by ~2%, where skewed importance
-    # weighted terms make the normal approximation optimistic.
+    # Design-based standard errors use Student's t with M - 1 degrees of freedom for the
+    # plug-in's bias bound (common small-sample practice).
     in_scope_draws = int(np.sum(ts.in_scope))
     t = student_t_quantile(1.0 - alpha_side, max(in_scope_draws - 1, 1))
     labeled_in_scope = int(np.sum(ts.labeled & ts.in_scope))
@@ -398,6 +485,34 @@ def _estimate(
     skipped = int(np.sum((ts.status == DRAW_SKIPPED) & ts.in_scope))
     plug_in = (sums.labeled_loss_sum + sums.unlabeled_expected_loss_sum) / n
     plug_in_se = math.sqrt(max(sums.unlabeled_second_moment_sum, 0.0)) / n
+    weight_of_mode = {
+        EstimatorMode.UNBIASED: 1.0,
+        EstimatorMode.SURROGATE: 0.0,
+        EstimatorMode.BALANCED: 1.0,
+    }[mode]
+
+    if sums.unlabeled_count == 0:
+        # Census: every item in scope carries its label, so the risk is known exactly and
+        # every mode and every bound returns it.
+        exact = min(max(sums.labeled_loss_sum / n, 0.0), bound)
+        return RiskEstimate(
+            risk=exact,
+            unclipped_risk=exact,
+            std_error=0.0,
+            lower=exact,
+            upper=exact,
+            anytime_lower=exact,
+            anytime_upper=exact,
+            bias_bound=0.0,
+            mode=mode,
+            confidence=confidence,
+            labels_used=labeled_in_scope,
+            labels_pending=pending,
+            labels_skipped=skipped,
+            nonresponse_allowance=0.0,
+            unbiased_weight=weight_of_mode,
+            loss_bound=bound,
+        )
 
     if ts.count == 0:
         # No draw yet: nothing design-based to say; the plug-in is the only guess.
@@ -423,7 +538,7 @@ def _estimate(
     unbiased_se = math.sqrt(design.variance)
     if in_scope_draws < 2:
         # Fewer than two draws landed in the scope: the variance cannot be estimated (it
-        # reads 0 when none did), so the design-based margins span the whole range.
+        # reads 0 when none did).
         unbiased_se = bound
     late_bias = max(design.late_down, design.late_up)
     contrast = design.risk - plug_in
@@ -432,13 +547,10 @@ def _estimate(
 
     if mode is EstimatorMode.UNBIASED:
         weight, risk, se = 1.0, design.risk, unbiased_se
-        margin_down = t * se + design.allowance + design.late_down
-        margin_up = t * se + design.allowance + design.late_up
         bias_bound = late_bias
         allowance = design.allowance
     elif mode is EstimatorMode.SURROGATE:
         weight, risk, se = 0.0, plug_in, plug_in_se
-        margin_down = margin_up = z * se + plug_in_bias
         bias_bound = plug_in_bias
         allowance = 0.0
     else:
@@ -450,13 +562,14 @@ def _estimate(
         risk = plug_in + weight * contrast
         se = math.sqrt((weight * unbiased_se) ** 2 + ((1.0 - weight) * plug_in_se) ** 2)
         allowance = weight * design.allowance
-        # The whole bias bound left, (1 - lambda) b, goes into the interval: carrying only
-        # (1 - lambda) |C| under-covered at M = 25-50 on digits (0.86-0.87 at 90%).
-        kept_bias = (1.0 - weight) * (abs(contrast) + t * unbiased_se)
-        margin_down = t * se + kept_bias + allowance + design.late_down
-        margin_up = t * se + kept_bias + allowance + design.late_up
-        bias_bound = kept_bias + late_bias
+        bias_bound = (1.0 - weight) * (abs(contrast) + t * unbiased_se) + late_bias
 
+    # The fixed-time interval is the finite-sample betting interval on the design terms
+    # (valid whatever the surrogate knows; unknown and late losses at their worst case),
+    # widened to contain the mode's own point estimate.
+    lower, upper = _fixed_time_interval(ts, n, bound, alpha_side, design.risk)
+    clipped = min(max(risk, 0.0), bound)
+    lower, upper = min(lower, clipped), max(upper, clipped)
     if anytime:
         low_path, high_path = _path(
             ts, n, bound, alpha_side, design.risk, method="betting", final_only=True
@@ -468,11 +581,11 @@ def _estimate(
         # The design-based sum can leave [0, B] with few labels (a negative correction
         # term); no risk lies outside the loss range, so the point estimate is clipped to
         # it (this only moves it towards the truth) and stays inside its own interval.
-        risk=min(max(risk, 0.0), bound),
+        risk=clipped,
         unclipped_risk=risk,
         std_error=se,
-        lower=min(max(risk - margin_down, 0.0), bound),
-        upper=min(max(risk + margin_up, 0.0), bound),
+        lower=lower,
+        upper=upper,
         anytime_lower=anytime_lower,
         anytime_upper=anytime_upper,
         bias_bound=bias_bound,

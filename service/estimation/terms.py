@@ -51,7 +51,10 @@ class DrawTerms:
     ``correction_low`` / ``correction_high`` are the predictable range of (L - h) / q over
     U_m from ``DrawBatch``. ``residual_second_moment`` (optional) is the draw-time
     predicted E[(L - h)^2] at the drawn item, used by the model-based variance; when
-    absent the bound h (B - h) on it is used instead.
+    absent the bound h (B - h) on it is used instead. ``remaining_count`` (optional) is
+    |U_m|, the number of candidates draw m chose from (drawn item included); with it the
+    terms are combined with finite-population weights (``estimators``), without it with
+    equal weights.
     """
 
     probability: np.ndarray
@@ -65,6 +68,7 @@ class DrawTerms:
     correction_low: np.ndarray
     correction_high: np.ndarray
     residual_second_moment: np.ndarray | None = None
+    remaining_count: np.ndarray | None = None
 
     @property
     def count(self) -> int:
@@ -81,12 +85,17 @@ class DrawTerms:
 
 @dataclass(frozen=True)
 class PlugInSums:
-    """The current surrogate over scope D (draws not yet labeled count as unlabeled)."""
+    """The current surrogate over scope D (draws not yet labeled count as unlabeled).
+
+    ``unlabeled_count`` (optional): how many items of D have no label; 0 means D is fully
+    labeled (a census), and every estimate is then the exact mean of its losses.
+    """
 
     scope_size: int
     labeled_loss_sum: float
     unlabeled_expected_loss_sum: float
     unlabeled_second_moment_sum: float
+    unlabeled_count: int | None = None
 
 
 @dataclass(frozen=True)
@@ -104,6 +113,7 @@ class TermSums:
     low: np.ndarray
     high: np.ndarray
     second_moment: np.ndarray
+    remaining_count: np.ndarray | None = None
 
     @property
     def count(self) -> int:
@@ -194,6 +204,20 @@ def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:
     else:
         # Any loss in [0, B] with mean h has variance at most h (B - h) (Bhatia-Davis).
         second = h * (bound - h)
+    remaining_count = None
+    if terms.remaining_count is not None:
+        remaining_count = check_finite_array("remaining_count", terms.remaining_count, ndim=1)
+        if remaining_count.shape[0] != m:
+            raise ValueError(
+                f"remaining_count has {remaining_count.shape[0]} entries, must match "
+                f"probability ({m})."
+            )
+        bad = (remaining_count < 1) | (remaining_count != np.round(remaining_count))
+        if np.any(bad):
+            i = int(np.flatnonzero(bad)[0])
+            raise ValueError(
+                f"remaining_count[{i}] = {describe(remaining_count[i])}, must be an integer >= 1."
+            )
     return TermSums(
         probability=probability,
         expected_loss=h,
@@ -206,6 +230,7 @@ def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:
         low=fields["correction_low"],
         high=fields["correction_high"],
         second_moment=second,
+        remaining_count=remaining_count,
     )
 
 

@@ -32,7 +32,9 @@ def run_draws(
     n = losses.shape[0]
     u_all = np.sqrt(second_moment) if usefulness is None else usefulness
     remaining = np.arange(n)
-    logs: dict[str, list[np.ndarray]] = {k: [] for k in ("probability", "remaining", "low", "high")}
+    logs: dict[str, list[np.ndarray]] = {
+        k: [] for k in ("probability", "remaining", "low", "high", "count")
+    }
     picked = []
     while len(picked) < draws:
         k = min(batch, draws - len(picked))
@@ -50,6 +52,7 @@ def run_draws(
         logs["remaining"].append(b.remaining_expected_loss)
         logs["low"].append(b.correction_low)
         logs["high"].append(b.correction_high)
+        logs["count"].append(b.remaining_counts.astype(np.float64))
         remaining = np.setdiff1d(remaining, chosen, assume_unique=True)
     return np.array(picked, dtype=np.int64), {k: np.concatenate(v) for k, v in logs.items()}
 
@@ -78,6 +81,7 @@ def pool_terms(
         correction_low=logs["low"][:m],
         correction_high=logs["high"][:m],
         residual_second_moment=second_moment[idx],
+        remaining_count=logs["count"][:m],
     )
     rest = np.ones(losses.shape[0], dtype=bool)
     rest[idx] = False
@@ -86,5 +90,6 @@ def pool_terms(
         labeled_loss_sum=float(losses[idx].sum()),
         unlabeled_expected_loss_sum=float(expected_loss[rest].sum()),
         unlabeled_second_moment_sum=float(second_moment[rest].sum()),
+        unlabeled_count=int(rest.sum()),
     )
     return terms, sums
