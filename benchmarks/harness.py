@@ -50,6 +50,7 @@ from leadline.service.estimation import (
     anytime_path,
     choose_reliance,
     cold_start_surrogate,
+    cross_fitted_scores,
     draw_batch,
     estimate_risk,
     fit_surrogate,
@@ -167,8 +168,6 @@ class _Run:
     residual_second_moment: list[float] = field(default_factory=list)
     floor: list[float] = field(default_factory=list)
     remaining_count: list[int] = field(default_factory=list)
-    surrogate_expected_loss: list[float] = field(default_factory=list)
-    usefulness_share: list[float] = field(default_factory=list)
     sums_at: dict[int, PlugInSums] = field(default_factory=dict)
 
     def terms(self, losses: np.ndarray, count: int) -> DrawTerms:
@@ -226,16 +225,33 @@ def _subset(scores: SurrogateScores, idx: np.ndarray) -> SurrogateScores:
     )
 
 
-def _reliance(run: _Run, scenario: Scenario, floor: float) -> Reliance:
-    """The core's reliance guard over the run's labeled draws so far."""
+def _choose_reliance(
+    scenario: Scenario,
+    run: _Run,
+    scores: SurrogateScores,
+    labeled: np.ndarray,
+    config: HarnessConfig,
+    seed: int,
+) -> Reliance:
+    """The core's reliance guard at a refit, from the run's labeled draws scored honestly
+    (cross-fitted) and the new surrogate's scores over the remaining candidates."""
     order = np.asarray(run.order, dtype=np.int64)
+    honest = cross_fitted_scores(
+        scenario.spec,
+        scenario.features[order],
+        scenario.outputs[order],
+        scenario.labels[order],
+        seed=seed,
+        settings=config.surrogate_settings,
+    )
     return choose_reliance(
         losses=scenario.losses[order],
-        surrogate_expected_loss=np.asarray(run.surrogate_expected_loss),
+        honest=honest,
         probabilities=np.asarray(run.probability),
         remaining_counts=np.asarray(run.remaining_count, dtype=float),
-        usefulness_shares=np.asarray(run.usefulness_share),
-        minimum_floor=floor,
+        candidates=_subset(scores, np.flatnonzero(~labeled)),
+        loss_bound=scenario.spec.bound,
+        minimum_floor=config.floor,
     )
 
 
@@ -246,24 +262,25 @@ def _sequential_run(
     *,
     proposal: Callable[[SurrogateScores, np.ndarray, int], np.ndarray],
     floor: float,
-    surrogate_for: Callable[[int, np.ndarray, list[int]], SurrogateScores],
+    surrogate_for: Callable[[int, np.ndarray, _Run], SurrogateScores],
     adapt: bool = False,
-    guard: bool = False,
+    reliance_for: Callable[[], Reliance] | None = None,
 ) -> _Run:
-    """Draw ``max_budget`` items in batches; ``surrogate_for(m, labeled, order)`` gives the
+    """Draw ``max_budget`` items in batches; ``surrogate_for(m, labeled, run)`` gives the
     pool-wide scores current at draw m (fitted on labels before m only). ``adapt``: each
     batch's floor from ``adaptive_floor`` over the draws so far (``floor`` the minimum).
-    ``guard``: each batch's control variate and floor from ``choose_reliance``."""
+    ``reliance_for()``: the reliance (control variate and floor) in force for the next
+    batch, chosen at the last refit; None = full reliance at ``floor``."""
     n = scenario.pool_size
     run = _Run(pool_size=n)
     labeled = np.zeros(n, dtype=bool)
     bound = scenario.spec.bound
     done = 0
-    scores = surrogate_for(0, labeled, run.order)
+    scores = surrogate_for(0, labeled, run)
     for size in _batches(config):
         candidates = np.flatnonzero(~labeled)
         raw_scores = _subset(scores, candidates)
-        reliance = _reliance(run, scenario, floor) if guard else Reliance(floor=floor)
+        reliance = reliance_for() if reliance_for is not None else Reliance(floor=floor)
         cand_scores = reliance.apply(raw_scores, loss_bound=bound)
         u = proposal(cand_scores, candidates, done)
         batch_floor = reliance.floor
@@ -294,10 +311,6 @@ def _sequential_run(
         run.floor.extend([batch_floor] * size)
         run.remaining_count.extend(int(c) for c in batch.remaining_counts)
         run.expected_loss.extend(cand_scores.expected_loss[batch.positions].tolist())
-        run.surrogate_expected_loss.extend(raw_scores.expected_loss[batch.positions].tolist())
-        total_u = float(np.sum(u))
-        share = u[batch.positions] * len(candidates) / total_u if total_u > 0 else np.ones(size)
-        run.usefulness_share.extend(np.asarray(share, dtype=float).tolist())
         run.remaining_expected_loss.extend(batch.remaining_expected_loss.tolist())
         run.correction_low.extend(batch.correction_low.tolist())
         run.correction_high.extend(batch.correction_high.tolist())
@@ -306,7 +319,7 @@ def _sequential_run(
         )
         labeled[items] = True
         done += size
-        scores = surrogate_for(done, labeled, run.order)
+        scores = surrogate_for(done, labeled, run)
         if done in config.budgets:
             run.sums_at[done] = _plug_in_sums(
                 scenario, labeled, reliance.apply(scores, loss_bound=bound)
@@ -396,8 +409,11 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             cold_err += float(losses[item] - fitted[0].expected_loss[item]) ** 2
         return cold_err < fit_err
 
-    def own_surrogate(m: int, _labeled: np.ndarray, order: list[int]) -> SurrogateScores:
+    reliance_now = [Reliance(floor=config.floor)]
+
+    def own_surrogate(m: int, labeled: np.ndarray, run: _Run) -> SurrogateScores:
         nonlocal fit_seconds
+        order = run.order
         if m == 0 or m in refit_points:
             t0 = time.perf_counter()
             if m == 0:
@@ -420,6 +436,12 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
                 scores = fitted[0]
             snapshots[m] = scores
             current[:] = [scores]
+            if config.guard and m > 0:
+                t0 = time.perf_counter()
+                reliance_now[0] = _choose_reliance(
+                    scenario, run, scores, labeled, config, fit_seed + m
+                )
+                fit_seconds += time.perf_counter() - t0
         return current[0]
 
     def rule_on_pool(scores: SurrogateScores, candidates: np.ndarray, done: int) -> np.ndarray:
@@ -436,11 +458,11 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
         floor=config.floor,
         surrogate_for=own_surrogate,
         adapt=config.adaptive_floor,
-        guard=config.guard,
+        reliance_for=lambda: reliance_now[0],
     )
     snapshot_points = sorted(snapshots)
 
-    def shared_surrogate(m: int, _labeled: np.ndarray, _order: list[int]) -> SurrogateScores:
+    def shared_surrogate(m: int, _labeled: np.ndarray, _run: _Run) -> SurrogateScores:
         # The latest snapshot fitted at or before m (on leadline's labels, not this run's).
         return snapshots[max(p for p in snapshot_points if p <= m)]
 
@@ -474,7 +496,6 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             floor=config.gate_floor,
             surrogate_for=shared_surrogate,
             adapt=config.adaptive_floor,
-            guard=config.guard,
         )
 
     shape = (len(METHODS), len(budgets))

@@ -114,10 +114,8 @@ class DrawLog:
         self.correction_low = Column(np.float64)
         self.correction_high = Column(np.float64)
         self.min_probability = Column(np.float64)
-        self.expected_loss = Column(np.float64)  # h: the control variate of the draw
+        self.expected_loss = Column(np.float64)
         self.second_moment = Column(np.float64)
-        self.surrogate_expected_loss = Column(np.float64)  # g at draw time (h shrinks it)
-        self.usefulness_share = Column(np.float64)  # n u_i / sum u of the drawn item
         self.surrogate_version = Column(np.int64)
         self.arrival_mark = Column(np.int64)
         self.draw_time_ms = Column(np.int64)
@@ -154,8 +152,6 @@ class DrawLog:
         self.min_probability.extend(column("min_probability"))
         self.expected_loss.extend(column("expected_loss"))
         self.second_moment.extend(column("second_moment"))
-        self.surrogate_expected_loss.extend(column("surrogate_expected_loss"))
-        self.usefulness_share.extend(column("usefulness_share"))
         self.surrogate_version.extend(column("surrogate_version"))
         self.arrival_mark.extend(column("arrival_mark"))
         self.draw_time_ms.extend(column("draw_time_ms"))

@@ -19,7 +19,7 @@ from .estimators import (
 from .gate import MAX_LABELS_HINT, GateDecision, Verdict, check_gate
 from .losses import CROSS_ENTROPY_CLIP, PROBABILITY_SUM_TOLERANCE, LossKind, LossSpec
 from .normal import normal_cdf, normal_quantile
-from .reliance import MIN_DRAWS, Reliance, choose_reliance
+from .reliance import MIN_DRAWS, Reliance, choose_reliance, cross_fitted_scores
 from .selection import (
     DEFAULT_FLOOR,
     DrawBatch,
@@ -70,6 +70,7 @@ __all__ = [
     "check_gate",
     "choose_reliance",
     "cold_start_surrogate",
+    "cross_fitted_scores",
     "concatenate_scores",
     "draw_batch",
     "empirical_bernstein_path",

@@ -71,8 +71,6 @@ DRAW_COLUMNS: tuple[str, ...] = (
     "loss",
     "label_time_ms",
     "skip_reason",
-    "surrogate_expected_loss",
-    "usefulness_share",
 )
 # The columns that change after a draw is made (lease, outcome).
 DRAW_UPDATE_COLUMNS: tuple[str, ...] = (

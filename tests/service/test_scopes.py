@@ -73,17 +73,38 @@ def test_fully_labeled_pool_gives_exact_scope_risks(scoped: Harness, cancer_pool
             )
         segments, times = (np.array(c) for c in _columns(_N))
         predicted = data.outputs[:_N].argmax(axis=1)
+        modes = (
+            pb.ESTIMATOR_MODE_SURROGATE,
+            pb.ESTIMATOR_MODE_UNBIASED,
+            pb.ESTIMATOR_MODE_BALANCED,
+        )
         for scope, select in _SCOPES:
             mask = select(segments, times)
-            # Every item is labeled, so the plug-in is the exact scope risk (sklearn).
+            # Every item is labeled (a census), so every mode returns the exact scope risk
+            # (scikit-learn's zero_one_loss) and both intervals collapse onto it.
             truth = zero_one_loss(data.labels[:_N][mask], predicted[mask])
-            estimate = stubs.call(
-                stubs.estimates.GetEstimate,
-                pb.GetEstimateRequest(pool=_POOL, mode=pb.ESTIMATOR_MODE_SURROGATE, **scope),
-            )
-            assert estimate.items_in_scope == int(mask.sum())
-            assert estimate.risk == pytest.approx(truth, abs=1e-12), scope
-            assert estimate.labels_used == int(mask.sum())
+            for mode in modes:
+                estimate = stubs.call(
+                    stubs.estimates.GetEstimate,
+                    pb.GetEstimateRequest(pool=_POOL, mode=mode, **scope),
+                )
+                assert estimate.items_in_scope == int(mask.sum())
+                assert estimate.labels_used == int(mask.sum())
+                for value in (
+                    estimate.risk,
+                    estimate.lower,
+                    estimate.upper,
+                    estimate.anytime_lower,
+                    estimate.anytime_upper,
+                ):
+                    assert value == pytest.approx(truth, abs=1e-9), (scope, mode)
+                gate = stubs.call(
+                    stubs.estimates.CheckGate,
+                    pb.CheckGateRequest(
+                        pool=_POOL, max_risk=truth + 0.01, bound=pb.BOUND_KIND_FIXED_TIME, **scope
+                    ),
+                )
+                assert gate.verdict == pb.VERDICT_PASS, (scope, gate.reason)
 
 
 def test_window_terms_follow_the_definition(scoped: Harness, cancer_pool: Dataset) -> None:
