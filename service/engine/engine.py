@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import contextlib
 import hashlib
+import json
 import logging
 import secrets
 import sqlite3
@@ -38,7 +39,7 @@ from leadline.service.config import ServerConfig
 from leadline.service.engine import ingest, labeling, queries
 from leadline.service.engine.gates import hint_within_scope
 from leadline.service.engine.ingest import now_ms
-from leadline.service.engine.pool import LABELED, PoolSettings, PoolState
+from leadline.service.engine.pool import AVAILABLE, LABELED, PoolSettings, PoolState
 from leadline.service.engine.results import (
     AssignmentInfo,
     DrawInfo,
@@ -59,14 +60,19 @@ from leadline.service.engine.results import (
 from leadline.service.engine.scopes import Scope, ScopeInputs, build_scope_inputs
 from leadline.service.errors import AlreadyExists, InvalidArgument, NotFound, Unavailable
 from leadline.service.estimation import (
+    MIN_DRAWS,
     BoundKind,
     EstimatorMode,
+    LossSpec,
+    Reliance,
     Surrogate,
     SurrogateScores,
     SurrogateSettings,
     ValidationRows,
     check_gate,
+    choose_reliance,
     concatenate_scores,
+    cross_fitted_scores,
     estimate_risk,
     fit_surrogate,
     worst_squared_deviation_of,
@@ -133,6 +139,49 @@ def _score_rows(surrogate: Surrogate, features: np.ndarray, outputs: np.ndarray)
     return concatenate_scores(parts)
 
 
+def _rows_of(scores: SurrogateScores, rows: np.ndarray) -> SurrogateScores:
+    worst = scores.worst_squared_deviation
+    return SurrogateScores(
+        scores.expected_loss[rows],
+        scores.residual_second_moment[rows],
+        scores.spread[rows],
+        None if worst is None else worst[rows],
+    )
+
+
+def _choose_reliance(
+    spec: LossSpec,
+    features: np.ndarray,
+    outputs: np.ndarray,
+    labels: np.ndarray,
+    *,
+    losses: np.ndarray,
+    probabilities: np.ndarray,
+    remaining_counts: np.ndarray,
+    candidates: SurrogateScores,
+    floor: float,
+    seed: int,
+    settings: SurrogateSettings,
+    validation: ValidationRows,
+) -> Reliance:
+    """The reliance guard at a refit: the labeled draws scored honestly (cross-fitted, the
+    validation rows in every fold) against the new surrogate's scores of the candidates."""
+    if losses.shape[0] < MIN_DRAWS:
+        return Reliance(floor=floor)
+    honest = cross_fitted_scores(
+        spec, features, outputs, labels, seed=seed, settings=settings, validation=validation
+    )
+    return choose_reliance(
+        losses=losses,
+        honest=honest,
+        probabilities=probabilities,
+        remaining_counts=remaining_counts,
+        candidates=candidates,
+        loss_bound=spec.bound,
+        minimum_floor=floor,
+    )
+
+
 class Engine:
     """All pools of one data directory. Thread-safe; one instance per server."""
 
@@ -186,7 +235,9 @@ class Engine:
             )
         model = store.load_latest_model(reader, settings.pool_id)
         if model is not None:
-            _, label_count, data = model
+            _, label_count, data, reliance = model
+            if reliance:
+                pool.reliance = Reliance(**json.loads(reliance))
             pool.surrogate = Surrogate.from_bytes(pool.spec, data)
             pool.surrogate_label_count = label_count
         for chunk in store.load_items(
@@ -815,9 +866,7 @@ class Engine:
         cached = pool.cache.get(key)
         if cached is None:
             floor = pool.settings.selection_floor or self._config.selection_floor
-            cached = build_scope_inputs(
-                pool, scope, reliance=labeling.current_reliance(pool, floor=floor)
-            )
+            cached = build_scope_inputs(pool, scope, reliance=pool.reliance_for(floor))
             pool.cache[key] = cached
         return cached
 
@@ -980,6 +1029,11 @@ class Engine:
             labeled = np.flatnonzero(draws.status.view == LABELED)
             rows = draws.row.view[labeled]
             labels = draws.label.view[labeled].copy()
+            losses = draws.loss.view[labeled].copy()
+            probabilities = draws.probability.view[labeled].copy()
+            remaining_counts = draws.remaining_count.view[labeled].astype(np.float64)
+            available = pool.status.view == AVAILABLE
+            floor = pool.settings.selection_floor or self._config.selection_floor
             # Views of rows that never change once written (append-only columns).
             validation = ValidationRows(
                 features=pool.validation_features.view,
@@ -993,6 +1047,7 @@ class Engine:
             epoch = pool.epoch
             seed = int((pool.seed + version) % (2**31 - 1))
         try:
+            settings = SurrogateSettings(num_threads=self._config.surrogate_threads)
             classification = pool.settings.is_classification
             typed = labels.astype(np.int64) if classification else labels
             if classification:
@@ -1008,10 +1063,24 @@ class Engine:
                 typed,
                 version=version,
                 seed=seed,
-                settings=SurrogateSettings(num_threads=self._config.surrogate_threads),
+                settings=settings,
                 validation=validation,
             )
             scores = _score_rows(surrogate, features[:n0], outputs[:n0])
+            reliance = _choose_reliance(
+                pool.spec,
+                features[rows],
+                outputs[rows],
+                typed,
+                losses=losses,
+                probabilities=probabilities,
+                remaining_counts=remaining_counts,
+                candidates=_rows_of(scores, np.flatnonzero(available[:n0])),
+                floor=floor,
+                seed=seed,
+                settings=settings,
+                validation=validation,
+            )
             data = surrogate.to_bytes()
             with pool.lock:
                 if pool.deleted or self._closed or pool.epoch != epoch or pool.reload_pending:
@@ -1019,7 +1088,14 @@ class Engine:
                     # reload since the fit began: its labels may include unsaved ones.
                     return False
                 future = self._db.submit(
-                    store.insert_model(pool.pool_id, version, int(labels.shape[0]), data, now_ms()),
+                    store.insert_model(
+                        pool.pool_id,
+                        version,
+                        int(labels.shape[0]),
+                        data,
+                        now_ms(),
+                        reliance=json.dumps(reliance.to_json(), sort_keys=True),
+                    ),
                     lane=pool.lane,
                 )
             try:
@@ -1060,6 +1136,7 @@ class Engine:
                     worst_squared_deviation_of(rescored, loss_bound=pool.loss_bound)
                 )
                 pool.surrogate = surrogate
+                pool.reliance = reliance
                 pool.surrogate_label_count = int(labels.shape[0])
                 pool.last_fit_time = time.monotonic()
                 pool.touch()

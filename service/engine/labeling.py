@@ -32,31 +32,11 @@ from leadline.service.errors import (
     PermissionDenied,
     ServiceError,
 )
-from leadline.service.estimation import (
-    Reliance,
-    SurrogateScores,
-    choose_reliance,
-    draw_batch,
-    usefulness,
-)
+from leadline.service.estimation import SurrogateScores, draw_batch, usefulness
 from leadline.service.store import records as store
 from leadline.service.store.records import Write
 
-__all__ = ["acquire", "current_reliance", "release", "submit"]
-
-
-def current_reliance(pool: PoolState, *, floor: float) -> Reliance:
-    """The reliance guard's choice from the pool's labeled draws so far (O(draws))."""
-    draws = pool.draws
-    labeled = draws.status.view == LABELED
-    return choose_reliance(
-        losses=draws.loss.view[labeled],
-        surrogate_expected_loss=draws.surrogate_expected_loss.view[labeled],
-        probabilities=draws.probability.view[labeled],
-        remaining_counts=draws.remaining_count.view[labeled].astype(np.float64),
-        usefulness_shares=draws.usefulness_share.view[labeled],
-        minimum_floor=floor,
-    )
+__all__ = ["acquire", "release", "submit"]
 
 
 def acquire(
@@ -254,16 +234,15 @@ def _new_draws(
         spread=pool.spread.view[candidates],
         worst_squared_deviation=pool.worst_deviation.view[candidates],
     )
-    # The guard picks the control variate h (g shrunk towards a constant) and the floor
-    # from the labeled draws so far: predictable, so every estimator keeps its guarantees.
-    reliance = current_reliance(pool, floor=floor)
+    # The reliance guard chose, at the last refit, the control variate h (g shrunk towards
+    # a constant) and the floor from the labels of that time: fixed before these draws.
+    reliance = pool.reliance_for(floor)
     scores = reliance.apply(surrogate_scores, loss_bound=pool.loss_bound)
     h = scores.expected_loss
     worst = scores.worst_squared_deviation
     assert worst is not None
     # The hedged rule: the label-efficiency benchmark measured it against the plain one.
     u = usefulness(scores, loss_bound=pool.loss_bound)
-    total_u = float(u.sum())
     start = len(pool.draws)
     rng = np.random.default_rng([pool.seed, start])
     batch = draw_batch(
@@ -301,12 +280,6 @@ def _new_draws(
                 "min_probability": min(float(batch.min_probability[j]), 1.0),
                 "expected_loss": float(h[batch.positions[j]]),
                 "second_moment": float(scores.residual_second_moment[batch.positions[j]]),
-                "surrogate_expected_loss": float(g[batch.positions[j]]),
-                "usefulness_share": (
-                    float(u[batch.positions[j]]) * len(candidates) / total_u
-                    if total_u > 0.0
-                    else 1.0
-                ),
                 "surrogate_version": version,
                 "arrival_mark": pool.item_count,
                 "draw_time_ms": now,

@@ -18,6 +18,7 @@ from leadline.service.estimation import (
     EstimatorMode,
     LossKind,
     LossSpec,
+    Reliance,
     Surrogate,
     cold_start_surrogate,
 )
@@ -195,6 +196,8 @@ class PoolState:
     cold: Surrogate = field(init=False)
     surrogate: Surrogate = field(init=False)
     surrogate_label_count: int = 0
+    #: The reliance guard's choice made with the surrogate in force (None: full reliance).
+    reliance: Reliance | None = None
     last_fit_time: float = 0.0
     deleted: bool = False
 
@@ -266,6 +269,16 @@ class PoolState:
             "last_fit_time",
         }
     )
+
+    def reliance_for(self, floor: float) -> Reliance:
+        """The reliance in force, its floor at least ``floor`` (the configured minimum)."""
+        if self.reliance is None:
+            return Reliance(floor=floor)
+        return Reliance(
+            coefficient=self.reliance.coefficient,
+            constant=self.reliance.constant,
+            floor=max(self.reliance.floor, floor),
+        )
 
     def adopt(self, fresh: PoolState) -> None:
         """Take over ``fresh``'s state (rebuilt from the store) in place; caller holds the lock.

@@ -19,7 +19,13 @@ from .estimators import (
 from .gate import MAX_LABELS_HINT, GateDecision, Verdict, check_gate
 from .losses import CROSS_ENTROPY_CLIP, PROBABILITY_SUM_TOLERANCE, LossKind, LossSpec
 from .normal import normal_cdf, normal_quantile
-from .reliance import MIN_DRAWS, Reliance, choose_reliance, cross_fitted_scores
+from .reliance import (
+    MIN_DRAWS,
+    PRIOR_DRAWS,
+    Reliance,
+    choose_reliance,
+    cross_fitted_scores,
+)
 from .selection import (
     DEFAULT_FLOOR,
     DrawBatch,
@@ -50,6 +56,7 @@ __all__ = [
     "DRAW_SKIPPED",
     "MAX_LABELS_HINT",
     "MIN_DRAWS",
+    "PRIOR_DRAWS",
     "PROBABILITY_SUM_TOLERANCE",
     "BoundKind",
     "DrawBatch",

@@ -40,7 +40,7 @@ import numpy as np
 from ._checks import check_finite_array, check_fraction, describe
 from .losses import LossSpec
 from .selection import usefulness
-from .surrogate import SurrogateScores, SurrogateSettings, fit_surrogate
+from .surrogate import SurrogateScores, SurrogateSettings, ValidationRows, fit_surrogate
 
 __all__ = [
     "MIN_DRAWS",
@@ -122,13 +122,13 @@ def cross_fitted_scores(
     seed: int,
     settings: SurrogateSettings | None = None,
     folds: int = CROSS_FIT_FOLDS,
+    validation: ValidationRows | None = None,
 ) -> SurrogateScores:
     """Each labeled row scored by a surrogate fitted on the other folds only (an honest,
-    out-of-sample prediction of what the surrogate knows). Members per fold: at most 2."""
-    settings = replace(
-        settings or SurrogateSettings(),
-        ensemble_size=min((settings or SurrogateSettings()).ensemble_size, 2),
-    )
+    out-of-sample prediction of what the surrogate knows); ``validation`` rows, which are
+    not pool items, teach every fold. Members per fold: at most 2."""
+    base = settings or SurrogateSettings()
+    settings = replace(base, ensemble_size=min(base.ensemble_size, 2))
     out = spec.check_outputs(outputs)
     y = spec.check_labels(labels, out.shape[0])
     x = check_finite_array("features", features, ndim=2)
@@ -145,7 +145,14 @@ def cross_fitted_scores(
         if not np.any(held):
             continue
         model = fit_surrogate(
-            spec, x[~held], out[~held], y[~held], version=0, seed=seed + k, settings=settings
+            spec,
+            x[~held],
+            out[~held],
+            y[~held],
+            version=0,
+            seed=seed + k,
+            settings=settings,
+            validation=validation,
         )
         part = model.score(x[held], out[held])
         expected[held] = part.expected_loss

@@ -234,13 +234,21 @@ def update_draws(pool_id: str, draws: Sequence[dict[str, Any]]) -> Write:
 
 
 def insert_model(
-    pool_id: str, version: int, label_count: int, data: bytes, create_time_ms: int
+    pool_id: str,
+    version: int,
+    label_count: int,
+    data: bytes,
+    create_time_ms: int,
+    *,
+    reliance: str = "",
 ) -> Write:
+    """``reliance``: the reliance guard's choice for this version, as JSON ('' = full)."""
+
     def write(connection: sqlite3.Connection) -> None:
         connection.execute(
-            "INSERT INTO models (pool_id, version, label_count, data, create_time_ms)"
-            " VALUES (?, ?, ?, ?, ?)",
-            (pool_id, version, label_count, data, create_time_ms),
+            "INSERT INTO models (pool_id, version, label_count, data, create_time_ms, reliance)"
+            " VALUES (?, ?, ?, ?, ?, ?)",
+            (pool_id, version, label_count, data, create_time_ms, reliance),
         )
 
     return write
@@ -501,11 +509,12 @@ def load_draws(connection: sqlite3.Connection, pool_id: str) -> list[dict[str, A
 
 def load_latest_model(
     connection: sqlite3.Connection, pool_id: str
-) -> tuple[int, int, bytes] | None:
-    """(version, label_count, data) of the newest surrogate, or None at cold start."""
+) -> tuple[int, int, bytes, str] | None:
+    """(version, label_count, data, reliance JSON) of the newest surrogate, or None at cold
+    start."""
     row = connection.execute(
-        "SELECT version, label_count, data FROM models WHERE pool_id = ?"
+        "SELECT version, label_count, data, reliance FROM models WHERE pool_id = ?"
         " ORDER BY version DESC LIMIT 1",
         (pool_id,),
     ).fetchone()
-    return None if row is None else (int(row[0]), int(row[1]), bytes(row[2]))
+    return None if row is None else (int(row[0]), int(row[1]), bytes(row[2]), str(row[3]))

@@ -153,6 +153,9 @@ _MIGRATIONS: tuple[tuple[str, ...], ...] = (
             PRIMARY KEY (pool_id, row)
         )""",
     ),
+    # 5: the reliance guard's choice made at each refit (JSON: coefficient, constant,
+    # floor), kept with the surrogate it governs; '' = full reliance (models saved before).
+    ("ALTER TABLE models ADD COLUMN reliance TEXT NOT NULL DEFAULT ''",),
 )
 
 SCHEMA_VERSION = len(_MIGRATIONS)

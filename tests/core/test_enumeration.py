@@ -4,8 +4,10 @@ Outside source: the design-unbiasedness of the difference estimator under sequen
 sampling (E[a_m | past] = pool risk for any adaptive proposal and predictable control
 variate; "Model Assisted Survey Sampling", 1992, ch. 6, and "On Statistical Bias in Active
 Learning: How and When to Fix It", ICLR 2021, Theorem 1 for g = 0) and the LURE weights'
-mean of 1 (same ICLR 2021 paper, Lemma 1 / Theorem 2). Enumeration makes the check exact,
-so the tolerance is rounding only (1e-12).
+mean of 1 (same ICLR 2021 paper, Lemma 1 / Theorem 2); the sample mean of a simple random
+sample without replacement as the unbiased estimator of a finite-population mean
+("Sampling Techniques", 3rd ed., 1977, Theorem 2.1). Enumeration makes the check exact, so
+the tolerance is rounding only (1e-12).
 """
 
 from __future__ import annotations
@@ -24,9 +26,11 @@ from leadline.service.estimation import (
     LossKind,
     LossSpec,
     PlugInSums,
+    Reliance,
     SurrogateScores,
     SurrogateSettings,
     ValidationRows,
+    choose_reliance,
     cold_start_surrogate,
     estimate_risk,
     fit_surrogate,
@@ -57,18 +61,24 @@ def _proposal(h: np.ndarray, remaining: list[int], history: list[int]) -> np.nda
     return (1.0 - _FLOOR) * u / u.sum() + _FLOOR / len(remaining)
 
 
-def _enumerate(losses: np.ndarray, draws: int, scope: np.ndarray):
-    """Yield (probability, DrawTerms, sequence) for every ordered sequence of ``draws``."""
+def _enumerate(losses: np.ndarray, draws: int, scope: np.ndarray, *, counts: bool = True):
+    """Yield (probability, DrawTerms, sequence) for every ordered sequence of ``draws``.
+
+    ``counts``: log each draw's candidate count (the estimator then uses its
+    finite-population weights; without counts it weights the terms equally)."""
     n = losses.shape[0]
     for sequence in itertools.permutations(range(n), draws):
         probability = 1.0
         history: list[int] = []
-        fields: dict[str, list[float]] = {k: [] for k in ("q", "h", "remaining", "low", "high")}
+        fields: dict[str, list[float]] = {
+            k: [] for k in ("q", "h", "remaining", "low", "high", "count")
+        }
         for step, item in enumerate(sequence):
             remaining = [j for j in range(n) if j not in history]
             h = _surrogate(step, history, losses)
             q = _proposal(h, remaining, history)
             q_item = q[remaining.index(item)]
+            fields["count"].append(float(len(remaining)))
             probability *= q_item
             fields["q"].append(q_item)
             fields["h"].append(h[item])
@@ -88,6 +98,7 @@ def _enumerate(losses: np.ndarray, draws: int, scope: np.ndarray):
             loss=losses[idx],
             correction_low=np.array(fields["low"]),
             correction_high=np.array(fields["high"]),
+            remaining_count=np.array(fields["count"]) if counts else None,
         )
         yield probability, terms, sequence
 
@@ -108,13 +119,14 @@ _POOLS = [
 ]
 
 
+@pytest.mark.parametrize("counts", [True, False], ids=["weighted", "equal"])
 @pytest.mark.parametrize("losses", _POOLS, ids=["n5", "n6", "n7"])
 @pytest.mark.parametrize("draws", [1, 2, 3])
-def test_unbiased_estimate_is_exactly_unbiased_over_every_draw_sequence(losses, draws):
+def test_unbiased_estimate_is_exactly_unbiased_over_every_draw_sequence(losses, draws, counts):
     scope = np.ones(losses.shape[0], dtype=bool)
     total_probability = 0.0
     expectation = 0.0
-    for probability, terms, _ in _enumerate(losses, draws, scope):
+    for probability, terms, _ in _enumerate(losses, draws, scope, counts=counts):
         estimate = estimate_risk(
             terms,
             _sums(losses, scope),
@@ -359,3 +371,166 @@ def test_unbiased_with_a_validation_taught_surrogate_that_refits_on_pool_labels(
     # The validation rows really taught it: the first draw's surrogate is not the cold start.
     cold = cold_start_surrogate(spec).score(features, outputs).expected_loss
     assert not np.allclose(scores_after([]).expected_loss, cold)
+
+
+@pytest.mark.parametrize("losses", _POOLS[:2], ids=["n5", "n6"])
+def test_labeling_every_item_gives_the_exact_risk_on_every_draw_sequence(losses):
+    """A census: the finite-population weights put everything on the last, exact term."""
+    n = losses.shape[0]
+    scope = np.ones(n, dtype=bool)
+    for _, terms, _ in _enumerate(losses, n, scope):
+        estimate = estimate_risk(
+            terms,
+            _sums(losses, scope),
+            mode=EstimatorMode.UNBIASED,
+            confidence=0.9,
+            loss_bound=_BOUND,
+        )
+        assert abs(estimate.unclipped_risk - losses.mean()) < 1e-12
+
+
+@pytest.mark.parametrize("draws", [1, 3, 5, 6])
+def test_uniform_draws_without_a_control_variate_give_the_sample_mean(draws):
+    """q = 1/|U_m| and h = 0: the weighted difference estimator is the sample mean, the
+    textbook unbiased estimator of simple random sampling ("Sampling Techniques", 1977)."""
+    losses = _POOLS[1]
+    n = losses.shape[0]
+    rng = np.random.default_rng(draws)
+    for _ in range(5):
+        order = rng.permutation(n)[:draws]
+        remaining = n - np.arange(draws)
+        zeros = np.zeros(draws)
+        terms = DrawTerms(
+            probability=1.0 / remaining,
+            expected_loss=zeros,
+            remaining_expected_loss=zeros,
+            late_expected_loss=zeros,
+            late_count=np.zeros(draws, dtype=np.int64),
+            in_scope=np.ones(draws, dtype=bool),
+            status=np.full(draws, DRAW_LABELED),
+            loss=losses[order],
+            correction_low=zeros,
+            correction_high=_BOUND * remaining.astype(float),
+            remaining_count=remaining,
+        )
+        estimate = estimate_risk(
+            terms,
+            PlugInSums(n, 0.0, 0.0, 0.0),
+            mode=EstimatorMode.UNBIASED,
+            confidence=0.9,
+            loss_bound=_BOUND,
+        )
+        assert estimate.unclipped_risk == pytest.approx(losses[order].mean(), abs=1e-12)
+
+
+def _scores(g: np.ndarray) -> SurrogateScores:
+    """Scores whose predicted spread is the Bhatia-Davis bound of a loss in [0, 1]."""
+    g = np.clip(g, 0.0, _BOUND)
+    return SurrogateScores(g, g * (_BOUND - g), np.zeros_like(g), np.maximum(g, 1 - g) ** 2)
+
+
+def _guarded_enumeration(losses: np.ndarray, draws: int):
+    """Every sequence of a design whose control variate and floor come from
+    ``choose_reliance`` on the draws before (min_draws = 1: it acts from the 2nd draw),
+    with the honest scores of the labeled items taken from the surrogate of the moment."""
+    n = losses.shape[0]
+    for sequence in itertools.permutations(range(n), draws):
+        probability = 1.0
+        history: list[int] = []
+        log: dict[str, list[float]] = {
+            k: [] for k in ("q", "h", "remaining", "low", "high", "count")
+        }
+        changed = False
+        for step, item in enumerate(sequence):
+            remaining = [j for j in range(n) if j not in history]
+            g = _surrogate(step, history, losses)
+            reliance = choose_reliance(
+                losses=losses[history],
+                honest=_scores(g[history]),
+                probabilities=np.array(log["q"]),
+                remaining_counts=np.array(log["count"]),
+                candidates=_scores(g[remaining]),
+                loss_bound=_BOUND,
+                minimum_floor=_FLOOR,
+                min_draws=1,
+            )
+            changed = changed or reliance != Reliance(floor=_FLOOR)
+            h = reliance.control_variate(g)
+            u = usefulness(
+                reliance.apply(_scores(g[remaining]), loss_bound=_BOUND), loss_bound=_BOUND
+            )
+            q = (1.0 - reliance.floor) * u / u.sum() + reliance.floor / len(remaining)
+            position = remaining.index(item)
+            probability *= q[position]
+            log["q"].append(q[position])
+            log["h"].append(h[item])
+            log["remaining"].append(float(h[remaining].sum()))
+            log["low"].append(float(np.min(-h[remaining] / q)))
+            log["high"].append(float(np.max((_BOUND - h[remaining]) / q)))
+            log["count"].append(float(len(remaining)))
+            history.append(item)
+        idx = np.array(sequence)
+        terms = DrawTerms(
+            probability=np.array(log["q"]),
+            expected_loss=np.array(log["h"]),
+            remaining_expected_loss=np.array(log["remaining"]),
+            late_expected_loss=np.zeros(draws),
+            late_count=np.zeros(draws, dtype=np.int64),
+            in_scope=np.ones(draws, dtype=bool),
+            status=np.full(draws, DRAW_LABELED),
+            loss=losses[idx],
+            correction_low=np.array(log["low"]),
+            correction_high=np.array(log["high"]),
+            remaining_count=np.array(log["count"]),
+        )
+        yield probability, terms, changed
+
+
+@pytest.mark.parametrize("losses", _POOLS, ids=["n5", "n6", "n7"])
+def test_reliance_guard_keeps_the_estimate_exactly_unbiased(losses):
+    """The guard changes the control variate and floor between draws from past draws only."""
+    expectation = 0.0
+    total = 0.0
+    moved = False
+    for probability, terms, changed in _guarded_enumeration(losses, 3):
+        estimate = estimate_risk(
+            terms,
+            PlugInSums(losses.shape[0], 0.0, 0.0, 0.0),
+            mode=EstimatorMode.UNBIASED,
+            confidence=0.9,
+            loss_bound=_BOUND,
+        )
+        expectation += probability * estimate.unclipped_risk
+        total += probability
+        moved = moved or changed
+    assert moved, "the guard never moved: the test would prove nothing"
+    assert total == pytest.approx(1.0, abs=1e-12)
+    assert abs(expectation - losses.mean()) < 1e-12
+
+
+def test_reliance_guard_drops_a_surrogate_that_predicts_the_losses_backwards():
+    """Honest predictions that run against the losses: coefficient 0 (the constant alone);
+    honest predictions close to the losses: full reliance."""
+    rng = np.random.default_rng(5)
+    losses = rng.uniform(0.0, 1.0, size=200)
+    candidates = _scores(rng.uniform(0.0, 1.0, size=1000))
+    common = {
+        "probabilities": np.full(200, 1e-3),
+        "remaining_counts": np.full(200, 1000.0),
+        "candidates": candidates,
+        "loss_bound": _BOUND,
+        "minimum_floor": 0.3,
+    }
+    backwards = choose_reliance(losses=losses, honest=_scores(1.0 - losses), **common)
+    assert backwards.coefficient == 0.0
+    assert backwards.constant == pytest.approx(losses.mean(), abs=0.02)
+    good = choose_reliance(
+        losses=losses, honest=_scores(losses + rng.normal(0.0, 0.02, size=200)), **common
+    )
+    assert good.coefficient == 1.0 and good.floor == 0.3
+    few = choose_reliance(
+        losses=losses[:10],
+        honest=_scores(1.0 - losses[:10]),
+        **{**common, "probabilities": np.full(10, 1e-3), "remaining_counts": np.full(10, 1000.0)},
+    )
+    assert few == Reliance(floor=0.3)  # below MIN_DRAWS: full reliance

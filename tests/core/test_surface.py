@@ -23,6 +23,8 @@ _ADDED = {
     "worst_squared_deviation", "worst_squared_deviation_of",
     "ValidationRows",  # docs/core-api.md, surrogate.py (validation items)
     "estimate_one_sided",  # docs/core-api.md: the gate's one-sided estimate
+    # docs/core-api.md, reliance.py (the reliance guard)
+    "MIN_DRAWS", "PRIOR_DRAWS", "Reliance", "choose_reliance", "cross_fitted_scores",
 }  # fmt: skip
 
 
