@@ -40,6 +40,7 @@ from benchmarks.scenarios import Scenario
 from leadline.service.estimation import (
     DEFAULT_FLOOR,
     DRAW_LABELED,
+    BoundKind,
     DrawTerms,
     EstimatorMode,
     LossSpec,
@@ -47,7 +48,9 @@ from leadline.service.estimation import (
     Reliance,
     SurrogateScores,
     SurrogateSettings,
+    Verdict,
     anytime_path,
+    check_gate,
     choose_reliance,
     cold_start_surrogate,
     cross_fitted_scores,
@@ -139,6 +142,8 @@ class RepetitionResult:
     """Per method (rows, ``METHODS`` order) and budget (columns): estimate and 90% interval.
 
     ``anytime_lower`` / ``anytime_upper``: (len(ANYTIME_METHODS), max_budget) paths;
+    ``gate_pass``: whether a single-look FIXED_TIME gate at the true risk (max_risk = the
+    pool's risk, 90% one-sided) said PASS, which is wrong by construction;
     ``seconds``: wall time of the repetition; ``fit_seconds``: time in surrogate fits+scores.
     """
 
@@ -152,6 +157,7 @@ class RepetitionResult:
     balanced_weight: np.ndarray
     seconds: float
     fit_seconds: float
+    gate_pass: np.ndarray | None = None
 
 
 @dataclass
@@ -345,6 +351,27 @@ def _iid_row(
     return est, lo, hi
 
 
+def _wrong_pass(
+    terms: DrawTerms,
+    sums: PlugInSums,
+    mode: EstimatorMode,
+    confidence: float,
+    bound: float,
+    truth: float,
+) -> bool:
+    """A single-look FIXED_TIME gate at max_risk = the true risk: PASS is a wrong PASS."""
+    decision = check_gate(
+        terms,
+        sums,
+        max_risk=truth,
+        confidence=confidence,
+        bound=BoundKind.FIXED_TIME,
+        mode=mode,
+        loss_bound=bound,
+    )
+    return decision.verdict is Verdict.PASS
+
+
 def _iid_terms(losses: np.ndarray, pool_size: int, bound: float) -> DrawTerms:
     """Uniform draws without replacement as draw terms with no control variate (h = 0):
     q_m = 1/|U_m|, so the per-draw range of (L - 0)/q is [0, B |U_m|]."""
@@ -500,6 +527,8 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
 
     shape = (len(METHODS), len(budgets))
     est, lo, hi = np.full(shape, np.nan), np.full(shape, np.nan), np.full(shape, np.nan)
+    gate_pass = np.full(shape, np.nan)
+    truth = float(scenario.true_risk)
     balanced_weight = np.full(len(budgets), np.nan)
     row = {name: i for i, name in enumerate(METHODS)}
 
@@ -509,6 +538,8 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
     iid_items = iid_rng.permutation(n)[: config.max_budget]
     iid_losses = losses[iid_items]
     est[row["iid"]], lo[row["iid"]], hi[row["iid"]] = _iid_row(iid_losses, n, budgets, conf)
+    # One-sided at conf: the two-sided interval at 2 conf - 1 has the same upper edge.
+    gate_pass[row["iid"]] = _iid_row(iid_losses, n, budgets, 2 * conf - 1)[2] < truth
 
     for b, m in enumerate(budgets):
         terms = lead.terms(losses, m)
@@ -522,6 +553,7 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             est[row[name], b], lo[row[name], b], hi[row[name], b] = r.risk, r.lower, r.upper
             if name == "balanced":
                 balanced_weight[b] = r.unbiased_weight
+            gate_pass[row[name], b] = _wrong_pass(terms, sums, mode, conf, bound, truth)
         if not config.with_baselines:
             continue
         for name in ("oracle", "gate"):
@@ -533,6 +565,14 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
                 loss_bound=bound,
             )
             est[row[name], b], lo[row[name], b], hi[row[name], b] = r.risk, r.lower, r.upper
+            gate_pass[row[name], b] = _wrong_pass(
+                runs[name].terms(losses, m),
+                runs[name].sums_at[m],
+                EstimatorMode.UNBIASED,
+                conf,
+                bound,
+                truth,
+            )
         lure = runs["lure"]
         weights = lure_weights(np.asarray(lure.probability[:m]), n)
         weighted = weights * losses[np.asarray(lure.order[:m], dtype=np.int64)]
@@ -543,6 +583,8 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             centre - half,
             centre + half,
         )
+        one_sided = stats.norm.ppf(conf) * weighted.std(ddof=1) / np.sqrt(m)
+        gate_pass[row["lure"], b] = centre + one_sided < truth
 
     path_len = config.max_budget
     any_lo = np.full((len(ANYTIME_METHODS), path_len), np.nan)
@@ -569,4 +611,5 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
         balanced_weight=balanced_weight,
         seconds=time.perf_counter() - started,
         fit_seconds=fit_seconds,
+        gate_pass=gate_pass,
     )

@@ -96,6 +96,9 @@ class ScenarioSummary:
     balanced_weight: np.ndarray  # (len(budgets),) mean lambda of BALANCED
     seconds_per_repetition: float
     fit_share: float
+    # Share of runs where a single-look FIXED_TIME gate at the true risk said PASS (wrong).
+    wrong_pass: np.ndarray | None = None
+    hard: bool = False
 
     def at(self, metric: str, method: str, budget: int) -> float:
         return float(getattr(self, metric)[METHODS.index(method), self.budgets.index(budget)])
@@ -148,6 +151,8 @@ def _summarize(
     idx = np.asarray(budgets) - 1
     anytime_width = np.nanmean(any_hi[:, :, idx] - any_lo[:, :, idx], axis=0)
 
+    passes = [r.gate_pass for r in results if r.gate_pass is not None]
+    wrong_pass = np.nanmean(np.stack(passes), axis=0) if passes else None
     seconds = float(np.mean([r.seconds for r in results]))
     fit = float(np.sum([r.fit_seconds for r in results]) / max(1e-9, seconds * len(results)))
     return ScenarioSummary(
@@ -170,6 +175,8 @@ def _summarize(
         balanced_weight=np.nanmean(np.stack([r.balanced_weight for r in results]), axis=0),
         seconds_per_repetition=seconds,
         fit_share=fit,
+        wrong_pass=wrong_pass,
+        hard=scenario.hard,
     )
 
 
@@ -186,74 +193,90 @@ def _fmt(x: float, digits: int = 2) -> str:
     return "n/a" if not np.isfinite(x) else f"{x:.{digits}f}"
 
 
+#: Fixed-time width at M = 100 and BALANCED relative cost at M = 100 of the well-behaved
+#: pools BEFORE the valid fixed-time interval and the reliance guard (BENCHMARKS.md of
+#: commit 1b8aa8f, full run of 300 repetitions: a t interval with a model-guarded variance).
+#: The honest-intervals issue bounds today's width by 1.3x these and the savings given back
+#: by 0.05.
+BEFORE_WIDTH_100: dict[str, dict[str, float]] = {
+    "digits_logistic": {"unbiased": 0.0637, "balanced": 0.0664},
+    "digits_weak_tree": {"unbiased": 0.1140, "balanced": 0.1198},
+    "breast_cancer": {"unbiased": 0.0507, "balanced": 0.0527},
+    "cost_matrix_triage": {"unbiased": 0.5138, "balanced": 0.5426},
+}
+BEFORE_BALANCED_COST_100: dict[str, float] = {
+    "digits_logistic": 0.50,
+    "digits_weak_tree": 0.54,
+    "breast_cancer": 0.75,
+    "cost_matrix_triage": 0.73,
+}
+
+
 def evaluate_targets(
     summaries: Sequence[ScenarioSummary],
     *,
     wall_seconds: float,
     quick: bool,
     eval_budget: int = 100,
-    coverage_from: int = 50,
 ) -> list[Target]:
-    """The issue's targets, measured at ``eval_budget`` (must be one of the budgets)."""
+    """This wave's targets, measured at ``eval_budget`` (must be one of the budgets)."""
     targets: list[Target] = []
     m = eval_budget
-    costs = {s.name: s.at("cost", "balanced", m) for s in summaries}
-    median = float(np.median(list(costs.values())))
-    worst_name = max(costs, key=lambda k: costs[k])
-    targets.append(
-        Target(
-            f"BALANCED relative cost at M={m}: median over scenarios <= 0.45",
-            f"median {_fmt(median)}",
-            median <= 0.45,
-        )
-    )
-    well = {
-        k: v
-        for k, v in costs.items()
-        if any(s.name == k and s.well_fit_classifier for s in summaries)
-    }
-    if well:
+    reps = min(s.repetitions for s in summaries)
+    se = (0.9 * 0.1 / reps) ** 0.5
+    for method in ("unbiased", "balanced"):
+        cells = [(s.name, b, s.at("coverage", method, b)) for s in summaries for b in s.budgets]
+        low = min(cells, key=lambda c: c[2])
         targets.append(
             Target(
-                f"BALANCED relative cost at M={m} <= 0.35 on well-fit classification scenarios",
-                ", ".join(f"{k} {_fmt(v)}" for k, v in well.items()),
-                max(well.values()) <= 0.35,
+                f"{method.upper()} 90% fixed-time coverage >= 0.87 at every M on every pool "
+                f"(Monte-Carlo SE {se:.3f})",
+                f"lowest {_fmt(low[2], 3)} ({low[0]}, M={low[1]})",
+                low[2] >= 0.87,
             )
         )
-    targets.append(
-        Target(
-            f"BALANCED relative cost at M={m} never above 1.0",
-            f"worst {worst_name} {_fmt(costs[worst_name])}",
-            costs[worst_name] <= 1.0,
-        )
-    )
-    ratios = {s.name: s.at("rmse", "unbiased", m) / s.at("rmse", "lure", m) for s in summaries}
-    good = [k for k, v in ratios.items() if v <= 0.8]
-    targets.append(
-        Target(
-            f"UNBIASED RMSE <= 0.8x LURE's at M={m} on most scenarios",
-            f"{len(good)}/{len(ratios)} scenarios; ratios "
-            + ", ".join(f"{k} {_fmt(v)}" for k, v in ratios.items()),
-            len(good) > len(ratios) / 2,
-        )
-    )
-    for method in ("unbiased", "balanced"):
-        cells = [
-            (s.name, b, s.at("coverage", method, b))
-            for s in summaries
-            for b in s.budgets
-            if b >= coverage_from
-        ]
-        if not cells:
-            continue
-        low = min(cells, key=lambda c: c[2])
-        high = max(cells, key=lambda c: c[2])
+        if all(s.wrong_pass is not None for s in summaries):
+            passes = {s.name: s.at("wrong_pass", method, m) for s in summaries}
+            worst = max(passes, key=lambda k: passes[k])
+            targets.append(
+                Target(
+                    f"{method.upper()} single-look FIXED_TIME gate at the true risk: wrong PASS "
+                    f"<= 0.10 + 2 SE at M={m} on every pool",
+                    f"worst {worst} {_fmt(passes[worst], 3)}",
+                    passes[worst] <= 0.10 + 2 * se,
+                )
+            )
+    ratios = {
+        (s.name, method): s.at("width", method, m) / before
+        for s in summaries
+        for method, before in BEFORE_WIDTH_100.get(s.name, {}).items()
+    }
+    if ratios:
         targets.append(
             Target(
-                f"{method.upper()} 90% fixed-time coverage in [0.87, 0.95] at M >= {coverage_from}",
-                f"range {_fmt(low[2])} ({low[0]}, M={low[1]}) to {_fmt(high[2])} "
-                f"({high[0]}, M={high[1]})",
-                low[2] >= 0.87 and high[2] <= 0.95,
+                f"fixed-time width at M={m} on the well-behaved pools <= 1.3x the width before "
+                "the valid interval",
+                ", ".join(f"{k[0]} {k[1]} {_fmt(v)}" for k, v in ratios.items()),
+                max(ratios.values()) <= 1.3,
+            )
+        )
+    costs = {s.name: s.at("cost", "balanced", m) for s in summaries}
+    worst_name = max(costs, key=lambda k: costs[k])
+    median = float(np.median(list(costs.values())))
+    targets.append(
+        Target(
+            f"BALANCED relative cost at M={m} <= 1.05 on every pool",
+            f"worst {worst_name} {_fmt(costs[worst_name])}; median {_fmt(median)}",
+            costs[worst_name] <= 1.05,
+        )
+    )
+    given_back = {k: costs[k] - v for k, v in BEFORE_BALANCED_COST_100.items() if k in costs}
+    if given_back:
+        targets.append(
+            Target(
+                f"BALANCED relative cost at M={m} gives back <= 0.05 of the earlier savings",
+                ", ".join(f"{k} {v:+.2f}" for k, v in given_back.items()),
+                max(given_back.values()) <= 0.05,
             )
         )
     k = ANYTIME_METHODS.index("unbiased")
@@ -261,9 +284,9 @@ def evaluate_targets(
     worst = min(rates, key=lambda n: rates[n])
     targets.append(
         Target(
-            "anytime bound (leadline's draws) never misses in >= 90% of runs, every M >= 10",
+            "anytime bound (leadline's draws) never misses in >= 95% of runs, every M >= 10",
             f"worst {worst} {_fmt(rates[worst], 3)}",
-            rates[worst] >= 0.90,
+            rates[worst] >= 0.95,
         )
     )
     g, i = ANYTIME_METHODS.index("gate"), ANYTIME_METHODS.index("iid")
@@ -276,7 +299,7 @@ def evaluate_targets(
             max(wr.values()) <= 1.0,
         )
     )
-    limit = 180.0 if quick else 1800.0
+    limit = 180.0 if quick else 3600.0
     targets.append(
         Target(
             f"wall time <= {int(limit // 60)} minutes ({'quick' if quick else 'full'} run)",
@@ -294,7 +317,9 @@ def format_table(summary: ScenarioSummary, *, markdown: bool) -> str:
         ["method"]
         + [f"RMSE@{m}" for m in budgets]
         + [f"cost@{m}" for m in budgets]
-        + ["|bias|@10", "|bias|@100", "width@100", "cov@50", "cov@100", "cov@200"]
+        + ["|bias|@100", "width@100"]
+        + [f"cov@{m}" for m in budgets]
+        + ["wrong PASS@100"]
     )
     rows: list[list[str]] = []
     for i, method in enumerate(METHODS):
@@ -314,14 +339,9 @@ def format_table(summary: ScenarioSummary, *, markdown: bool) -> str:
             value = getattr(summary, metric)[row_index, budgets.index(m)]
             return _fmt(abs(value) if absolute else value, digits)
 
-        row += [
-            cell("bias", 10, 4, absolute=True),
-            cell("bias", 100, 4, absolute=True),
-            cell("width", 100, 4),
-            cell("coverage", 50, 3),
-            cell("coverage", 100, 3),
-            cell("coverage", 200, 3),
-        ]
+        row += [cell("bias", 100, 4, absolute=True), cell("width", 100, 4)]
+        row += [cell("coverage", m, 3) for m in budgets]
+        row.append("-" if summary.wrong_pass is None else cell("wrong_pass", 100, 3))
         rows.append(row)
     if markdown:
         lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]

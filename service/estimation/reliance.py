@@ -56,6 +56,9 @@ MIN_DRAWS: int = 20
 #: Weight, in draws, of the prior belief that the surrogate is right (our choice, measured
 #: in the label-efficiency benchmark).
 PRIOR_DRAWS: int = 20
+#: Weight, in draws, of the prior that the configured floor is right: a larger floor must
+#: lower the estimated second moment by more than this many draws' worth to be chosen.
+FLOOR_PRIOR_DRAWS: float = 5.0
 #: Folds of the cross-fit that scores each labeled item honestly.
 CROSS_FIT_FOLDS: int = 2
 
@@ -241,5 +244,5 @@ def choose_reliance(
     relative = (1.0 - floors[:, None]) * share[None, :] + floors[:, None]
     second = (weight * residual**2)[None, :] / np.maximum(relative, 1e-300)
     totals = second.sum(axis=1)
-    totals = totals + prior * (totals[0] / draws) * (floors > minimum)
+    totals = totals + FLOOR_PRIOR_DRAWS * (totals[0] / draws) * (floors > minimum)
     return replace(reliance, floor=float(floors[int(np.argmin(totals))]))
