@@ -15,6 +15,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
+from sklearn.base import clone
 from sklearn.datasets import (
     load_breast_cancer,
     load_digits,
@@ -24,12 +25,12 @@ from sklearn.datasets import (
 )
 from sklearn.ensemble import HistGradientBoostingClassifier
 from sklearn.linear_model import LinearRegression, LogisticRegression, Ridge
-from sklearn.model_selection import train_test_split
+from sklearn.model_selection import cross_val_predict, train_test_split
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from sklearn.tree import DecisionTreeClassifier
 
-from leadline.service.estimation import LossKind, LossSpec
+from leadline.service.estimation import LossKind, LossSpec, ValidationRows
 
 __all__ = [
     "HARD_SCENARIO_NAMES",
@@ -62,6 +63,9 @@ class Scenario:
     well_fit_classifier: bool
     #: Built to break estimators (rare costly mistakes, heavy tails, no signal to learn).
     hard: bool = False
+    #: The team's own labeled rows: the main model's out-of-fold outputs (5 folds,
+    #: ``cross_val_predict``) on the scenario's training part, as a team would upload them.
+    validation: ValidationRows | None = None
 
     @property
     def pool_size(self) -> int:
@@ -78,8 +82,24 @@ def _finish(
     labels: np.ndarray,
     well_fit_classifier: bool = False,
     hard: bool = False,
+    training: tuple[object, np.ndarray, np.ndarray] | None = None,
 ) -> Scenario:
+    """``training`` = (main model, its training features, its training targets): the
+    scenario's validation rows are the model's out-of-fold outputs on them."""
     losses = np.asarray(spec.losses(outputs, labels), dtype=float)
+    validation = None
+    if training is not None:
+        model, x_train, y_train = training
+        classification = spec.is_classification
+        method = "predict_proba" if classification else "predict"
+        held_out = cross_val_predict(clone(model), x_train, y_train, cv=5, method=method)
+        if classification:
+            held_out = held_out / held_out.sum(axis=1, keepdims=True)
+        validation = ValidationRows(
+            features=np.ascontiguousarray(x_train, dtype=float),
+            outputs=np.ascontiguousarray(held_out, dtype=float),
+            labels=np.asarray(y_train, dtype=np.int64 if classification else float),
+        )
     return Scenario(
         name=name,
         description=description,
@@ -91,6 +111,7 @@ def _finish(
         true_risk=float(losses.mean()),
         well_fit_classifier=well_fit_classifier,
         hard=hard,
+        validation=validation,
     )
 
 
@@ -110,6 +131,7 @@ def _digits_logistic(*, quick: bool) -> Scenario:
         outputs=model.predict_proba(x_pool),
         labels=y_pool.astype(np.int64),
         well_fit_classifier=True,
+        training=(model, x_train, y_train),
     )
 
 
@@ -128,6 +150,7 @@ def _digits_shallow_tree(*, quick: bool) -> Scenario:
         features=x_pool,
         outputs=model.predict_proba(x_pool),
         labels=y_pool.astype(np.int64),
+        training=(model, x_train, y_train),
     )
 
 
@@ -147,6 +170,7 @@ def _breast_cancer(*, quick: bool) -> Scenario:
         outputs=model.predict_proba(x_pool),
         labels=y_pool.astype(np.int64),
         well_fit_classifier=True,
+        training=(model, x_train, y_train),
     )
 
 
@@ -190,6 +214,7 @@ def _shifted_synthetic(*, quick: bool) -> Scenario:
         features=x[pool_idx],
         outputs=model.predict_proba(x[pool_idx]),
         labels=y[pool_idx].astype(np.int64),
+        training=(model, x[train_idx], y[train_idx]),
     )
 
 
@@ -212,6 +237,7 @@ def _friedman_regression(*, quick: bool) -> Scenario:
         features=x_pool,
         outputs=model.predict(x_pool),
         labels=y_pool.astype(float),
+        training=(model, x_train, y_train),
     )
 
 
@@ -248,6 +274,7 @@ def _cost_matrix_synthetic(*, quick: bool) -> Scenario:
         features=x_pool,
         outputs=model.predict_proba(x_pool),
         labels=y_pool.astype(np.int64),
+        training=(model, x_train, y_train),
     )
 
 
@@ -296,6 +323,7 @@ def _rare_mistakes(*, marked: bool) -> Scenario:
         outputs=outputs,
         labels=labels,
         hard=True,
+        training=(model, x_train, y_train),
     )
 
 
@@ -327,6 +355,7 @@ def _rare_class(*, kind: LossKind) -> Scenario:
         outputs=model.predict_proba(x_pool),
         labels=y_pool.astype(np.int64),
         hard=True,
+        training=(model, x_train, y_train),
     )
 
 
@@ -348,6 +377,7 @@ def _heavy_tail_regression() -> Scenario:
         outputs=model.predict(x_pool),
         labels=y_pool.astype(float),
         hard=True,
+        training=(model, x_train, y_train),
     )
 
 
@@ -370,6 +400,7 @@ def _noise_only_regression() -> Scenario:
         outputs=model.predict(x_pool),
         labels=y_pool.astype(float),
         hard=True,
+        training=(model, x_train, y_train),
     )
 
 

@@ -1,8 +1,8 @@
 """How the surrogate should weigh validation rows against pool labels (exact one-draw cost).
 
-Each benchmark scenario is rebuilt with its training part, and the main model's
-out-of-fold outputs on it (``sklearn.model_selection.cross_val_predict``, 5 folds) become
-the scenario's validation rows: rows from outside the pool, as a team would upload them.
+Each benchmark scenario carries its validation rows (``Scenario.validation``): the main
+model's out-of-fold outputs (``sklearn.model_selection.cross_val_predict``, 5 folds) on the
+scenario's training part, rows from outside the pool, as a team would upload them.
 For pool-label sets drawn uniformly (several sizes and seeds) each arm fits the core's
 surrogate and the table gives the exact one-draw variance of the importance-weighted
 difference term under the core's hedged usefulness, relative to one uniform draw (the
@@ -33,7 +33,7 @@ import math
 import sys
 import time
 from collections.abc import Sequence
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from pathlib import Path
 
 _ROOT = Path(__file__).resolve().parents[2]
@@ -41,23 +41,10 @@ if str(_ROOT) not in sys.path:
     sys.path.insert(0, str(_ROOT))
 
 import numpy as np  # noqa: E402
-from sklearn.base import clone  # noqa: E402
-from sklearn.datasets import (  # noqa: E402
-    load_breast_cancer,
-    load_digits,
-    make_classification,
-    make_friedman1,
-)
-from sklearn.ensemble import HistGradientBoostingClassifier  # noqa: E402
-from sklearn.linear_model import LogisticRegression, Ridge  # noqa: E402
-from sklearn.model_selection import cross_val_predict, train_test_split  # noqa: E402
-from sklearn.pipeline import make_pipeline  # noqa: E402
-from sklearn.preprocessing import StandardScaler  # noqa: E402
-from sklearn.tree import DecisionTreeClassifier  # noqa: E402
 
 from benchmarks.experiments.exact_variance import one_draw_cost  # noqa: E402
 from benchmarks.labels import surrogate_settings  # noqa: E402
-from benchmarks.scenarios import SCENARIO_NAMES, Scenario, build_scenario  # noqa: E402
+from benchmarks.scenarios import SCENARIO_NAMES, build_scenario  # noqa: E402
 from leadline.service.estimation import (  # noqa: E402
     DEFAULT_FLOOR,
     LossKind,
@@ -70,108 +57,6 @@ from leadline.service.estimation import (  # noqa: E402
 )
 
 _OUT = Path(__file__).resolve().parent / "VALIDATION_ROWS.md"
-
-
-@dataclass(frozen=True)
-class TrainingPart:
-    """A scenario's training rows, the unfitted main model, and the pool it produced."""
-
-    features: np.ndarray
-    labels: np.ndarray
-    model: object
-    pool_features: np.ndarray  # to check the rebuild against benchmarks/scenarios.py
-    classification: bool
-
-
-def training_part(name: str) -> TrainingPart:
-    """Rebuild scenario ``name``'s split (same data, seeds and models as
-    ``benchmarks/scenarios.py``, full pool sizes)."""
-    if name in ("digits_logistic", "digits_weak_tree"):
-        data = load_digits()
-        seed = 11 if name == "digits_logistic" else 12
-        x_train, x_pool, y_train, _ = train_test_split(
-            data.data, data.target, train_size=600, random_state=seed, stratify=data.target
-        )
-        model: object = (
-            make_pipeline(StandardScaler(), LogisticRegression(C=0.05, max_iter=3000))
-            if name == "digits_logistic"
-            else DecisionTreeClassifier(max_depth=4, random_state=0)
-        )
-        return TrainingPart(x_train, y_train, model, x_pool, True)
-    if name == "breast_cancer":
-        data = load_breast_cancer()
-        x_train, x_pool, y_train, _ = train_test_split(
-            data.data, data.target, train_size=170, random_state=13, stratify=data.target
-        )
-        model = make_pipeline(StandardScaler(), LogisticRegression(C=0.5, max_iter=3000))
-        return TrainingPart(x_train, y_train, model, x_pool, True)
-    if name == "shifted_synthetic":
-        pool_size, train_size = 50_000, 8_000
-        total = 2 * (pool_size + train_size)
-        x, y = make_classification(
-            n_samples=total,
-            n_features=20,
-            n_informative=8,
-            n_redundant=4,
-            n_clusters_per_class=2,
-            flip_y=0.03,
-            class_sep=1.5,
-            random_state=14,
-        )
-        rng = np.random.default_rng(14)
-        direction = x[:, 0] + x[:, 1]
-        train_weight = 1.0 / (1.0 + np.exp(1.5 * direction))
-        train_idx = rng.choice(
-            total, size=train_size, replace=False, p=train_weight / train_weight.sum()
-        )
-        rest = np.setdiff1d(np.arange(total), train_idx)
-        pool_weight = 1.0 - train_weight[rest]
-        pool_idx = rng.choice(
-            rest, size=pool_size, replace=False, p=pool_weight / pool_weight.sum()
-        )
-        model = HistGradientBoostingClassifier(max_iter=300, early_stopping=False, random_state=0)
-        return TrainingPart(x[train_idx], y[train_idx], model, x[pool_idx], True)
-    if name == "friedman_regression":
-        pool_size = 9_000
-        x, y = make_friedman1(
-            n_samples=3_000 + pool_size, n_features=10, noise=1.0, random_state=15
-        )
-        x_train, x_pool, y_train, _ = train_test_split(x, y, train_size=3_000, random_state=15)
-        return TrainingPart(x_train, y_train, Ridge(alpha=1.0), x_pool, False)
-    if name == "cost_matrix_triage":
-        pool_size = 10_000
-        x, y = make_classification(
-            n_samples=3_000 + pool_size,
-            n_features=12,
-            n_informative=6,
-            n_redundant=2,
-            n_classes=3,
-            n_clusters_per_class=2,
-            weights=[0.5, 0.35, 0.15],
-            flip_y=0.02,
-            class_sep=1.2,
-            random_state=16,
-        )
-        x_train, x_pool, y_train, _ = train_test_split(
-            x, y, train_size=3_000, random_state=16, stratify=y
-        )
-        return TrainingPart(x_train, y_train, LogisticRegression(max_iter=3000), x_pool, True)
-    raise ValueError(f"scenario {name!r} is unknown, must be one of {', '.join(SCENARIO_NAMES)}.")
-
-
-def validation_rows(name: str, scenario: Scenario) -> ValidationRows:
-    """The scenario's training rows with the main model's out-of-fold outputs (5 folds)."""
-    part = training_part(name)
-    if not np.array_equal(np.asarray(part.pool_features, dtype=float), scenario.features):
-        raise RuntimeError(f"{name}: the rebuilt split differs from benchmarks/scenarios.py.")
-    method = "predict_proba" if part.classification else "predict"
-    outputs = cross_val_predict(clone(part.model), part.features, part.labels, cv=5, method=method)
-    if part.classification:
-        outputs = outputs / outputs.sum(axis=1, keepdims=True)
-        labels = part.labels.astype(np.int64)
-    else:
-        labels = part.labels.astype(float)
-    return ValidationRows(features=part.features, outputs=outputs, labels=labels)
 
 
 def arms(base: SurrogateSettings) -> dict[str, SurrogateSettings | None]:
@@ -255,7 +140,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     seconds: dict[str, list[float]] = {a: [] for a in chosen}
     for name in names:
         scenario = build_scenario(name, quick=False)
-        validation = validation_rows(name, scenario)
+        validation = scenario.validation
+        assert validation is not None
         d = scenario.features.shape[1]
         iid_variance_100 = float(scenario.losses.var()) / 100
         for m in args.label_counts:

@@ -1,11 +1,9 @@
-"""The validation-rows experiment's data: each scenario's training part, rebuilt, gives
-out-of-fold validation rows, and they teach the core's surrogate before any pool label.
+"""The scenarios' validation rows: each scenario's training part with out-of-fold outputs,
+and they teach the core's surrogate before any pool label.
 
 Outside sources: out-of-fold outputs are scikit-learn's ``cross_val_predict``; the one-draw
 cost is the importance-sampling variance formula ("Monte Carlo theory, methods and
-examples", 2013, §9.1) as in ``exact_variance.py``. The two scenarios are the fast ones;
-the rebuild check (the pool equals ``benchmarks/scenarios.py``'s) fails loudly if the
-scenarios' splits change without the experiment.
+examples", 2013, §9.1) as in ``exact_variance.py``. The two scenarios are the fast ones.
 """
 
 from __future__ import annotations
@@ -14,7 +12,6 @@ import numpy as np
 import pytest
 
 from benchmarks.experiments.exact_variance import one_draw_cost
-from benchmarks.experiments.validation_rows import training_part, validation_rows
 from benchmarks.scenarios import build_scenario
 from leadline.service.estimation import (
     DEFAULT_FLOOR,
@@ -30,11 +27,11 @@ from leadline.service.estimation import (
 )
 def test_validation_rows_are_the_training_part_with_out_of_fold_outputs(name, rows):
     scenario = build_scenario(name)
-    validation = validation_rows(name, scenario)
-    part = training_part(name)
-    assert len(validation) == rows
-    np.testing.assert_array_equal(validation.features, part.features)
-    np.testing.assert_array_equal(validation.labels, part.labels)
+    validation = scenario.validation
+    assert validation is not None and len(validation) == rows
+    # Rows from outside the pool: none of them is a pool item.
+    pool = {row.tobytes() for row in scenario.features}
+    assert not any(row.tobytes() in pool for row in validation.features)
     if scenario.spec.is_classification:
         assert validation.outputs.shape == (rows, scenario.spec.num_classes)
         np.testing.assert_allclose(validation.outputs.sum(axis=1), 1.0)
@@ -58,7 +55,7 @@ def test_out_of_fold_rows_alone_cut_the_weak_trees_one_draw_cost():
         version=1,
         seed=0,
         settings=settings,
-        validation=validation_rows(name, scenario),
+        validation=scenario.validation,
     )
     costs = []
     for model in (cold_start_surrogate(spec), taught):
