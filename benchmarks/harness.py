@@ -48,6 +48,7 @@ from leadline.service.estimation import (
     Reliance,
     SurrogateScores,
     SurrogateSettings,
+    ValidationRows,
     Verdict,
     anytime_path,
     check_gate,
@@ -108,6 +109,9 @@ class HarnessConfig:
     # leadline's runs choose each batch's control variate and floor with the core's
     # reliance guard (``choose_reliance``); False = full reliance on the surrogate.
     guard: bool = True
+    # Teach the surrogate with the scenario's validation rows (out-of-fold outputs on its
+    # training part) from the first draw on.
+    validation: bool = False
     # Experiment (not adopted): leadline's runs raise the floor per batch with
     # benchmarks.experiments.adaptive_floor.
     adaptive_floor: bool = False
@@ -238,6 +242,7 @@ def _choose_reliance(
     labeled: np.ndarray,
     config: HarnessConfig,
     seed: int,
+    validation: ValidationRows | None = None,
 ) -> Reliance:
     """The core's reliance guard at a refit, from the run's labeled draws scored honestly
     (cross-fitted) and the new surrogate's scores over the remaining candidates."""
@@ -249,6 +254,7 @@ def _choose_reliance(
         scenario.labels[order],
         seed=seed,
         settings=config.surrogate_settings,
+        validation=validation,
     )
     return choose_reliance(
         losses=scenario.losses[order],
@@ -437,13 +443,16 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
         return cold_err < fit_err
 
     reliance_now = [Reliance(floor=config.floor)]
+    validation = scenario.validation if config.validation else None
+    if config.validation and validation is None:
+        raise ValueError(f"scenario {scenario.name!r} has no validation rows.")
 
     def own_surrogate(m: int, labeled: np.ndarray, run: _Run) -> SurrogateScores:
         nonlocal fit_seconds
         order = run.order
         if m == 0 or m in refit_points:
             t0 = time.perf_counter()
-            if m == 0:
+            if m == 0 and validation is None:
                 model = cold_start_surrogate(spec)
             else:
                 idx = np.asarray(order, dtype=np.int64)
@@ -455,6 +464,7 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
                     version=len(snapshots),
                     seed=fit_seed + m,
                     settings=config.surrogate_settings,
+                    validation=validation,
                 )
             scores = model.score(features, outputs)
             fit_seconds += time.perf_counter() - t0
@@ -466,7 +476,7 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             if config.guard and m > 0:
                 t0 = time.perf_counter()
                 reliance_now[0] = _choose_reliance(
-                    scenario, run, scores, labeled, config, fit_seed + m
+                    scenario, run, scores, labeled, config, fit_seed + m, validation
                 )
                 fit_seconds += time.perf_counter() - t0
         return current[0]

@@ -25,6 +25,7 @@ import sys
 import time
 from collections import defaultdict
 from collections.abc import Iterator, Sequence
+from dataclasses import replace
 from pathlib import Path
 
 _ROOT = Path(__file__).resolve().parents[1]
@@ -32,6 +33,7 @@ if str(_ROOT) not in sys.path:  # run as a script: make `benchmarks` importable
     sys.path.insert(0, str(_ROOT))
 
 from benchmarks.harness import (  # noqa: E402
+    ANYTIME_METHODS,
     METHODS,
     HarnessConfig,
     RepetitionResult,
@@ -42,6 +44,7 @@ from benchmarks.report import (  # noqa: E402
     ScenarioSummary,
     Target,
     evaluate_targets,
+    evaluate_validation_targets,
     format_anytime,
     format_table,
     summarize,
@@ -67,6 +70,7 @@ _EXPERIMENT_PARTS = (
     ("What was tried and what won", _EXPERIMENTS / "NOTES.md"),
     ("Monte-Carlo comparison of selection variants", _EXPERIMENTS / "RESULTS.md"),
     ("Exact one-draw variance of selection variants", _EXPERIMENTS / "EXACT_VARIANCE.md"),
+    ("Validation rows: how much they weigh", _EXPERIMENTS / "VALIDATION_ROWS.md"),
 )
 
 # Worker-process state, set once by the pool initializer.
@@ -143,8 +147,57 @@ def _targets_markdown(targets: Sequence[Target]) -> str:
     return "\n".join(lines)
 
 
+def _summary_table(
+    without: Sequence[ScenarioSummary], with_rows: Sequence[ScenarioSummary], budget: int
+) -> str:
+    """One line per scenario: relative cost at ``budget`` without / with validation items,
+    the lowest fixed-time coverage over all budgets and the anytime never-miss rate."""
+    by_name = {s.name: s for s in with_rows}
+    lines = [
+        f"| scenario | BALANCED cost@{budget} | UNBIASED cost@{budget} | lowest fixed-time "
+        "coverage (BALANCED) | anytime never-miss | BALANCED cost, with validation items "
+        "| UNBIASED cost, with | lowest coverage, with | never-miss, with |",
+        "|---|---|---|---|---|---|---|---|---|",
+    ]
+    k = ANYTIME_METHODS.index("unbiased")
+
+    def cells(s: ScenarioSummary | None) -> list[str]:
+        if s is None:
+            return ["-", "-", "-", "-"]
+        low = min(s.at("coverage", "balanced", b) for b in s.budgets)
+        return [
+            f"{s.at('cost', 'balanced', budget):.2f}",
+            f"{s.at('cost', 'unbiased', budget):.2f}",
+            f"{low:.3f}",
+            f"{s.anytime_never_miss[k]:.3f}",
+        ]
+
+    for s in without:
+        name = s.name + (" (hard)" if s.hard else "")
+        lines.append("| " + " | ".join([name, *cells(s), *cells(by_name.get(s.name))]) + " |")
+    return "\n".join(lines)
+
+
+def _scenario_section(s: ScenarioSummary, title: str) -> list[str]:
+    return [
+        f"#### {title}",
+        "",
+        f"{s.repetitions} repetitions, {s.seconds_per_repetition:.2f} s per repetition "
+        f"({s.fit_share:.0%} in surrogate fits and scoring). BALANCED's mean weight on "
+        "the unbiased part: "
+        + ", ".join(f"{w:.2f}@{m}" for m, w in zip(s.budgets, s.balanced_weight, strict=True))
+        + ".",
+        "",
+        format_table(s, markdown=True),
+        "",
+        format_anytime(s, markdown=True),
+        "",
+    ]
+
+
 def _markdown(
-    summaries: Sequence[ScenarioSummary],
+    without: Sequence[ScenarioSummary],
+    with_rows: Sequence[ScenarioSummary],
     targets: Sequence[Target],
     config: HarnessConfig,
     *,
@@ -168,8 +221,13 @@ def _markdown(
         f"sequential run of {config.max_budget} draws per method and repetition, evaluated "
         f"at every budget prefix (a prefix of a sequential design is a valid design). "
         f"Batches of at most {config.batch_size} draws; surrogate refits after "
-        f"{list(config.refit_at)} labels; floor epsilon = {config.floor} "
-        f"(gate-floor run: {config.gate_floor}); intervals at {config.confidence:.0%}.",
+        f"{list(config.refit_at)} labels, each refit also choosing the reliance guard's "
+        f"control variate and floor; minimum floor epsilon = {config.floor} "
+        f"(gate-floor run: {config.gate_floor}); intervals at {config.confidence:.0%}. "
+        "Each scenario runs without validation items and, where a second table follows, "
+        "with its validation rows (the main model's out-of-fold outputs on the scenario's "
+        "training part, `cross_val_predict`, 5 folds) teaching every surrogate from the "
+        "first draw; the i.i.d. baseline is the same in both.",
         "",
         "Methods: " + "; ".join(_METHOD_NOTES[m] for m in METHODS) + ".",
         "",
@@ -177,34 +235,37 @@ def _markdown(
         "RMSE), interpolated on the i.i.d. baseline's own RMSE curve (log-log); `*` marks "
         "values outside the measured i.i.d. range, extrapolated as RMSE ~ 1/sqrt(M) from "
         f"M = {config.budgets[-1]} (or from M = {config.budgets[0]} below it). Below 1 is "
-        "better. Coverage is over repetitions (Monte-Carlo standard error about "
-        f"{(0.9 * 0.1 / repetitions) ** 0.5:.3f} at 90%).",
+        "better; at this many repetitions a cost moves by about +-0.1 between runs (more "
+        "on heavy-tailed pools). Coverage is over repetitions (Monte-Carlo standard error "
+        f"about {(0.9 * 0.1 / repetitions) ** 0.5:.3f} at 90%); the fixed-time interval is "
+        "the finite-sample betting interval, so it may over-cover (that shows as width). "
+        "`wrong PASS@100`: share of runs in which a single-look FIXED_TIME gate at 90% with "
+        "max_risk = the true risk said PASS (allowed: 10%).",
         "",
         "### Targets",
         "",
         _targets_markdown(targets),
         "",
+        "### Summary at M = 100",
+        "",
+        _summary_table(without, with_rows, 100),
+        "",
     ]
-    for s in summaries:
+    by_name = {s.name: s for s in with_rows}
+    for s in without:
         out += [
             f"### {s.name}",
             "",
             f"{s.description}. N = {s.pool_size:,}, true risk {s.true_risk:.4f}, loss bound "
-            f"B = {s.loss_bound:.3g}; {s.repetitions} repetitions, "
-            f"{s.seconds_per_repetition:.2f} s per repetition "
-            f"({s.fit_share:.0%} in surrogate fits and scoring). BALANCED's mean weight on "
-            "the unbiased part: "
-            + ", ".join(f"{w:.2f}@{m}" for m, w in zip(s.budgets, s.balanced_weight, strict=True))
-            + ".",
-            "",
-            format_table(s, markdown=True),
-            "",
-            format_anytime(s, markdown=True),
+            f"B = {s.loss_bound:.3g}.",
             "",
         ]
+        out += _scenario_section(s, "Without validation items")
+        if s.name in by_name:
+            out += _scenario_section(by_name[s.name], "With validation items")
     parts = [(title, path) for title, path in _EXPERIMENT_PARTS if path.exists()]
     if parts:
-        out += ["### Selection-rule experiments", ""]
+        out += ["### Experiments", ""]
         for title, path in parts:
             out += [f"#### {title}", "", path.read_text().strip(), ""]
     return "\n".join(out)
@@ -239,6 +300,13 @@ def _parse(argv: Sequence[str] | None) -> argparse.Namespace:
         action="store_true",
         help="full reliance on the surrogate (switch off the core's reliance guard)",
     )
+    parser.add_argument(
+        "--validation",
+        choices=("both", "with", "without"),
+        default="both",
+        help="run without validation items, with them (scenarios that are not 'hard'), or "
+        "both side by side (default)",
+    )
     return parser.parse_args(argv)
 
 
@@ -262,18 +330,30 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     print(
         f"label-efficiency benchmark ({'QUICK: ' if quick else ''}{len(names)} scenarios, "
-        f"{repetitions} repetitions, {args.workers} workers)",
+        f"{repetitions} repetitions, {args.workers} workers, validation items: "
+        f"{args.validation})",
         flush=True,
     )
     scenarios = [build_scenario(n, quick=quick) for n in names]
-    results = run_benchmark(scenarios, config, repetitions=repetitions, workers=args.workers)
-    summaries = [summarize(s, results[s.name], config) for s in scenarios]
+    without: list[ScenarioSummary] = []
+    with_rows: list[ScenarioSummary] = []
+    if args.validation in ("both", "without"):
+        results = run_benchmark(scenarios, config, repetitions=repetitions, workers=args.workers)
+        without = [summarize(s, results[s.name], config) for s in scenarios]
+    if args.validation in ("both", "with"):
+        taught = [s for s in scenarios if s.validation is not None and not s.hard]
+        with_config = replace(config, validation=True)
+        results = run_benchmark(taught, with_config, repetitions=repetitions, workers=args.workers)
+        with_rows = [summarize(s, results[s.name], with_config) for s in taught]
     wall = time.perf_counter() - started
-    targets = evaluate_targets(summaries, wall_seconds=wall, quick=quick)
-    for s in summaries:
-        print(f"\n== {s.name}: N={s.pool_size:,}, risk {s.true_risk:.4f}  ({s.description})")
-        print(format_table(s, markdown=False))
-        print(format_anytime(s, markdown=False))
+    targets = evaluate_targets(without or with_rows, wall_seconds=wall, quick=quick)
+    if with_rows:
+        targets += evaluate_validation_targets(with_rows, without)
+    for title, group in (("without validation items", without), ("with", with_rows)):
+        for s in group:
+            print(f"\n== {s.name} ({title}): N={s.pool_size:,}, risk {s.true_risk:.4f}")
+            print(format_table(s, markdown=False))
+            print(format_anytime(s, markdown=False))
     print("\nTargets (* cost extrapolated beyond the measured i.i.d. curve):")
     for t in targets:
         print(f"  [{'met' if t.met else 'NOT met'}] {t.name}: {t.measured}")
@@ -281,7 +361,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         shlex.quote(a) for a in (sys.argv[1:] if argv is None else argv)
     )
     text = _markdown(
-        summaries,
+        without or with_rows,
+        with_rows if without else [],
         targets,
         config,
         command=command.strip(),
