@@ -865,8 +865,7 @@ class Engine:
         key = ("inputs", scope)
         cached = pool.cache.get(key)
         if cached is None:
-            floor = pool.settings.selection_floor or self._config.selection_floor
-            cached = build_scope_inputs(pool, scope, reliance=pool.reliance_for(floor))
+            cached = build_scope_inputs(pool, scope)
             pool.cache[key] = cached
         return cached
 

@@ -32,7 +32,6 @@ from leadline.service.estimation import (
     DRAW_SKIPPED,
     DrawTerms,
     PlugInSums,
-    Reliance,
 )
 
 __all__ = ["Scope", "ScopeInputs", "build_scope_inputs"]
@@ -75,9 +74,10 @@ def _suffix_at(values: np.ndarray, marks: np.ndarray) -> np.ndarray:
     return np.asarray(suffix[marks])
 
 
-def build_scope_inputs(pool: PoolState, scope: Scope, *, reliance: Reliance) -> ScopeInputs:
-    """The core's inputs for ``scope``; call with ``pool.lock`` held. The plug-in sums see
-    the current surrogate through ``reliance`` (its control variate h = c + beta (g - c)).
+def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
+    """The core's inputs for ``scope``; call with ``pool.lock`` held. The plug-in sums use
+    the current surrogate's g itself (the reliance guard shapes the draws' control variate,
+    not the plug-in: a surrogate can be right on average yet a poor per-item guide).
 
     ``scope`` comes checked from the API layer (``validation.check_scope``: a window is
     [start, end) with start < end). Raises NotFound for an unknown segment and
@@ -177,17 +177,12 @@ def build_scope_inputs(pool: PoolState, scope: Scope, *, reliance: Reliance) -> 
         residual_second_moment=second_moment,
         remaining_count=draws.remaining_count.view.astype(np.float64),
     )
-    g = pool.expected_loss.view[unlabeled]
-    h = reliance.control_variate(g)
     sums = PlugInSums(
         scope_size=scope_size,
         labeled_loss_sum=float(losses[labeled & in_scope].sum()),
-        unlabeled_expected_loss_sum=float(h.sum()),
-        # E[(L - h)^2] = E[(L - g)^2] + (g - h)^2
-        unlabeled_second_moment_sum=float(
-            pool.second_moment.view[unlabeled].sum() + np.sum((g - h) ** 2)
-        ),
-        unlabeled_count=int(g.shape[0]),
+        unlabeled_expected_loss_sum=float(pool.expected_loss.view[unlabeled].sum()),
+        unlabeled_second_moment_sum=float(pool.second_moment.view[unlabeled].sum()),
+        unlabeled_count=int(np.count_nonzero(unlabeled)),
     )
     if m_count:
         last_mark = int(marks[-1])

@@ -7,7 +7,6 @@ import pytest
 from sklearn.metrics import zero_one_loss
 
 from leadline.service.engine.scopes import Scope, build_scope_inputs
-from leadline.service.estimation import Reliance
 from leadline.v1 import leadline_pb2 as pb
 from tests.service.helpers import Dataset, Harness, classification_pool, item_batch
 
@@ -130,7 +129,7 @@ def test_window_terms_follow_the_definition(scoped: Harness, cancer_pool: Datase
         scope = Scope(
             segment="north", start_time_ms=_T0 + 60_000 * 10, end_time_ms=_T0 + 60_000 * 80
         )
-        inputs = build_scope_inputs(pool, scope, reliance=Reliance())
+        inputs = build_scope_inputs(pool, scope)
         g0 = pool.g0.view.copy()
         names = np.array(pool.segment_names)[pool.segment.view]
         t = pool.event_time_ms.view.copy()
