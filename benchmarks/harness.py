@@ -112,6 +112,9 @@ class HarnessConfig:
     # Teach the surrogate with the scenario's validation rows (out-of-fold outputs on its
     # training part) from the first draw on.
     validation: bool = False
+    # Refits that land late: the draws use the surrogate fitted this many refit points
+    # earlier (0 = every refit is in force for the next draw).
+    refit_lag: int = 0
     # Experiment (not adopted): leadline's runs raise the floor per batch with
     # benchmarks.experiments.adaptive_floor.
     adaptive_floor: bool = False
@@ -443,6 +446,7 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
         return cold_err < fit_err
 
     reliance_now = [Reliance(floor=config.floor)]
+    versions: list[tuple[SurrogateScores, Reliance]] = []
     validation = scenario.validation if config.validation else None
     if config.validation and validation is None:
         raise ValueError(f"scenario {scenario.name!r} has no validation rows.")
@@ -471,14 +475,19 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
             fitted[m] = scores
             if config.cold_start_guard and m > 0 and _cold_start_erred_less(m, order):
                 scores = fitted[0]
-            snapshots[m] = scores
-            current[:] = [scores]
+            reliance = Reliance(floor=config.floor)
             if config.guard and m > 0:
                 t0 = time.perf_counter()
-                reliance_now[0] = _choose_reliance(
+                reliance = _choose_reliance(
                     scenario, run, scores, labeled, config, fit_seed + m, validation
                 )
                 fit_seconds += time.perf_counter() - t0
+            # With refit_lag k the draws keep the version fitted k refits earlier: refits
+            # that finish after the next labels arrive (the draws stay predictable).
+            versions.append((scores, reliance))
+            scores, reliance_now[0] = versions[max(0, len(versions) - 1 - config.refit_lag)]
+            snapshots[m] = scores
+            current[:] = [scores]
         return current[0]
 
     def rule_on_pool(scores: SurrogateScores, candidates: np.ndarray, done: int) -> np.ndarray:

@@ -301,6 +301,12 @@ def _parse(argv: Sequence[str] | None) -> argparse.Namespace:
         help="full reliance on the surrogate (switch off the core's reliance guard)",
     )
     parser.add_argument(
+        "--refit-lag",
+        type=int,
+        default=0,
+        help="draws use the surrogate fitted this many refits earlier (refits landing late)",
+    )
+    parser.add_argument(
         "--validation",
         choices=("both", "with", "without"),
         default="both",
@@ -327,6 +333,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         surrogate_settings=surrogate_settings(),
         gate_floor=args.gate_floor,
         guard=not args.no_guard,
+        refit_lag=args.refit_lag,
     )
     print(
         f"label-efficiency benchmark ({'QUICK: ' if quick else ''}{len(names)} scenarios, "
