@@ -13,6 +13,7 @@ from __future__ import annotations
 import logging
 from collections.abc import Callable
 from dataclasses import dataclass
+from functools import partial
 
 import numpy as np
 from sklearn.base import clone
@@ -282,13 +283,14 @@ def _cost_matrix_synthetic(*, quick: bool) -> Scenario:
 # Hard pools: each one is built so that a surrogate-driven estimate can go wrong.
 
 
-def _rare_mistakes(*, marked: bool) -> Scenario:
+def _rare_mistakes(*, marked: bool, quick: bool = False) -> Scenario:
     """A near-perfect, extremely confident classifier; 10 of 2,000 pool labels disagree.
 
     ``marked``: the 10 mistakes are the items with the largest value of a feature the
     model never used (a signature a surrogate can learn once it has seen one); otherwise
     they are scattered at random (nothing to learn).
     """
+    del quick  # these pools are small already
     x, y = make_classification(
         n_samples=6_000,
         n_features=10,
@@ -327,8 +329,9 @@ def _rare_mistakes(*, marked: bool) -> Scenario:
     )
 
 
-def _rare_class(*, kind: LossKind) -> Scenario:
+def _rare_class(*, kind: LossKind, quick: bool = False) -> Scenario:
     """A 4% class and a depth-3 tree: the mistakes sit in the rare class."""
+    del quick  # these pools are small already
     x, y = make_classification(
         n_samples=7_000,
         n_features=12,
@@ -359,8 +362,9 @@ def _rare_class(*, kind: LossKind) -> Scenario:
     )
 
 
-def _heavy_tail_regression() -> Scenario:
+def _heavy_tail_regression(*, quick: bool = False) -> Scenario:
     """Student-t (2 degrees of freedom) noise: a few capped squared errors dominate."""
+    del quick  # these pools are small already
     x, y = make_regression(n_samples=9_000, n_features=8, n_informative=6, random_state=33)
     y = y + 10.0 * np.random.default_rng(33).standard_t(2, size=y.shape)
     x_train, x_pool, y_train, y_pool = train_test_split(x, y, train_size=3_000, random_state=33)
@@ -381,8 +385,9 @@ def _heavy_tail_regression() -> Scenario:
     )
 
 
-def _noise_only_regression() -> Scenario:
+def _noise_only_regression(*, quick: bool = False) -> Scenario:
     """A correct linear model with Gaussian noise: no feature predicts the loss."""
+    del quick  # these pools are small already
     x, y = make_regression(
         n_samples=9_000, n_features=8, n_informative=6, noise=20.0, random_state=34
     )
@@ -411,12 +416,12 @@ _BUILDERS: dict[str, Callable[..., Scenario]] = {
     "shifted_synthetic": _shifted_synthetic,
     "friedman_regression": _friedman_regression,
     "cost_matrix_triage": _cost_matrix_synthetic,
-    "rare_mistakes_scattered": lambda *, quick: _rare_mistakes(marked=False),
-    "rare_mistakes_marked": lambda *, quick: _rare_mistakes(marked=True),
-    "rare_class_tree": lambda *, quick: _rare_class(kind=LossKind.ZERO_ONE),
-    "rare_class_tree_xent": lambda *, quick: _rare_class(kind=LossKind.CROSS_ENTROPY),
-    "heavy_tail_regression": lambda *, quick: _heavy_tail_regression(),
-    "noise_only_regression": lambda *, quick: _noise_only_regression(),
+    "rare_mistakes_scattered": partial(_rare_mistakes, marked=False),
+    "rare_mistakes_marked": partial(_rare_mistakes, marked=True),
+    "rare_class_tree": partial(_rare_class, kind=LossKind.ZERO_ONE),
+    "rare_class_tree_xent": partial(_rare_class, kind=LossKind.CROSS_ENTROPY),
+    "heavy_tail_regression": _heavy_tail_regression,
+    "noise_only_regression": _noise_only_regression,
 }
 
 SCENARIO_NAMES: tuple[str, ...] = tuple(_BUILDERS)

@@ -118,7 +118,7 @@ def _fixed_bets(
     squares = (x - mean_before) ** 2 / scale
     sq_sum = np.concatenate([[0.0], np.cumsum(squares)])[:-1]
     # The prior's variance is stated for a term of relative variance 1 (the first one).
-    tau_before = np.maximum((prior_var / scale[0] + sq_sum) / t, 1e-30)
+    tau_before = np.maximum((prior_var / float(scale[0]) + sq_sum) / t, 1e-30)
     return np.sqrt(2.0 * math.log(1.0 / alpha) / (m * scale * tau_before))
 
 

@@ -28,7 +28,8 @@ from leadline.service.estimation import (
 def test_validation_rows_are_the_training_part_with_out_of_fold_outputs(name, rows):
     scenario = build_scenario(name)
     validation = scenario.validation
-    assert validation is not None and len(validation) == rows
+    assert validation is not None
+    assert len(validation) == rows
     # Rows from outside the pool: none of them is a pool item.
     pool = {row.tobytes() for row in scenario.features}
     assert not any(row.tobytes() in pool for row in validation.features)

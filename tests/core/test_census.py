@@ -100,7 +100,8 @@ def test_labeling_every_item_returns_the_exact_risk_with_zero_width(build, mode)
         estimate.anytime_upper,
     ):
         assert value == pytest.approx(truth, abs=1e-9 * max(1.0, spec.bound))
-    assert estimate.std_error == 0.0 and estimate.bias_bound == 0.0
+    assert estimate.std_error == 0.0
+    assert estimate.bias_bound == 0.0
     # Without the census shortcut the finite-population weights alone make the point
     # estimate exact: the last draw's term is the risk itself.
     weighted = estimate_risk(

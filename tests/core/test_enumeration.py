@@ -527,7 +527,8 @@ def test_reliance_guard_drops_a_surrogate_that_predicts_the_losses_backwards():
     good = choose_reliance(
         losses=losses, honest=_scores(losses + rng.normal(0.0, 0.02, size=200)), **common
     )
-    assert good.coefficient == 1.0 and good.floor == 0.3
+    assert good.coefficient == 1.0
+    assert good.floor == 0.3
     few = choose_reliance(
         losses=losses[:10],
         honest=_scores(1.0 - losses[:10]),
