@@ -119,7 +119,8 @@ def _fixed_bets(
     sq_sum = np.concatenate([[0.0], np.cumsum(squares)])[:-1]
     # The prior's variance is stated for a term of relative variance 1 (the first one).
     tau_before = np.maximum((prior_var / float(scale[0]) + sq_sum) / t, 1e-30)
-    return np.sqrt(2.0 * math.log(1.0 / alpha) / (m * scale * tau_before))
+    bets: np.ndarray = np.sqrt(2.0 * math.log(1.0 / alpha) / (m * scale * tau_before))
+    return bets
 
 
 def betting_fixed_lower_bound(

@@ -528,10 +528,39 @@ def test_reliance_guard_drops_a_surrogate_that_predicts_the_losses_backwards():
         losses=losses, honest=_scores(losses + rng.normal(0.0, 0.02, size=200)), **common
     )
     assert good.coefficient == 1.0
-    assert good.floor == 0.3
     few = choose_reliance(
         losses=losses[:10],
         honest=_scores(1.0 - losses[:10]),
         **{**common, "probabilities": np.full(10, 1e-3), "remaining_counts": np.full(10, 1000.0)},
     )
     assert few == Reliance(floor=0.3)  # below MIN_DRAWS: full reliance
+
+
+def test_reliance_guard_keeps_the_floor_where_the_usefulness_tracks_the_residuals():
+    """Residual sizes that the predicted spread foretells: the proposal pays, the floor stays
+    at its minimum; the same residuals with a spread that foretells nothing: the guard
+    moves the floor up (towards uniform draws)."""
+    rng = np.random.default_rng(9)
+
+    def scores(g: np.ndarray, spread: np.ndarray) -> SurrogateScores:
+        return SurrogateScores(g, spread**2, np.zeros_like(g), np.full_like(g, _BOUND))
+
+    sd = rng.choice([0.01, 0.3], size=1200, p=[0.8, 0.2])
+    g = np.full(1200, 0.5)
+    losses = np.clip(g + rng.normal(0.0, sd), 0.0, _BOUND)
+    common = {
+        "losses": losses[:200],
+        "probabilities": np.full(200, 1e-3),
+        "remaining_counts": np.full(200, 1000.0),
+        "loss_bound": _BOUND,
+        "minimum_floor": 0.3,
+    }
+    tracking = choose_reliance(
+        honest=scores(g[:200], sd[:200]), candidates=scores(g[200:], sd[200:]), **common
+    )
+    assert tracking.floor == 0.3
+    blind = rng.permutation(sd)
+    guessing = choose_reliance(
+        honest=scores(g[:200], blind[:200]), candidates=scores(g[200:], blind[200:]), **common
+    )
+    assert guessing.floor > 0.5
