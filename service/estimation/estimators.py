@@ -82,7 +82,7 @@ BALANCED_MIN_LABELS: int = 20
 #: k in BALANCED's bias bound b = |C| + k t se (module docstring). The fixed-time interval
 #: no longer depends on it (it is the betting interval in every mode), so k only trades the
 #: point estimate's variance against its bias; measured in the label-efficiency benchmark.
-BALANCED_BIAS_ALLOWANCE: float = 1.0
+BALANCED_BIAS_ALLOWANCE: float = 0.5
 
 
 class EstimatorMode(enum.Enum):
