@@ -220,7 +220,7 @@ def start_server(config: ServerConfig) -> RunningServer:
         database.close()
         raise
     metrics = Metrics(engine, database)
-    worker = RefitWorker(engine)
+    worker = engine.refit_worker()
     server = grpc.server(
         futures.ThreadPoolExecutor(max_workers=config.max_workers, thread_name_prefix="rpc"),
         interceptors=[AuthInterceptor(auth, observe=metrics.observe)],

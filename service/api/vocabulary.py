@@ -10,7 +10,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import TypeVar
 
-from leadline.service.engine.pool import ASSIGNED, LABELED, SKIPPED, WAITING
+from leadline.service.draws import DrawStatus
 from leadline.service.estimation import BoundKind, EstimatorMode, LossKind, Verdict
 from leadline.v1 import leadline_pb2 as pb
 
@@ -54,12 +54,11 @@ VERDICTS: Mapping[Verdict, pb.Verdict] = {
     Verdict.FAIL: pb.VERDICT_FAIL,
     Verdict.UNDECIDED: pb.VERDICT_UNDECIDED,
 }
-#: The engine's draw status codes -> the wire's.
-DRAW_STATUSES: Mapping[int, pb.DrawStatus] = {
-    ASSIGNED: pb.DRAW_STATUS_ASSIGNED,
-    LABELED: pb.DRAW_STATUS_LABELED,
-    SKIPPED: pb.DRAW_STATUS_SKIPPED,
-    WAITING: pb.DRAW_STATUS_WAITING,
+DRAW_STATUSES: Mapping[DrawStatus, pb.DrawStatus] = {
+    DrawStatus.ASSIGNED: pb.DRAW_STATUS_ASSIGNED,
+    DrawStatus.LABELED: pb.DRAW_STATUS_LABELED,
+    DrawStatus.SKIPPED: pb.DRAW_STATUS_SKIPPED,
+    DrawStatus.WAITING: pb.DRAW_STATUS_WAITING,
 }
 
 _K = TypeVar("_K")

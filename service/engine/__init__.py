@@ -1,6 +1,6 @@
 """Per-pool orchestration between the API layer, the store and the estimation core."""
 
-from leadline.service.engine.engine import Engine, WriteCall
+from leadline.service.engine.engine import Engine
 from leadline.service.engine.pool import PoolSettings, PoolState
 from leadline.service.engine.refit import RefitWorker
 from leadline.service.engine.results import (
@@ -17,6 +17,7 @@ from leadline.service.engine.results import (
     ValidationItems,
 )
 from leadline.service.engine.scopes import Scope
+from leadline.service.engine.writes import WriteCall
 
 __all__ = [
     "AssignmentInfo",

@@ -72,22 +72,24 @@ def append_items(
     cold: SurrogateScores,
     current: SurrogateScores,
 ) -> None:
-    start = pool.item_count
-    pool.item_ids.extend(item_ids)
-    pool.index.update(zip(item_ids, range(start, start + len(item_ids)), strict=True))
-    pool.payload_refs.extend(payload_refs)
-    pool.features.extend(features)
-    pool.outputs.extend(outputs)
-    pool.segment.extend(segments)
-    pool.event_time_ms.extend(event_time_ms)
-    pool.ingest_time_ms.extend(ingest_time_ms)
-    pool.g0.extend(cold.expected_loss)
-    pool.expected_loss.extend(current.expected_loss)
-    pool.second_moment.extend(current.residual_second_moment)
-    pool.spread.extend(current.spread)
-    pool.worst_deviation.extend(worst_squared_deviation_of(current, loss_bound=pool.loss_bound))
-    pool.status.extend(np.full(len(item_ids), AVAILABLE, dtype=np.int8))
-    pool.item_draw.extend(np.full(len(item_ids), -1, dtype=np.int64))
+    start = pool.data.item_count
+    pool.data.item_ids.extend(item_ids)
+    pool.data.index.update(zip(item_ids, range(start, start + len(item_ids)), strict=True))
+    pool.data.payload_refs.extend(payload_refs)
+    pool.data.features.extend(features)
+    pool.data.outputs.extend(outputs)
+    pool.data.segment.extend(segments)
+    pool.data.event_time_ms.extend(event_time_ms)
+    pool.data.ingest_time_ms.extend(ingest_time_ms)
+    pool.data.g0.extend(cold.expected_loss)
+    pool.data.expected_loss.extend(current.expected_loss)
+    pool.data.second_moment.extend(current.residual_second_moment)
+    pool.data.spread.extend(current.spread)
+    pool.data.worst_deviation.extend(
+        worst_squared_deviation_of(current, loss_bound=pool.loss_bound)
+    )
+    pool.data.status.extend(np.full(len(item_ids), AVAILABLE, dtype=np.int8))
+    pool.data.item_draw.extend(np.full(len(item_ids), -1, dtype=np.int64))
 
 
 def apply_batch(
@@ -104,7 +106,7 @@ def apply_batch(
     swapped the surrogate since. Returns the result and the durable writes to queue.
     """
     check_shape(pool, batch.features, batch.outputs)
-    known = [pool.index.get(item_id) for item_id in batch.item_ids]
+    known = [pool.data.index.get(item_id) for item_id in batch.item_ids]
     existing = np.array([-1 if k is None else k for k in known], dtype=np.int64)
     is_new = existing < 0
     problems: list[ItemProblem] = []
@@ -115,15 +117,15 @@ def apply_batch(
     accepted = int(new_positions.shape[0])
     writes: list[Write] = []
     if accepted:
-        if pool.surrogate is not scored_with:
-            current = pool.surrogate.score(batch.features, batch.outputs)
+        if pool.data.surrogate is not scored_with:
+            current = pool.data.surrogate.score(batch.features, batch.outputs)
         received = now_ms()
         names = [batch.segments[i] for i in new_positions] if batch.segments else [""] * accepted
-        new_codes, new_names = pool.add_segments(names)
+        new_codes, new_names = pool.data.add_segments(names)
         if new_codes:
             writes.append(store.insert_segments(pool.pool_id, new_codes, new_names))
         codes = np.fromiter(
-            (pool.segment_codes[name] for name in names), dtype=np.int32, count=accepted
+            (pool.data.segment_codes[name] for name in names), dtype=np.int32, count=accepted
         )
         ingest_times = np.full(accepted, received, dtype=np.int64)
         event_times = (
@@ -136,7 +138,7 @@ def apply_batch(
         )
         ids = [batch.item_ids[i] for i in new_positions]
         chunk = store.ItemChunk(
-            start=pool.item_count,
+            start=pool.data.item_count,
             item_ids=ids,
             features=batch.features[new_positions],
             outputs=batch.outputs[new_positions],
@@ -175,7 +177,7 @@ def apply_batch(
         duplicates=duplicates,
         rejected=len(problems),
         errors=tuple(problems[:MAX_ITEM_ERRORS]),
-        item_count=pool.item_count,
+        item_count=pool.data.item_count,
     )
     return result, writes
 
@@ -186,8 +188,8 @@ def compare_duplicates(
     """Count identical re-sent items; list the conflicting ones (vectorised compare)."""
     positions = np.flatnonzero(existing >= 0)
     rows = existing[positions]
-    same_features = np.all(pool.features.view[rows] == batch.features[positions], axis=1)
-    outputs_stored = pool.outputs.view[rows]
+    same_features = np.all(pool.data.features.view[rows] == batch.features[positions], axis=1)
+    outputs_stored = pool.data.outputs.view[rows]
     outputs_sent = batch.outputs[positions]
     if outputs_stored.ndim == 2:
         same_outputs = np.all(outputs_stored == outputs_sent, axis=1)
@@ -198,17 +200,19 @@ def compare_duplicates(
         ("model_outputs", same_outputs),
     ]
     if batch.payload_refs is not None:
-        stored = [pool.payload_refs[r] for r in rows]
+        stored = [pool.data.payload_refs[r] for r in rows]
         sent = [batch.payload_refs[p] for p in positions]
         same = [a == b for a, b in zip(stored, sent, strict=True)]
         checks.append(("payload_refs", np.array(same, dtype=bool)))
     if batch.segments is not None:
-        stored_codes = pool.segment.view[rows]
-        sent_codes = np.array([pool.segment_codes.get(batch.segments[p], -1) for p in positions])
+        stored_codes = pool.data.segment.view[rows]
+        sent_codes = np.array(
+            [pool.data.segment_codes.get(batch.segments[p], -1) for p in positions]
+        )
         checks.append(("segments", stored_codes == sent_codes))
     if batch.event_time_ms is not None:
         checks.append(
-            ("event_time_ms", pool.event_time_ms.view[rows] == batch.event_time_ms[positions])
+            ("event_time_ms", pool.data.event_time_ms.view[rows] == batch.event_time_ms[positions])
         )
     conflict_field = np.full(positions.shape, "", dtype=object)
     for name, same in reversed(checks):
@@ -237,13 +241,15 @@ def append_validation(
     labels: np.ndarray,
     segments: list[str],
 ) -> None:
-    start = pool.validation_count
-    pool.validation_ids.extend(item_ids)
-    pool.validation_index.update(zip(item_ids, range(start, start + len(item_ids)), strict=True))
-    pool.validation_features.extend(features)
-    pool.validation_outputs.extend(outputs)
-    pool.validation_labels.extend(labels)
-    pool.validation_segments.extend(segments)
+    start = pool.data.validation_count
+    pool.data.validation_ids.extend(item_ids)
+    pool.data.validation_index.update(
+        zip(item_ids, range(start, start + len(item_ids)), strict=True)
+    )
+    pool.data.validation_features.extend(features)
+    pool.data.validation_outputs.extend(outputs)
+    pool.data.validation_labels.extend(labels)
+    pool.data.validation_segments.extend(segments)
 
 
 def apply_validation(pool: PoolState, batch: ValidationItems) -> tuple[IngestResult, list[Write]]:
@@ -255,7 +261,7 @@ def apply_validation(pool: PoolState, batch: ValidationItems) -> tuple[IngestRes
     the pool's items, scores or estimates, so the query caches stay valid.
     """
     check_shape(pool, batch.features, batch.outputs)
-    known = [pool.validation_index.get(item_id) for item_id in batch.item_ids]
+    known = [pool.data.validation_index.get(item_id) for item_id in batch.item_ids]
     existing = np.array([-1 if k is None else k for k in known], dtype=np.int64)
     problems: list[ItemProblem] = []
     duplicates = 0
@@ -268,7 +274,7 @@ def apply_validation(pool: PoolState, batch: ValidationItems) -> tuple[IngestRes
         ids = [batch.item_ids[i] for i in new_positions]
         segments = [batch.segments[i] for i in new_positions] if batch.segments else [""] * accepted
         chunk = store.ValidationChunk(
-            start=pool.validation_count,
+            start=pool.data.validation_count,
             item_ids=ids,
             features=batch.features[new_positions],
             outputs=batch.outputs[new_positions],
@@ -283,7 +289,7 @@ def apply_validation(pool: PoolState, batch: ValidationItems) -> tuple[IngestRes
         duplicates=duplicates,
         rejected=len(problems),
         errors=tuple(problems[:MAX_ITEM_ERRORS]),
-        item_count=pool.validation_count,
+        item_count=pool.data.validation_count,
     )
     return result, writes
 
@@ -294,19 +300,21 @@ def _compare_validation(
     """Count identical re-sent validation items; list the conflicting ones."""
     positions = np.flatnonzero(existing >= 0)
     rows = existing[positions]
-    same_features = np.all(pool.validation_features.view[rows] == batch.features[positions], axis=1)
-    stored = pool.validation_outputs.view[rows]
+    same_features = np.all(
+        pool.data.validation_features.view[rows] == batch.features[positions], axis=1
+    )
+    stored = pool.data.validation_outputs.view[rows]
     sent = batch.outputs[positions]
     same_outputs = np.all(stored == sent, axis=1) if stored.ndim == 2 else stored == sent
     label_field = "class_labels" if pool.settings.is_classification else "values"
     checks: list[tuple[str, np.ndarray]] = [
         ("features", same_features),
         ("model_outputs", same_outputs),
-        (label_field, pool.validation_labels.view[rows] == batch.labels[positions]),
+        (label_field, pool.data.validation_labels.view[rows] == batch.labels[positions]),
     ]
     if batch.segments is not None:
         same = [
-            pool.validation_segments[r] == batch.segments[p]
+            pool.data.validation_segments[r] == batch.segments[p]
             for r, p in zip(rows, positions, strict=True)
         ]
         checks.append(("segments", np.array(same, dtype=bool)))

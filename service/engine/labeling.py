@@ -9,21 +9,13 @@ from __future__ import annotations
 import secrets
 import time
 from collections.abc import Sequence
-from typing import Any
 
 import numpy as np
 
+from leadline.service.draws import DrawRecord, DrawStatus
 from leadline.service.engine.ingest import MAX_ITEM_ERRORS, now_ms
-from leadline.service.engine.pool import (
-    ASSIGNED,
-    AVAILABLE,
-    ITEM_LABELED,
-    ITEM_SKIPPED,
-    LABELED,
-    SKIPPED,
-    WAITING,
-    PoolState,
-)
+from leadline.service.engine.ledger import select
+from leadline.service.engine.pool import AVAILABLE, ITEM_LABELED, ITEM_SKIPPED, PoolState
 from leadline.service.engine.results import AssignmentInfo, ItemProblem, LabelInput, OutcomeResult
 from leadline.service.errors import (
     FailedPrecondition,
@@ -32,7 +24,7 @@ from leadline.service.errors import (
     PermissionDenied,
     ServiceError,
 )
-from leadline.service.estimation import SurrogateScores, draw_batch, usefulness
+from leadline.service.estimation import SurrogateScores
 from leadline.service.store import records as store
 from leadline.service.store.records import Write
 
@@ -52,23 +44,23 @@ def acquire(
     ``lease_seconds`` (call with ``pool.lock`` held)."""
     now = now_ms()
     expire = now + 1000 * lease_seconds
-    draws = pool.draws
+    data = pool.data
+    draws = data.draws
     status = draws.status.view
-    free = (status == WAITING) | ((status == ASSIGNED) & (draws.lease_expire_ms.view <= now))
+    free = (status == DrawStatus.WAITING) | (
+        (status == DrawStatus.ASSIGNED) & (draws.lease_expire_ms.view <= now)
+    )
     reoffer = np.flatnonzero(free)[:count]
-    updates: list[dict[str, Any]] = []
+    updates: list[DrawRecord] = []
     chosen: list[int] = []
     for index in reoffer.tolist():
-        old = draws.assignment_id[index]
-        pool.assignments.pop(old, None)
+        data.assignments.pop(draws.assignment_id[index], None)
         assignment = _new_assignment_id(index)
-        draws.status.view[index] = ASSIGNED
-        draws.labeler[index] = labeler
-        draws.holder[index] = holder
-        draws.assignment_id[index] = assignment
-        draws.lease_expire_ms.view[index] = expire
-        pool.assignments[assignment] = index
-        updates.append(draws.outcome_record(index))
+        draws.assign(
+            index, labeler=labeler, holder=holder, assignment_id=assignment, lease_expire_ms=expire
+        )
+        data.assignments[assignment] = index
+        updates.append(draws.at(index))
         chosen.append(index)
     writes: list[Write] = []
     if updates:
@@ -77,12 +69,10 @@ def acquire(
     if wanted > 0:
         records = _new_draws(pool, wanted, labeler, holder, now, expire, floor=floor)
         if records:
-            start = len(draws)
-            draws.append(records)
-            pool.mark_drawn_items(start)
+            data.mark_drawn_items(records[0].draw_index)
             for record in records:
-                pool.assignments[record["assignment_id"]] = record["draw_index"]
-            chosen.extend(r["draw_index"] for r in records)
+                data.assignments[record.assignment_id] = record.draw_index
+            chosen.extend(r.draw_index for r in records)
             writes.append(store.insert_draws(pool.pool_id, records))
     if chosen:
         pool.touch()
@@ -96,7 +86,8 @@ def submit(
     """Record labels and skips of held assignments; per-item problems come back listed
     (call with ``pool.lock`` held)."""
     now = now_ms()
-    draws = pool.draws
+    data = pool.data
+    draws = data.draws
     problems: list[ItemProblem] = []
     to_label: list[tuple[int, float]] = []
     to_skip: list[tuple[int, str]] = []
@@ -125,24 +116,19 @@ def submit(
         indices = np.array([i for i, _ in to_label], dtype=np.int64)
         values = np.array([v for _, v in to_label], dtype=np.float64)
         rows = draws.row.view[indices]
-        outputs = pool.outputs.view[rows].astype(np.float64)
+        outputs = data.outputs.view[rows].astype(np.float64)
         typed = values.astype(np.int64) if pool.settings.is_classification else values
         losses = np.asarray(pool.spec.losses(outputs, typed), dtype=np.float64)
-        draws.status.view[indices] = LABELED
-        draws.label.view[indices] = values
-        draws.loss.view[indices] = losses
-        draws.label_time_ms.view[indices] = now
-        pool.status.view[rows] = ITEM_LABELED
+        draws.label(indices, values, losses, time_ms=now)
+        data.status.view[rows] = ITEM_LABELED
         changed.extend(indices.tolist())
     for index, reason in to_skip:
-        draws.status.view[index] = SKIPPED
-        draws.skip_reason[index] = reason
-        draws.label_time_ms.view[index] = now
-        pool.status.view[int(draws.row.view[index])] = ITEM_SKIPPED
+        draws.skip(index, reason, time_ms=now)
+        data.status.view[int(draws.row.view[index])] = ITEM_SKIPPED
         changed.append(index)
     writes: list[Write] = []
     if changed:
-        writes.append(store.update_draws(pool.pool_id, [draws.outcome_record(i) for i in changed]))
+        writes.append(store.update_draws(pool.pool_id, [draws.at(i) for i in changed]))
         pool.touch()
     result = OutcomeResult(
         accepted=len(to_label) + len(to_skip) + noop,
@@ -159,7 +145,7 @@ def release(
     (call with ``pool.lock`` held). The lease ends at the release: ``lease_expire_ms``
     records when, so a late submission can say the assignment was released and when."""
     now = now_ms()
-    draws = pool.draws
+    draws = pool.data.draws
     problems: list[ItemProblem] = []
     changed: list[int] = []
     released = 0
@@ -167,23 +153,23 @@ def release(
         try:
             index = _held_draw(pool, assignment_id, labeler, holder, position)
             status = int(draws.status.view[index])
-            if status in (LABELED, SKIPPED):
+            if status in (DrawStatus.LABELED, DrawStatus.SKIPPED):
                 raise FailedPrecondition(
                     f"assignment_ids[{position}] = {assignment_id!r}: already "
-                    f"{'labeled' if status == LABELED else 'skipped'}; nothing to release.",
+                    f"{'labeled' if status == DrawStatus.LABELED else 'skipped'}; nothing to "
+                    "release.",
                     field="assignment_ids",
                 )
         except ServiceError as error:
             problems.append(_problem(pool, assignment_id, error))
             continue
         released += 1
-        if status == ASSIGNED:
-            draws.status.view[index] = WAITING
-            draws.lease_expire_ms.view[index] = min(int(draws.lease_expire_ms.view[index]), now)
+        if status == DrawStatus.ASSIGNED:
+            draws.release(index, time_ms=now)
             changed.append(index)
     writes: list[Write] = []
     if changed:
-        writes.append(store.update_draws(pool.pool_id, [draws.outcome_record(i) for i in changed]))
+        writes.append(store.update_draws(pool.pool_id, [draws.at(i) for i in changed]))
         pool.touch()
     result = OutcomeResult(
         accepted=released, errors=tuple(problems[:MAX_ITEM_ERRORS]), rejected=len(problems)
@@ -196,16 +182,17 @@ def _new_assignment_id(draw_index: int) -> str:
 
 
 def _assignment_info(pool: PoolState, index: int) -> AssignmentInfo:
-    draws = pool.draws
+    data = pool.data
+    draws = data.draws
     row = int(draws.row.view[index])
     return AssignmentInfo(
         assignment_id=draws.assignment_id[index],
-        item_id=pool.item_ids[row],
-        payload_ref=pool.payload_refs[row],
+        item_id=data.item_ids[row],
+        payload_ref=data.payload_refs[row],
         lease_expire_time_ms=int(draws.lease_expire_ms.view[index]),
         selection_probability=float(draws.probability.view[index]),
         draw_index=index,
-        segment=pool.segment_names[int(pool.segment.view[row])],
+        segment=data.segment_names[int(data.segment.view[row])],
     )
 
 
@@ -218,89 +205,53 @@ def _new_draws(
     expire: int,
     *,
     floor: float,
-) -> list[dict[str, Any]]:
-    """Up to ``wanted`` new draws from the unlabeled, unassigned items, as store records.
+) -> list[DrawRecord]:
+    """Up to ``wanted`` new draws from the unlabeled, unassigned items, logged in the
+    ledger (the new records come back for the store).
 
     The generator is seeded by the pool's seed and the draw count, so the same history
     replays the same draws."""
-    candidates = np.flatnonzero(pool.status.view == AVAILABLE)
+    data = pool.data
+    candidates = np.flatnonzero(data.status.view == AVAILABLE)
     k = min(wanted, int(candidates.shape[0]))
     if k == 0:
         return []
-    g = pool.expected_loss.view[candidates]
-    surrogate_scores = SurrogateScores(
-        expected_loss=g,
-        residual_second_moment=pool.second_moment.view[candidates],
-        spread=pool.spread.view[candidates],
-        worst_squared_deviation=pool.worst_deviation.view[candidates],
+    scores = SurrogateScores(
+        expected_loss=data.expected_loss.view[candidates],
+        residual_second_moment=data.second_moment.view[candidates],
+        spread=data.spread.view[candidates],
+        worst_squared_deviation=data.worst_deviation.view[candidates],
     )
-    # The reliance guard chose, at the last refit, the control variate h (g shrunk towards
-    # a constant) and the floor from the labels of that time: fixed before these draws.
-    reliance = pool.reliance_for(floor)
-    scores = reliance.apply(surrogate_scores, loss_bound=pool.loss_bound)
-    h = scores.expected_loss
-    worst = scores.worst_squared_deviation
-    assert worst is not None
-    # The hedged rule: the label-efficiency benchmark measured it against the plain one.
-    u = usefulness(scores, loss_bound=pool.loss_bound)
-    start = len(pool.draws)
-    rng = np.random.default_rng([pool.seed, start])
-    batch = draw_batch(
-        u,
-        h,
+    start = len(data.draws)
+    selection = select(
+        scores,
         k,
-        floor=reliance.floor,
+        # The reliance guard chose, at the last refit, the control variate h (g shrunk
+        # towards a constant) and the floor from the labels of that time: fixed before
+        # these draws.
+        reliance=data.reliance_for(floor),
         loss_bound=pool.loss_bound,
-        rng=rng,
-        groups=pool.segment.view[candidates].astype(np.int64),
-        num_groups=len(pool.segment_names),
-        # Each item's own reach |L - h| narrows the anytime bound's per-draw ranges.
-        max_deviation=np.sqrt(worst),
+        rng=np.random.default_rng([pool.seed, start]),
+        groups=data.segment.view[candidates].astype(np.int64),
+        num_groups=len(data.segment_names),
     )
-    rows = candidates[batch.positions]
-    by_group = batch.remaining_expected_loss_by_group
-    version = pool.surrogate_version
-    records = []
-    for j in range(k):
-        index = start + j
-        records.append(
-            {
-                "draw_index": index,
-                "row": int(rows[j]),
-                # The last remaining item's probability can exceed 1 by rounding
-                # (1 + 1e-14); the core's term check wants (0, 1].
-                "probability": min(float(batch.probabilities[j]), 1.0),
-                "remaining_count": int(batch.remaining_counts[j]),
-                "remaining_expected_loss": float(batch.remaining_expected_loss[j]),
-                "remaining_by_segment": (
-                    b"" if by_group is None else np.asarray(by_group[j], np.float64).tobytes()
-                ),
-                "correction_low": float(batch.correction_low[j]),
-                "correction_high": float(batch.correction_high[j]),
-                "min_probability": min(float(batch.min_probability[j]), 1.0),
-                "expected_loss": float(h[batch.positions[j]]),
-                "second_moment": float(scores.residual_second_moment[batch.positions[j]]),
-                "surrogate_version": version,
-                "arrival_mark": pool.item_count,
-                "draw_time_ms": now,
-                "status": ASSIGNED,
-                "labeler": labeler,
-                "holder": holder,
-                "assignment_id": _new_assignment_id(index),
-                "lease_expire_ms": expire,
-                "label": None,
-                "loss": None,
-                "label_time_ms": 0,
-                "skip_reason": "",
-            }
-        )
-    return records
+    return data.draws.record(
+        selection,
+        rows=candidates[selection.positions],
+        surrogate_version=data.surrogate_version,
+        arrival_mark=data.item_count,
+        draw_time_ms=now,
+        labeler=labeler,
+        holder=holder,
+        lease_expire_ms=expire,
+        assignment_id=_new_assignment_id,
+    )
 
 
 def _held_draw(
     pool: PoolState, assignment_id: str, labeler: str, holder: str, position: int
 ) -> int:
-    index = pool.assignments.get(assignment_id)
+    index = pool.data.assignments.get(assignment_id)
     if index is None:
         raise NotFound(
             f"labels[{position}].assignment_id = {assignment_id!r}: no such assignment in "
@@ -308,7 +259,7 @@ def _held_draw(
             "re-offered under a new assignment id).",
             field="assignment_id",
         )
-    draws = pool.draws
+    draws = pool.data.draws
     if draws.labeler[index] != labeler or draws.holder[index] != holder:
         raise PermissionDenied(
             f"labels[{position}].assignment_id = {assignment_id!r}: held by another labeler; "
@@ -322,7 +273,7 @@ def _check_submission(
     pool: PoolState, index: int, submission: LabelInput, position: int, now: int
 ) -> str:
     """'apply' or 'noop'; raises a ServiceError if the submission cannot be applied."""
-    draws = pool.draws
+    draws = pool.data.draws
     status = int(draws.status.view[index])
     name = f"labels[{position}]"
     settings = pool.settings
@@ -352,31 +303,31 @@ def _check_submission(
                     f"{name}.value = {submission.value}: must be finite.", field="value"
                 )
             label = float(submission.value)
-        if status == LABELED:
-            if float(draws.label.view[index]) == label:
+        if status == DrawStatus.LABELED:
+            if float(draws.label_value.view[index]) == label:
                 return "noop"
             raise FailedPrecondition(
-                f"{name}: item {pool.item_ids[int(draws.row.view[index])]!r} is already "
-                f"labeled {draws.label.view[index]:g}; a different label ({label:g}) is "
+                f"{name}: item {pool.data.item_ids[int(draws.row.view[index])]!r} is already "
+                f"labeled {draws.label_value.view[index]:g}; a different label ({label:g}) is "
                 "refused.",
                 field="label",
             )
     else:
-        if status == SKIPPED:
+        if status == DrawStatus.SKIPPED:
             return "noop"
-    if status == LABELED:
+    if status == DrawStatus.LABELED:
         raise FailedPrecondition(
             f"{name}: the item is already labeled; it cannot be skipped.", field="label"
         )
-    if status == SKIPPED:
+    if status == DrawStatus.SKIPPED:
         raise FailedPrecondition(
             f"{name}: the item was skipped ({draws.skip_reason[index]!r}); it cannot be "
             "labeled now.",
             field="label",
         )
     lease_end = int(draws.lease_expire_ms.view[index])
-    if status == WAITING:
-        # Only a release makes a held draw WAITING; it set lease_expire_ms to its time.
+    if status == DrawStatus.WAITING:
+        # Only a release makes a held draw DrawStatus.WAITING; it set lease_expire_ms to its time.
         raise FailedPrecondition(
             f"{name}.assignment_id = {submission.assignment_id!r}: released at "
             f"{_when(lease_end)} and went back to be re-offered, so it no longer takes a "
@@ -400,8 +351,8 @@ def _when(ms: int) -> str:
 
 
 def _problem(pool: PoolState, assignment_id: str, error: ServiceError) -> ItemProblem:
-    index = pool.assignments.get(assignment_id)
-    item_id = "" if index is None else pool.item_ids[int(pool.draws.row.view[index])]
+    index = pool.data.assignments.get(assignment_id)
+    item_id = "" if index is None else pool.data.item_ids[int(pool.data.draws.row.view[index])]
     return ItemProblem(
         item_id=item_id,
         reason=error.message,

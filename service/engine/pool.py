@@ -1,4 +1,11 @@
-"""One pool's settings and in-memory state (numpy arrays rebuilt from SQLite at start-up).
+"""One pool in memory: its fixed settings, a stable handle, and replaceable contents.
+
+:class:`PoolState` is the handle every thread holds: the lock, the store lane, the epoch,
+the query cache, remembered request ids and the refit bookkeeping. It never changes
+identity. :class:`PoolData` is what the store can rebuild (items, scores, draws,
+validation items, the surrogate): at start-up and after a failed write the engine reads a
+fresh one and swaps it in whole (``handle.data = fresh``, :meth:`PoolState.replace_data`),
+so a field added to the contents is rebuilt on reload by construction.
 
 All mutation happens under ``PoolState.lock``; readers take the lock too while they gather
 arrays, then compute outside it where they can.
@@ -8,12 +15,15 @@ from __future__ import annotations
 
 import threading
 from collections import OrderedDict
-from dataclasses import asdict, dataclass, field
-from typing import Any
+from concurrent.futures import Future
+from dataclasses import asdict, dataclass
+from typing import Any, NamedTuple
 
 import numpy as np
 
+from leadline.service.draws import DrawStatus
 from leadline.service.engine.columns import Column
+from leadline.service.engine.ledger import DrawLedger
 from leadline.service.estimation import (
     EstimatorMode,
     LossKind,
@@ -28,19 +38,14 @@ __all__ = [
     "DRAWN",
     "ITEM_LABELED",
     "ITEM_SKIPPED",
-    "ASSIGNED",
-    "LABELED",
-    "SKIPPED",
-    "WAITING",
-    "DrawLog",
+    "PoolData",
     "PoolSettings",
     "PoolState",
+    "RememberedCall",
 ]
 
-# Item status codes (PoolState.status).
+# Item status codes (PoolData.status).
 AVAILABLE, DRAWN, ITEM_LABELED, ITEM_SKIPPED = 0, 1, 2, 3
-# Draw status codes (DrawLog.status); numerically equal to the proto's DrawStatus values.
-ASSIGNED, LABELED, SKIPPED, WAITING = 1, 2, 3, 4
 
 _REQUEST_MEMORY = 4096
 
@@ -103,112 +108,12 @@ class PoolSettings:
         return cls(**values)
 
 
-class DrawLog:
-    """The pool's draws in draw order: what was logged at draw time plus the outcome."""
+class PoolData:
+    """A pool's contents as the store can rebuild them (see the module docstring)."""
 
-    def __init__(self) -> None:
-        self.row = Column(np.int64)
-        self.probability = Column(np.float64)
-        self.remaining_count = Column(np.int64)
-        self.remaining_expected_loss = Column(np.float64)
-        self.remaining_by_segment: list[np.ndarray] = []
-        self.correction_low = Column(np.float64)
-        self.correction_high = Column(np.float64)
-        self.min_probability = Column(np.float64)
-        self.expected_loss = Column(np.float64)
-        self.second_moment = Column(np.float64)
-        self.surrogate_version = Column(np.int64)
-        self.arrival_mark = Column(np.int64)
-        self.draw_time_ms = Column(np.int64)
-        self.status = Column(np.int8)
-        self.lease_expire_ms = Column(np.int64)
-        self.label = Column(np.float64, fill=np.nan)
-        self.loss = Column(np.float64, fill=np.nan)
-        self.label_time_ms = Column(np.int64)
-        self.labeler: list[str] = []
-        self.holder: list[str] = []
-        self.assignment_id: list[str] = []
-        self.skip_reason: list[str] = []
-
-    def __len__(self) -> int:
-        return self.row.size
-
-    def append(self, records: list[dict[str, Any]]) -> None:
-        """Append draws given as column dicts (the store's row format)."""
-        if not records:
-            return
-
-        def column(name: str) -> np.ndarray:
-            return np.array([r[name] for r in records])
-
-        self.row.extend(column("row"))
-        self.probability.extend(column("probability"))
-        self.remaining_count.extend(column("remaining_count"))
-        self.remaining_expected_loss.extend(column("remaining_expected_loss"))
-        self.remaining_by_segment.extend(
-            np.frombuffer(r["remaining_by_segment"], dtype=np.float64) for r in records
-        )
-        self.correction_low.extend(column("correction_low"))
-        self.correction_high.extend(column("correction_high"))
-        self.min_probability.extend(column("min_probability"))
-        self.expected_loss.extend(column("expected_loss"))
-        self.second_moment.extend(column("second_moment"))
-        self.surrogate_version.extend(column("surrogate_version"))
-        self.arrival_mark.extend(column("arrival_mark"))
-        self.draw_time_ms.extend(column("draw_time_ms"))
-        self.status.extend(column("status"))
-        self.lease_expire_ms.extend(column("lease_expire_ms"))
-        self.label.extend(np.array([np.nan if r["label"] is None else r["label"] for r in records]))
-        self.loss.extend(np.array([np.nan if r["loss"] is None else r["loss"] for r in records]))
-        self.label_time_ms.extend(column("label_time_ms"))
-        self.labeler.extend(r["labeler"] for r in records)
-        self.holder.extend(r["holder"] for r in records)
-        self.assignment_id.extend(r["assignment_id"] for r in records)
-        self.skip_reason.extend(r["skip_reason"] for r in records)
-
-    def outcome_record(self, index: int) -> dict[str, Any]:
-        """The mutable columns of draw ``index`` in the store's format."""
-        label = float(self.label.view[index])
-        loss = float(self.loss.view[index])
-        return {
-            "draw_index": index,
-            "status": int(self.status.view[index]),
-            "labeler": self.labeler[index],
-            "holder": self.holder[index],
-            "assignment_id": self.assignment_id[index],
-            "lease_expire_ms": int(self.lease_expire_ms.view[index]),
-            "label": None if np.isnan(label) else label,
-            "loss": None if np.isnan(loss) else loss,
-            "label_time_ms": int(self.label_time_ms.view[index]),
-            "skip_reason": self.skip_reason[index],
-        }
-
-
-@dataclass
-class PoolState:
-    """Everything the server keeps in memory for one pool."""
-
-    settings: PoolSettings
-    seed: int
-    create_time_ms: int
-    spec: LossSpec = field(init=False)
-    loss_bound: float = field(init=False)
-    cold: Surrogate = field(init=False)
-    surrogate: Surrogate = field(init=False)
-    surrogate_label_count: int = 0
-    #: The reliance guard's choice made with the surrogate in force (None: full reliance).
-    reliance: Reliance | None = None
-    last_fit_time: float = 0.0
-    deleted: bool = False
-
-    def __post_init__(self) -> None:
-        self.spec = self.settings.loss_spec()
-        self.loss_bound = float(self.spec.bound)
-        self.cold = cold_start_surrogate(self.spec)
-        self.surrogate = self.cold
-        self.lock = threading.RLock()
-        d = self.settings.feature_dim
-        width = (self.settings.num_classes,) if self.settings.is_classification else ()
+    def __init__(self, settings: PoolSettings, cold: Surrogate) -> None:
+        d = settings.feature_dim
+        width = (settings.num_classes,) if settings.is_classification else ()
         self.item_ids: list[str] = []
         self.index: dict[str, int] = {}
         self.payload_refs: list[str] = []
@@ -226,7 +131,7 @@ class PoolState:
         self.item_draw = Column(np.int64, fill=-1)
         self.segment_names: list[str] = []
         self.segment_codes: dict[str, int] = {}
-        self.draws = DrawLog()
+        self.draws = DrawLedger()
         self.assignments: dict[str, int] = {}
         # Validation items: labeled rows from outside the pool that only the surrogate
         # sees (never drawn, never in an estimate, a scope or the item count).
@@ -236,66 +141,10 @@ class PoolState:
         self.validation_outputs = Column(np.float32, width)
         self.validation_labels = Column(np.float64)
         self.validation_segments: list[str] = []
-        # Notified (under ``lock``) whenever a refit ends: a draw waiting for the surrogate
-        # to cover newly added validation items waits on it.
-        self.refit_done = threading.Condition(self.lock)
-        # Bumped on every change that can move an estimate; keys the query cache.
-        self.state_version = 0
-        self.cache: dict[Any, Any] = {}
-        self.requests: OrderedDict[tuple[str, str, str], Any] = OrderedDict()
-        self.refitting = False
-        # Label and validation-item counts at the last failed refit (-1: none failed).
-        self.failed_fit_labels = -1
-        self.failed_fit_validation = -1
-        # The store lane of this pool's writes (see Database.submit) and the number of
-        # reloads after a failed write: a write remembers the epoch it was queued in.
-        self.lane = object()
-        self.epoch = 0
-        # Set after a failed write until the reload from the store succeeds.
-        self.reload_pending = False
-
-    # Attributes that survive a reload: the lock and lane (other threads hold them), the
-    # refit bookkeeping (a refit may be running), the counters that key caches.
-    _KEPT_ON_RELOAD = frozenset(
-        {
-            "lock",
-            "refit_done",
-            "lane",
-            "epoch",
-            "state_version",
-            "refitting",
-            "failed_fit_labels",
-            "failed_fit_validation",
-            "last_fit_time",
-        }
-    )
-
-    def reliance_for(self, floor: float) -> Reliance:
-        """The reliance in force, its floor at least ``floor`` (the configured minimum)."""
-        if self.reliance is None:
-            return Reliance(floor=floor)
-        return Reliance(
-            coefficient=self.reliance.coefficient,
-            constant=self.reliance.constant,
-            floor=max(self.reliance.floor, floor),
-        )
-
-    def adopt(self, fresh: PoolState) -> None:
-        """Take over ``fresh``'s state (rebuilt from the store) in place; caller holds the lock.
-
-        The object stays the same, so threads holding a reference (or waiting for the lock)
-        see the reloaded state; the epoch and state version move on, caches and remembered
-        request futures are dropped.
-        """
-        for name, value in fresh.__dict__.items():
-            if name not in self._KEPT_ON_RELOAD:
-                setattr(self, name, value)
-        self.epoch += 1
-        self.touch()
-
-    @property
-    def pool_id(self) -> str:
-        return self.settings.pool_id
+        #: The surrogate in force (it knows the labels it was fitted on).
+        self.surrogate: Surrogate = cold
+        #: The reliance guard's choice made with the surrogate in force (None: full).
+        self.reliance: Reliance | None = None
 
     @property
     def item_count(self) -> int:
@@ -309,44 +158,23 @@ class PoolState:
     def validation_count(self) -> int:
         return len(self.validation_ids)
 
-    def validation_refit_pending(self) -> bool:
-        """Validation items arrived that the current surrogate was not fitted on, and no
-        refit failed on exactly these (a failed one is retried only after more arrive)."""
-        count = self.validation_count
-        return count > self.surrogate.validation_count and count != self.failed_fit_validation
-
-    def touch(self) -> None:
-        self.state_version += 1
-        self.cache.clear()
-
-    def remember_request(self, key: tuple[str, str, str], value: Any) -> None:
-        """Keep a (method, holder, request_id) call's (future, payload, epoch, digest,
-        time_ms) at hand: the newest few thousand; older ones are read from the store."""
-        self.requests[key] = value
-        self.requests.move_to_end(key)
-        while len(self.requests) > _REQUEST_MEMORY:
-            self.requests.popitem(last=False)
-
-    def forget_requests(self, *, before_ms: int) -> None:
-        """Drop remembered calls made before ``before_ms`` (retention)."""
-        stale = [key for key, value in self.requests.items() if value[4] < before_ms]
-        for key in stale:
-            del self.requests[key]
-
-    def draw_counts(self) -> tuple[int, int, int]:
-        """(labeled, pending, skipped) draws."""
-        status = self.draws.status.view
-        labeled = int(np.count_nonzero(status == LABELED))
-        skipped = int(np.count_nonzero(status == SKIPPED))
-        return labeled, len(status) - labeled - skipped, skipped
+    def reliance_for(self, floor: float) -> Reliance:
+        """The reliance in force, its floor at least ``floor`` (the configured minimum)."""
+        if self.reliance is None:
+            return Reliance(floor=floor)
+        return Reliance(
+            coefficient=self.reliance.coefficient,
+            constant=self.reliance.constant,
+            floor=max(self.reliance.floor, floor),
+        )
 
     def mark_drawn_items(self, start: int) -> None:
         """Set the item status of the items drawn from draw ``start`` on."""
         rows = self.draws.row.view[start:]
         status = self.draws.status.view[start:]
         item_status = np.full(rows.shape, DRAWN, dtype=np.int8)
-        item_status[status == LABELED] = ITEM_LABELED
-        item_status[status == SKIPPED] = ITEM_SKIPPED
+        item_status[status == DrawStatus.LABELED] = ITEM_LABELED
+        item_status[status == DrawStatus.SKIPPED] = ITEM_SKIPPED
         self.status.view[rows] = item_status
         self.item_draw.view[rows] = np.arange(start, start + rows.shape[0])
 
@@ -362,3 +190,85 @@ class PoolState:
                 new_codes.append(code)
                 new_names.append(name)
         return new_codes, new_names
+
+
+class RememberedCall(NamedTuple):
+    """A write call with a request id, kept at hand for its retries: the commit it waits
+    for (None: read back from the store), its encoded reply, the epoch it was queued in,
+    the request's digest and when it was made (unix ms)."""
+
+    future: Future[Any] | None
+    payload: bytes
+    epoch: int
+    digest: str
+    time_ms: int
+
+
+class PoolState:
+    """The stable handle of one pool (see the module docstring); ``data`` is replaceable."""
+
+    def __init__(self, *, settings: PoolSettings, seed: int, create_time_ms: int) -> None:
+        self.settings = settings
+        self.seed = seed
+        self.create_time_ms = create_time_ms
+        self.spec = settings.loss_spec()
+        self.loss_bound = float(self.spec.bound)
+        self.cold = cold_start_surrogate(self.spec)
+        self.lock = threading.RLock()
+        # Notified (under ``lock``) whenever a refit ends: a draw waiting for the surrogate
+        # to cover newly added validation items waits on it.
+        self.refit_done = threading.Condition(self.lock)
+        # The store lane of this pool's writes (see Database.submit) and the number of
+        # reloads after a failed write: a write remembers the epoch it was queued in.
+        self.lane = object()
+        self.epoch = 0
+        # Bumped on every change that can move an estimate; keys the query cache.
+        self.state_version = 0
+        self.cache: dict[Any, Any] = {}
+        self.requests: OrderedDict[tuple[str, str, str], RememberedCall] = OrderedDict()
+        # Refit bookkeeping (survives a reload: a refit may be running).
+        self.refitting = False
+        self.last_fit_time = 0.0
+        # Label and validation-item counts at the last failed refit (-1: none failed).
+        self.failed_fit_labels = -1
+        self.failed_fit_validation = -1
+        self.deleted = False
+        # Set after a failed write until the reload from the store succeeds.
+        self.reload_pending = False
+        self.data = PoolData(settings, self.cold)
+
+    def replace_data(self, fresh: PoolData) -> None:
+        """Swap in contents rebuilt from the store (caller holds the lock): the epoch and
+        the state version move on, caches and remembered request futures are dropped."""
+        self.data = fresh
+        self.requests.clear()
+        self.epoch += 1
+        self.touch()
+
+    @property
+    def pool_id(self) -> str:
+        return self.settings.pool_id
+
+    def validation_refit_pending(self) -> bool:
+        """Validation items arrived that the current surrogate was not fitted on, and no
+        refit failed on exactly these (a failed one is retried only after more arrive)."""
+        count = self.data.validation_count
+        return count > self.data.surrogate.validation_count and count != self.failed_fit_validation
+
+    def touch(self) -> None:
+        self.state_version += 1
+        self.cache.clear()
+
+    def remember_request(self, key: tuple[str, str, str], call: RememberedCall) -> None:
+        """Keep a (method, holder, request_id) call at hand: the newest few thousand;
+        older ones are read from the store."""
+        self.requests[key] = call
+        self.requests.move_to_end(key)
+        while len(self.requests) > _REQUEST_MEMORY:
+            self.requests.popitem(last=False)
+
+    def forget_requests(self, *, before_ms: int) -> None:
+        """Drop remembered calls made before ``before_ms`` (retention)."""
+        stale = [key for key, call in self.requests.items() if call.time_ms < before_ms]
+        for key in stale:
+            del self.requests[key]

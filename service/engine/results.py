@@ -8,6 +8,7 @@ from typing import Any
 
 import numpy as np
 
+from leadline.service.draws import DrawStatus
 from leadline.service.engine.pool import PoolSettings
 from leadline.service.estimation import GateDecision, RiskEstimate
 
@@ -144,7 +145,7 @@ class DrawInfo:
     selection_probability: float
     surrogate_version: int
     expected_loss: float
-    status: int
+    status: DrawStatus
     label: float | None
     loss: float | None
     labeler: str

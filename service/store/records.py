@@ -15,6 +15,8 @@ from typing import Any
 
 import numpy as np
 
+from leadline.service.draws import DrawRecord, DrawStatus
+
 __all__ = [
     "DRAW_COLUMNS",
     "DRAW_UPDATE_COLUMNS",
@@ -208,10 +210,20 @@ def insert_validation_items(pool_id: str, chunk: ValidationChunk) -> Write:
     return write
 
 
-def insert_draws(pool_id: str, draws: Sequence[dict[str, Any]]) -> Write:
+def _draw_value(draw: DrawRecord, column: str) -> Any:
+    """A draw's field as the draws table stores it."""
+    value = getattr(draw, column)
+    if column == "remaining_by_segment":
+        return np.asarray(value, dtype=np.float64).tobytes()
+    if column == "status":
+        return int(value)
+    return value
+
+
+def insert_draws(pool_id: str, draws: Sequence[DrawRecord]) -> Write:
     placeholders = ", ".join("?" for _ in range(len(DRAW_COLUMNS) + 1))
     sql = f"INSERT INTO draws (pool_id, {', '.join(DRAW_COLUMNS)}) VALUES ({placeholders})"
-    rows = [(pool_id, *(draw[column] for column in DRAW_COLUMNS)) for draw in draws]
+    rows = [(pool_id, *(_draw_value(draw, column) for column in DRAW_COLUMNS)) for draw in draws]
 
     def write(connection: sqlite3.Connection) -> None:
         connection.executemany(sql, rows)
@@ -219,11 +231,12 @@ def insert_draws(pool_id: str, draws: Sequence[dict[str, Any]]) -> Write:
     return write
 
 
-def update_draws(pool_id: str, draws: Sequence[dict[str, Any]]) -> Write:
+def update_draws(pool_id: str, draws: Sequence[DrawRecord]) -> Write:
+    """Store the lease and outcome columns of ``draws`` (the draw-time ones never change)."""
     assignments = ", ".join(f"{column} = ?" for column in DRAW_UPDATE_COLUMNS)
     sql = f"UPDATE draws SET {assignments} WHERE pool_id = ? AND draw_index = ?"
     rows = [
-        (*(draw[column] for column in DRAW_UPDATE_COLUMNS), pool_id, draw["draw_index"])
+        (*(_draw_value(draw, column) for column in DRAW_UPDATE_COLUMNS), pool_id, draw.draw_index)
         for draw in draws
     ]
 
@@ -499,12 +512,19 @@ def load_validation_items(
         expected += n
 
 
-def load_draws(connection: sqlite3.Connection, pool_id: str) -> list[dict[str, Any]]:
+def load_draws(connection: sqlite3.Connection, pool_id: str) -> list[DrawRecord]:
+    """The pool's draws in draw order."""
     cursor = connection.execute(
         f"SELECT {', '.join(DRAW_COLUMNS)} FROM draws WHERE pool_id = ? ORDER BY draw_index",
         (pool_id,),
     )
-    return [dict(zip(DRAW_COLUMNS, row, strict=True)) for row in cursor]
+    draws = []
+    for row in cursor:
+        values = dict(zip(DRAW_COLUMNS, row, strict=True))
+        values["remaining_by_segment"] = np.frombuffer(values["remaining_by_segment"], np.float64)
+        values["status"] = DrawStatus(values["status"])
+        draws.append(DrawRecord(**values))
+    return draws
 
 
 def load_latest_model(

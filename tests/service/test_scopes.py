@@ -130,11 +130,12 @@ def test_window_terms_follow_the_definition(scoped: Harness, cancer_pool: Datase
             segment="north", start_time_ms=_T0 + 60_000 * 10, end_time_ms=_T0 + 60_000 * 80
         )
         inputs = build_scope_inputs(pool, scope)
-        g0 = pool.g0.view.copy()
-        names = np.array(pool.segment_names)[pool.segment.view]
-        t = pool.event_time_ms.view.copy()
-        rows = pool.draws.row.view.copy()
-        marks = pool.draws.arrival_mark.view.copy()
+        data = pool.data
+        g0 = data.g0.view.copy()
+        names = np.array(data.segment_names)[data.segment.view]
+        t = data.event_time_ms.view.copy()
+        rows = data.draws.row.view.copy()
+        marks = data.draws.arrival_mark.view.copy()
     in_scope = (names == "north") & (t >= scope.start_time_ms) & (t < scope.end_time_ms)
     assert marks.tolist() == [_N] * 7 + [_N + 30] * 5
     for m in range(rows.shape[0]):

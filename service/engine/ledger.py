@@ -1,0 +1,425 @@
+"""The draw ledger: how the next draws are made, what each draw logs, and the core's
+inputs built from the log.
+
+One path from a pool's scores to the estimator's terms, used by the engine, the label
+benchmark (``benchmarks/harness.py``), the system benchmark and the test simulator, so a
+benchmark measures the service's own code:
+
+1. :func:`select` makes the next k draws over the candidates: the reliance guard's control
+   variate h and floor (``Reliance``, chosen at the last refit), the hedged usefulness
+   (or an experiment's rule), ``draw_batch`` with each item's own reach |L - h|;
+2. :meth:`DrawLedger.record` logs them as :class:`DrawRecord` rows (the store's format);
+   :meth:`DrawLedger.label`, :meth:`DrawLedger.skip` and the lease updates record outcomes;
+3. :meth:`DrawLedger.terms` builds ``DrawTerms`` for the whole pool or a scope, and
+   :meth:`DrawLedger.plug_in_sums` the plug-in's ``PlugInSums``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from leadline.service.draws import DrawRecord, DrawStatus
+from leadline.service.engine.columns import Column
+from leadline.service.estimation import (
+    DRAW_LABELED,
+    DRAW_PENDING,
+    DRAW_SKIPPED,
+    DrawBatch,
+    DrawTerms,
+    PlugInSums,
+    Reliance,
+    SurrogateScores,
+    draw_batch,
+    usefulness,
+)
+
+__all__ = ["CORE_STATUS", "DrawLedger", "Selection", "UsefulnessRule", "core_status", "select"]
+
+#: Each draw status as the core's terms know it: outcome unknown (PENDING), LABELED, SKIPPED.
+CORE_STATUS: dict[DrawStatus, int] = {
+    DrawStatus.ASSIGNED: DRAW_PENDING,
+    DrawStatus.LABELED: DRAW_LABELED,
+    DrawStatus.SKIPPED: DRAW_SKIPPED,
+    DrawStatus.WAITING: DRAW_PENDING,
+}
+_CORE_TABLE = np.full(max(DrawStatus) + 1, DRAW_PENDING, dtype=np.int64)
+for _status, _code in CORE_STATUS.items():
+    _CORE_TABLE[_status] = _code
+
+#: (the candidates' scores as seen through the control variate h) -> usefulness >= 0.
+UsefulnessRule = Callable[[SurrogateScores], np.ndarray]
+
+
+def core_status(status: np.ndarray) -> np.ndarray:
+    """The core's ``DRAW_*`` codes of an array of :class:`DrawStatus` numbers."""
+    return _CORE_TABLE[np.asarray(status, dtype=np.int64)]
+
+
+@dataclass(frozen=True)
+class Selection:
+    """The next draws: the core's ``DrawBatch`` over the candidates, with the control
+    variate h and its predicted E[(L - h)^2] at each drawn candidate."""
+
+    batch: DrawBatch
+    expected_loss: np.ndarray
+    second_moment: np.ndarray
+
+    @property
+    def positions(self) -> np.ndarray:
+        return self.batch.positions
+
+
+def select(
+    scores: SurrogateScores,
+    count: int,
+    *,
+    reliance: Reliance,
+    loss_bound: float,
+    rng: np.random.Generator,
+    groups: np.ndarray | None = None,
+    num_groups: int = 0,
+    rule: UsefulnessRule | None = None,
+) -> Selection:
+    """``count`` sequential draws without replacement from the candidates ``scores``
+    describe (the current surrogate over them, in candidate order).
+
+    The surrogate's g is seen through the reliance guard's control variate
+    (``Reliance.apply``); the usefulness is the core's hedged rule (``rule`` replaces it
+    in experiments); the floor is the reliance's. Each candidate's own reach |L - h|
+    narrows the anytime bound's per-draw ranges.
+    """
+    seen = reliance.apply(scores, loss_bound=loss_bound)
+    useful = usefulness(seen, loss_bound=loss_bound) if rule is None else rule(seen)
+    worst = seen.worst_squared_deviation
+    batch = draw_batch(
+        useful,
+        seen.expected_loss,
+        count,
+        floor=reliance.floor,
+        loss_bound=loss_bound,
+        rng=rng,
+        groups=groups,
+        num_groups=num_groups,
+        max_deviation=None if worst is None else np.sqrt(worst),
+    )
+    return Selection(
+        batch=batch,
+        expected_loss=seen.expected_loss[batch.positions],
+        second_moment=seen.residual_second_moment[batch.positions],
+    )
+
+
+def _suffix_at(values: np.ndarray, marks: np.ndarray) -> np.ndarray:
+    """sum(values[mark:]) for each mark (0 at mark == len(values))."""
+    suffix = np.zeros(values.shape[0] + 1, dtype=np.float64)
+    suffix[:-1] = np.cumsum(values[::-1])[::-1]
+    return np.asarray(suffix[marks])
+
+
+class DrawLedger:
+    """A pool's draws in draw order, as columns: what was logged at draw time plus the
+    lease and the outcome. Mutated only under the owner's lock."""
+
+    def __init__(self) -> None:
+        self.row = Column(np.int64)
+        self.probability = Column(np.float64)
+        self.remaining_count = Column(np.int64)
+        self.remaining_expected_loss = Column(np.float64)
+        self.remaining_by_segment: list[np.ndarray] = []
+        self.correction_low = Column(np.float64)
+        self.correction_high = Column(np.float64)
+        self.min_probability = Column(np.float64)
+        self.expected_loss = Column(np.float64)
+        self.second_moment = Column(np.float64)
+        self.surrogate_version = Column(np.int64)
+        self.arrival_mark = Column(np.int64)
+        self.draw_time_ms = Column(np.int64)
+        self.status = Column(np.int8)
+        self.lease_expire_ms = Column(np.int64)
+        self.label_value = Column(np.float64, fill=np.nan)
+        self.loss = Column(np.float64, fill=np.nan)
+        self.label_time_ms = Column(np.int64)
+        self.labeler: list[str] = []
+        self.holder: list[str] = []
+        self.assignment_id: list[str] = []
+        self.skip_reason: list[str] = []
+
+    def __len__(self) -> int:
+        return self.row.size
+
+    # -- writing -------------------------------------------------------------------------
+    def record(
+        self,
+        selection: Selection,
+        *,
+        rows: np.ndarray,
+        surrogate_version: int,
+        arrival_mark: int,
+        draw_time_ms: int = 0,
+        labeler: str = "",
+        holder: str = "",
+        lease_expire_ms: int = 0,
+        assignment_id: Callable[[int], str] | None = None,
+    ) -> list[DrawRecord]:
+        """Log the selection's draws of pool ``rows`` (ASSIGNED to ``labeler``); returns
+        the new records (for the store). ``assignment_id(draw_index)`` names each."""
+        batch = selection.batch
+        by_group = batch.remaining_expected_loss_by_group
+        start = len(self)
+        records = [
+            DrawRecord(
+                draw_index=start + j,
+                row=int(rows[j]),
+                # The last remaining item's probability can exceed 1 by rounding
+                # (1 + 1e-14); the core's term check wants (0, 1].
+                probability=min(float(batch.probabilities[j]), 1.0),
+                remaining_count=int(batch.remaining_counts[j]),
+                remaining_expected_loss=float(batch.remaining_expected_loss[j]),
+                remaining_by_segment=(
+                    np.zeros(0) if by_group is None else np.asarray(by_group[j], np.float64)
+                ),
+                correction_low=float(batch.correction_low[j]),
+                correction_high=float(batch.correction_high[j]),
+                min_probability=min(float(batch.min_probability[j]), 1.0),
+                expected_loss=float(selection.expected_loss[j]),
+                second_moment=float(selection.second_moment[j]),
+                surrogate_version=surrogate_version,
+                arrival_mark=arrival_mark,
+                draw_time_ms=draw_time_ms,
+                status=DrawStatus.ASSIGNED,
+                labeler=labeler,
+                holder=holder,
+                assignment_id="" if assignment_id is None else assignment_id(start + j),
+                lease_expire_ms=lease_expire_ms,
+            )
+            for j in range(batch.positions.shape[0])
+        ]
+        self.append(records)
+        return records
+
+    def append(self, records: Sequence[DrawRecord]) -> None:
+        """Append records in draw order (new draws, or the store's rows at start-up)."""
+        if not records:
+            return
+
+        def column(name: str) -> np.ndarray:
+            return np.array([getattr(r, name) for r in records])
+
+        self.row.extend(column("row"))
+        self.probability.extend(column("probability"))
+        self.remaining_count.extend(column("remaining_count"))
+        self.remaining_expected_loss.extend(column("remaining_expected_loss"))
+        self.remaining_by_segment.extend(r.remaining_by_segment for r in records)
+        self.correction_low.extend(column("correction_low"))
+        self.correction_high.extend(column("correction_high"))
+        self.min_probability.extend(column("min_probability"))
+        self.expected_loss.extend(column("expected_loss"))
+        self.second_moment.extend(column("second_moment"))
+        self.surrogate_version.extend(column("surrogate_version"))
+        self.arrival_mark.extend(column("arrival_mark"))
+        self.draw_time_ms.extend(column("draw_time_ms"))
+        self.status.extend(np.array([int(r.status) for r in records]))
+        self.lease_expire_ms.extend(column("lease_expire_ms"))
+        self.label_value.extend(np.array([np.nan if r.label is None else r.label for r in records]))
+        self.loss.extend(np.array([np.nan if r.loss is None else r.loss for r in records]))
+        self.label_time_ms.extend(column("label_time_ms"))
+        self.labeler.extend(r.labeler for r in records)
+        self.holder.extend(r.holder for r in records)
+        self.assignment_id.extend(r.assignment_id for r in records)
+        self.skip_reason.extend(r.skip_reason for r in records)
+
+    def label(
+        self, indices: np.ndarray, labels: np.ndarray, losses: np.ndarray, *, time_ms: int = 0
+    ) -> None:
+        """Draws ``indices`` got ``labels`` with ``losses``: LABELED."""
+        self.status.view[indices] = DrawStatus.LABELED
+        self.label_value.view[indices] = labels
+        self.loss.view[indices] = losses
+        self.label_time_ms.view[indices] = time_ms
+
+    def skip(self, index: int, reason: str, *, time_ms: int) -> None:
+        """Draw ``index`` cannot be labeled (``reason``): SKIPPED."""
+        self.status.view[index] = DrawStatus.SKIPPED
+        self.skip_reason[index] = reason
+        self.label_time_ms.view[index] = time_ms
+
+    def assign(
+        self, index: int, *, labeler: str, holder: str, assignment_id: str, lease_expire_ms: int
+    ) -> None:
+        """Draw ``index`` is offered again: ASSIGNED to ``labeler`` under a new id."""
+        self.status.view[index] = DrawStatus.ASSIGNED
+        self.labeler[index] = labeler
+        self.holder[index] = holder
+        self.assignment_id[index] = assignment_id
+        self.lease_expire_ms.view[index] = lease_expire_ms
+
+    def release(self, index: int, *, time_ms: int) -> None:
+        """Draw ``index`` was given back: WAITING; its lease ends at ``time_ms``."""
+        self.status.view[index] = DrawStatus.WAITING
+        self.lease_expire_ms.view[index] = min(int(self.lease_expire_ms.view[index]), time_ms)
+
+    # -- reading -------------------------------------------------------------------------
+    def at(self, index: int) -> DrawRecord:
+        """Draw ``index`` as a record (the store's row format)."""
+        label = float(self.label_value.view[index])
+        loss = float(self.loss.view[index])
+        return DrawRecord(
+            draw_index=index,
+            row=int(self.row.view[index]),
+            probability=float(self.probability.view[index]),
+            remaining_count=int(self.remaining_count.view[index]),
+            remaining_expected_loss=float(self.remaining_expected_loss.view[index]),
+            remaining_by_segment=self.remaining_by_segment[index],
+            correction_low=float(self.correction_low.view[index]),
+            correction_high=float(self.correction_high.view[index]),
+            min_probability=float(self.min_probability.view[index]),
+            expected_loss=float(self.expected_loss.view[index]),
+            second_moment=float(self.second_moment.view[index]),
+            surrogate_version=int(self.surrogate_version.view[index]),
+            arrival_mark=int(self.arrival_mark.view[index]),
+            draw_time_ms=int(self.draw_time_ms.view[index]),
+            status=DrawStatus(int(self.status.view[index])),
+            labeler=self.labeler[index],
+            holder=self.holder[index],
+            assignment_id=self.assignment_id[index],
+            lease_expire_ms=int(self.lease_expire_ms.view[index]),
+            label=None if np.isnan(label) else label,
+            loss=None if np.isnan(loss) else loss,
+            label_time_ms=int(self.label_time_ms.view[index]),
+            skip_reason=self.skip_reason[index],
+        )
+
+    def counts(self) -> tuple[int, int, int]:
+        """(labeled, pending, skipped) draws."""
+        status = self.status.view
+        labeled = int(np.count_nonzero(status == DrawStatus.LABELED))
+        skipped = int(np.count_nonzero(status == DrawStatus.SKIPPED))
+        return labeled, len(status) - labeled - skipped, skipped
+
+    @property
+    def labeled(self) -> np.ndarray:
+        """Indices of the LABELED draws."""
+        return np.flatnonzero(self.status.view == DrawStatus.LABELED)
+
+    # -- the core's inputs ---------------------------------------------------------------
+    def terms(
+        self,
+        *,
+        item_count: int,
+        cold_expected_loss: np.ndarray,
+        loss_bound: float,
+        scope: np.ndarray | None = None,
+        segment: int = -1,
+        window: bool = False,
+    ) -> DrawTerms:
+        """``DrawTerms`` of every draw for the whole pool (``scope`` None) or for the items
+        where ``scope`` (bool over the pool's rows) is True (docs/core-api.md, ``DrawTerms``).
+
+        * whole pool and ``segment`` (a segment code): the control variate h_m is the
+          draw-time one, and the sums over the remaining items U_m were logged when the
+          draw was made (whole pool and per segment), as were the correction range and the
+          probability;
+        * ``window`` (a scope cut by event time): the logged sums do not split by event
+          time, so every term uses the label-free cold-start score g0 as its control
+          variate. g0 never depends on labels, so it is predictable and the difference
+          estimator stays exactly unbiased; the sum of g0 over U_m and the scope comes
+          from prefix sums in arrival order (items present at draw m are the rows below
+          its arrival mark, minus the items drawn before m), and the correction range is
+          the conservative [-B / min q_m, B / min q_m].
+
+        ``item_count`` and ``cold_expected_loss`` (g0 per item) describe the pool now:
+        ``late_*`` count the in-scope items that arrived after draw m, with their g0.
+        Everything is numpy over the columns: no per-item Python loop.
+        """
+        n = item_count
+        m = len(self)
+        rows = self.row.view
+        marks = self.arrival_mark.view
+        g0 = cold_expected_loss
+        if scope is None:
+            in_scope = np.ones(m, dtype=bool)
+            weighted = g0
+            late_count = (n - marks).astype(np.float64)
+        else:
+            in_scope = scope[rows]
+            weighted = np.where(scope, g0, 0.0)
+            late_count = _suffix_at(scope.astype(np.float64), marks)
+        # Suffix sums give exactly 0 where no item came later and never go negative (a total
+        # minus a prefix can, by rounding, and the core refuses negative sums).
+        late_g0 = _suffix_at(weighted, marks)
+        second_moment: np.ndarray | None
+        if window:
+            expected = g0[rows]
+            drawn_in_scope = np.where(in_scope, expected, 0.0)
+            drawn_before = np.cumsum(drawn_in_scope) - drawn_in_scope
+            present_g0 = np.cumsum(weighted)[marks - 1] if m else np.zeros(0)
+            remaining = np.maximum(present_g0 - drawn_before, 0.0)
+            min_q = self.min_probability.view
+            correction_low = -loss_bound / min_q
+            correction_high = loss_bound / min_q
+            # g0's residual second moment at the drawn items is not logged; the core then
+            # uses its bound h (B - h).
+            second_moment = None
+        else:
+            expected = self.expected_loss.view.copy()
+            correction_low = self.correction_low.view.copy()
+            correction_high = self.correction_high.view.copy()
+            second_moment = self.second_moment.view.copy()
+            if segment < 0:
+                remaining = self.remaining_expected_loss.view.copy()
+            else:
+                remaining = np.array(
+                    [
+                        float(sums[segment]) if segment < sums.shape[0] else 0.0
+                        for sums in self.remaining_by_segment
+                    ],
+                    dtype=np.float64,
+                )
+        labeled = self.status.view == DrawStatus.LABELED
+        return DrawTerms(
+            probability=self.probability.view.copy(),
+            expected_loss=np.asarray(expected, dtype=np.float64),
+            remaining_expected_loss=np.asarray(remaining, dtype=np.float64),
+            late_expected_loss=np.asarray(late_g0, dtype=np.float64),
+            late_count=np.asarray(late_count, dtype=np.float64),
+            in_scope=np.asarray(in_scope, dtype=bool),
+            status=core_status(self.status.view),
+            loss=np.where(labeled, self.loss.view, np.nan),
+            correction_low=np.asarray(correction_low, dtype=np.float64),
+            correction_high=np.asarray(correction_high, dtype=np.float64),
+            residual_second_moment=second_moment,
+            remaining_count=self.remaining_count.view.astype(np.float64),
+        )
+
+    def plug_in_sums(
+        self,
+        *,
+        unlabeled: np.ndarray,
+        expected_loss: np.ndarray,
+        second_moment: np.ndarray,
+        scope: np.ndarray | None = None,
+    ) -> PlugInSums:
+        """The plug-in's sums over the scope: the labeled draws' losses, and the current
+        surrogate's g and E[(L - g)^2] over the scope's items ``unlabeled`` marks (bool over
+        the pool's rows). The plug-in uses g itself: the reliance guard shapes the draws'
+        control variate, not the plug-in (a surrogate can be right on average yet a poor
+        per-item guide)."""
+        labeled = self.status.view == DrawStatus.LABELED
+        if scope is None:
+            size = int(unlabeled.shape[0])
+            in_scope = labeled
+            left = unlabeled
+        else:
+            size = int(np.count_nonzero(scope))
+            in_scope = labeled & scope[self.row.view]
+            left = unlabeled & scope
+        return PlugInSums(
+            scope_size=size,
+            labeled_loss_sum=float(self.loss.view[in_scope].sum()),
+            unlabeled_expected_loss_sum=float(expected_loss[left].sum()),
+            unlabeled_second_moment_sum=float(second_moment[left].sum()),
+            unlabeled_count=int(np.count_nonzero(left)),
+        )
