@@ -25,6 +25,12 @@ The surrogate sequence is fitted once per repetition, on leadline's own labels, 
 refit points; ``lure``, ``oracle`` and ``gate`` reuse that sequence. A surrogate fitted on
 another run's labels is independent of this run's draws, so it is a valid (predictable)
 control variate and proposal for them, and the comparison isolates the proposal.
+
+Every run draws, logs and builds its terms through the service's own ledger
+(``leadline.service.engine.ledger``: ``select``, ``DrawLedger.record`` / ``label``,
+``DrawLedger.terms`` / ``plug_in_sums``), and leadline's run chooses its reliance with the
+refit's own function (``choose_reliance_at_refit``), so the benchmark measures the code
+the server runs. Only the proposal differs between runs (``Proposal``).
 """
 
 from __future__ import annotations
@@ -37,6 +43,8 @@ import numpy as np
 from scipy import stats
 
 from benchmarks.scenarios import Scenario
+from leadline.service.engine.ledger import DrawLedger, select
+from leadline.service.engine.refit import choose_reliance_at_refit
 from leadline.service.estimation import (
     DEFAULT_FLOOR,
     DRAW_LABELED,
@@ -52,22 +60,18 @@ from leadline.service.estimation import (
     Verdict,
     anytime_path,
     check_gate,
-    choose_reliance,
     cold_start_surrogate,
-    cross_fitted_scores,
-    draw_batch,
     estimate_risk,
     fit_surrogate,
     lure_weights,
-    usefulness,
 )
 
 __all__ = [
-    "METHODS",
-    "RuleContext",
     "ANYTIME_METHODS",
+    "METHODS",
     "HarnessConfig",
     "RepetitionResult",
+    "RuleContext",
     "UsefulnessRule",
     "run_repetition",
 ]
@@ -89,12 +93,11 @@ class RuleContext:
 
 
 UsefulnessRule = Callable[[SurrogateScores, RuleContext], np.ndarray]
-"""(scores over the candidates, their context) -> usefulness >= 0."""
+"""(scores over the candidates, their context) -> usefulness >= 0: an experiment's
+replacement for the service's rule (``benchmarks/experiments/variants.py``)."""
 
-
-def _core_usefulness(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
-    # With the loss bound the core hedges against an overconfident surrogate.
-    return np.asarray(usefulness(scores, loss_bound=context.spec.bound), dtype=float)
+Proposal = Callable[[SurrogateScores, np.ndarray, int], np.ndarray]
+"""(candidates' scores seen through h, candidate rows, draws so far) -> usefulness."""
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -106,8 +109,8 @@ class HarnessConfig:
     refit_at: tuple[int, ...] = (10, 25, 50, 100)
     floor: float = DEFAULT_FLOOR
     gate_floor: float = 0.85
-    # leadline's runs choose each batch's control variate and floor with the core's
-    # reliance guard (``choose_reliance``); False = full reliance on the surrogate.
+    # leadline's runs choose each batch's control variate and floor with the refit's
+    # reliance guard (``choose_reliance_at_refit``); False = full reliance on the surrogate.
     guard: bool = True
     # Teach the surrogate with the scenario's validation rows (out-of-fold outputs on its
     # training part) from the first draw on.
@@ -115,19 +118,14 @@ class HarnessConfig:
     # Refits that land late: the draws use the surrogate fitted this many refit points
     # earlier (0 = every refit is in force for the next draw).
     refit_lag: int = 0
-    # Experiment (not adopted): leadline's runs raise the floor per batch with
-    # benchmarks.experiments.adaptive_floor.
-    adaptive_floor: bool = False
-    # Experiment: at each refit keep the cold start instead of the new fit when, on the
-    # draws made since the first refit, the fitted surrogates' honest predictions (each
-    # from a fit that had not seen the item) erred more than the cold start's.
-    cold_start_guard: bool = False
     confidence: float = 0.9
     anytime_from: int = 10
     seed: int = 20261202
     surrogate_settings: SurrogateSettings = field(default_factory=SurrogateSettings)
-    # Name of a rule in benchmarks.experiments.variants (None = the core's usefulness).
-    usefulness_rule: str | None = None
+    # The strategy hook of the selection experiments: a module-level (picklable) rule that
+    # replaces the service's usefulness in leadline's and the gate's runs; None = the
+    # service's own (``benchmarks/experiments/variants.py`` holds the candidates).
+    usefulness: UsefulnessRule | None = None
     # Which proposals to run besides leadline's (experiments skip the others to save time).
     with_baselines: bool = True
 
@@ -167,39 +165,73 @@ class RepetitionResult:
     gate_pass: np.ndarray | None = None
 
 
-@dataclass
 class _Run:
-    """Draw log of one sequential run (one proposal) over the pool."""
+    """One sequential run (one proposal) over the pool, logged in the service's ledger;
+    every drawn item is labeled at once with its true loss."""
 
-    pool_size: int
-    order: list[int] = field(default_factory=list)
-    probability: list[float] = field(default_factory=list)
-    expected_loss: list[float] = field(default_factory=list)
-    remaining_expected_loss: list[float] = field(default_factory=list)
-    correction_low: list[float] = field(default_factory=list)
-    correction_high: list[float] = field(default_factory=list)
-    residual_second_moment: list[float] = field(default_factory=list)
-    floor: list[float] = field(default_factory=list)
-    remaining_count: list[int] = field(default_factory=list)
-    sums_at: dict[int, PlugInSums] = field(default_factory=dict)
+    def __init__(self, scenario: Scenario) -> None:
+        self.scenario = scenario
+        self.ledger = DrawLedger()
+        self.labeled = np.zeros(scenario.pool_size, dtype=bool)
+        self.sums_at: dict[int, PlugInSums] = {}
+        self._terms: DrawTerms | None = None
 
-    def terms(self, losses: np.ndarray, count: int) -> DrawTerms:
-        items = np.asarray(self.order[:count], dtype=np.int64)
-        zeros = np.zeros(count)
-        return DrawTerms(
-            probability=np.asarray(self.probability[:count]),
-            expected_loss=np.asarray(self.expected_loss[:count]),
-            remaining_expected_loss=np.asarray(self.remaining_expected_loss[:count]),
-            late_expected_loss=zeros,
-            late_count=np.zeros(count, dtype=np.int64),
-            in_scope=np.ones(count, dtype=bool),
-            status=np.full(count, DRAW_LABELED, dtype=np.int64),
-            loss=losses[items].astype(float),
-            correction_low=np.asarray(self.correction_low[:count]),
-            correction_high=np.asarray(self.correction_high[:count]),
-            residual_second_moment=np.asarray(self.residual_second_moment[:count]),
-            remaining_count=np.asarray(self.remaining_count[:count]),
+    def draw(
+        self,
+        scores: SurrogateScores,
+        size: int,
+        *,
+        reliance: Reliance,
+        rng: np.random.Generator,
+        proposal: Proposal | None,
+        done: int,
+        version: int,
+    ) -> None:
+        """``size`` draws among the unlabeled items: the service's selection, then labels."""
+        scenario = self.scenario
+        candidates = np.flatnonzero(~self.labeled)
+        rule = None if proposal is None else (lambda seen: proposal(seen, candidates, done))
+        selection = select(
+            _subset(scores, candidates),
+            size,
+            reliance=reliance,
+            loss_bound=scenario.spec.bound,
+            rng=rng,
+            rule=rule,
         )
+        rows = candidates[selection.positions]
+        start = len(self.ledger)
+        self.ledger.record(
+            selection, rows=rows, surrogate_version=version, arrival_mark=scenario.pool_size
+        )
+        self.ledger.label(
+            np.arange(start, start + size),
+            scenario.labels[rows].astype(np.float64),
+            scenario.losses[rows].astype(np.float64),
+        )
+        self.labeled[rows] = True
+        self._terms = None
+
+    def plug_in(self, scores: SurrogateScores) -> PlugInSums:
+        """The plug-in's sums now, with the surrogate's current scores (as the service)."""
+        return self.ledger.plug_in_sums(
+            unlabeled=~self.labeled,
+            expected_loss=scores.expected_loss,
+            second_moment=scores.residual_second_moment,
+        )
+
+    def terms(self, count: int) -> DrawTerms:
+        """The whole-pool terms of the first ``count`` draws (a valid design by itself)."""
+        if self._terms is None:
+            n = self.scenario.pool_size
+            self._terms = self.ledger.terms(
+                item_count=n, cold_expected_loss=np.zeros(n), loss_bound=self.scenario.spec.bound
+            )
+        return self._terms.first(count)
+
+    @property
+    def rows(self) -> np.ndarray:
+        return self.ledger.row.view
 
 
 def _batches(config: HarnessConfig) -> list[int]:
@@ -217,17 +249,6 @@ def _batches(config: HarnessConfig) -> list[int]:
     return sizes
 
 
-def _plug_in_sums(scenario: Scenario, labeled: np.ndarray, scores: SurrogateScores) -> PlugInSums:
-    unlabeled = ~labeled
-    return PlugInSums(
-        scope_size=scenario.pool_size,
-        labeled_loss_sum=float(scenario.losses[labeled].sum()),
-        unlabeled_expected_loss_sum=float(scores.expected_loss[unlabeled].sum()),
-        unlabeled_second_moment_sum=float(scores.residual_second_moment[unlabeled].sum()),
-        unlabeled_count=int(np.count_nonzero(unlabeled)),
-    )
-
-
 def _subset(scores: SurrogateScores, idx: np.ndarray) -> SurrogateScores:
     worst = scores.worst_squared_deviation
     return SurrogateScores(
@@ -238,36 +259,78 @@ def _subset(scores: SurrogateScores, idx: np.ndarray) -> SurrogateScores:
     )
 
 
-def _choose_reliance(
-    scenario: Scenario,
-    run: _Run,
-    scores: SurrogateScores,
-    labeled: np.ndarray,
-    config: HarnessConfig,
-    seed: int,
-    validation: ValidationRows | None = None,
-) -> Reliance:
-    """The core's reliance guard at a refit, from the run's labeled draws scored honestly
-    (cross-fitted) and the new surrogate's scores over the remaining candidates."""
-    order = np.asarray(run.order, dtype=np.int64)
-    honest = cross_fitted_scores(
-        scenario.spec,
-        scenario.features[order],
-        scenario.outputs[order],
-        scenario.labels[order],
-        seed=seed,
-        settings=config.surrogate_settings,
-        validation=validation,
-    )
-    return choose_reliance(
-        losses=scenario.losses[order],
-        honest=honest,
-        probabilities=np.asarray(run.probability),
-        remaining_counts=np.asarray(run.remaining_count, dtype=float),
-        candidates=_subset(scores, np.flatnonzero(~labeled)),
-        loss_bound=scenario.spec.bound,
-        minimum_floor=config.floor,
-    )
+class _OwnSurrogates:
+    """leadline's surrogate sequence: refit on the run's own labels at the refit points
+    (the core's ``fit_surrogate``), each fit followed by the refit's reliance choice."""
+
+    def __init__(self, scenario: Scenario, config: HarnessConfig, fit_seed: int) -> None:
+        self.scenario = scenario
+        self.config = config
+        self.fit_seed = fit_seed
+        self.validation: ValidationRows | None = scenario.validation if config.validation else None
+        if config.validation and self.validation is None:
+            raise ValueError(f"scenario {scenario.name!r} has no validation rows.")
+        self.snapshots: dict[int, SurrogateScores] = {}
+        # Every version fitted so far with its reliance (for ``refit_lag``).
+        self.versions: list[tuple[SurrogateScores, Reliance]] = []
+        self.reliance = Reliance(floor=config.floor)
+        self.fit_seconds = 0.0
+        self._current: SurrogateScores | None = None
+
+    def at(self, m: int, run: _Run) -> SurrogateScores:
+        """The scores in force for draw m (fitted on the labels of draws before m)."""
+        if m == 0 or m in self.config.refit_at:
+            self._refit(m, run)
+        assert self._current is not None
+        return self._current
+
+    def _refit(self, m: int, run: _Run) -> None:
+        scenario, config = self.scenario, self.config
+        started = time.perf_counter()
+        rows = run.rows
+        if m == 0 and self.validation is None:
+            model = cold_start_surrogate(scenario.spec)
+        else:
+            model = fit_surrogate(
+                scenario.spec,
+                scenario.features[rows],
+                scenario.outputs[rows],
+                scenario.labels[rows],
+                version=len(self.snapshots),
+                seed=self.fit_seed + m,
+                settings=config.surrogate_settings,
+                validation=self.validation,
+            )
+        scores = model.score(scenario.features, scenario.outputs)
+        reliance = Reliance(floor=config.floor)
+        if config.guard and m > 0:
+            ledger = run.ledger
+            labeled = ledger.labeled
+            reliance = choose_reliance_at_refit(
+                scenario.spec,
+                scenario.features[rows],
+                scenario.outputs[rows],
+                scenario.labels[rows],
+                losses=ledger.loss.view[labeled],
+                probabilities=ledger.probability.view[labeled],
+                remaining_counts=ledger.remaining_count.view[labeled].astype(np.float64),
+                candidates=_subset(scores, np.flatnonzero(~run.labeled)),
+                floor=config.floor,
+                seed=self.fit_seed + m,
+                settings=config.surrogate_settings,
+                validation=self.validation,
+            )
+        # With refit_lag k the draws keep the version fitted k refits earlier: refits that
+        # finish after the next labels arrive (the draws stay predictable).
+        self.versions.append((scores, reliance))
+        scores, self.reliance = self.versions[max(0, len(self.versions) - 1 - config.refit_lag)]
+        self.snapshots[m] = self._current = scores
+        self.fit_seconds += time.perf_counter() - started
+
+    def shared(self, m: int) -> SurrogateScores:
+        """For the other runs: the latest snapshot fitted at or before m (on leadline's
+        labels, not theirs)."""
+        return self.snapshots[max(p for p in self.snapshots if p <= m)]
 
 
 def _sequential_run(
@@ -275,71 +338,65 @@ def _sequential_run(
     config: HarnessConfig,
     rng: np.random.Generator,
     *,
-    proposal: Callable[[SurrogateScores, np.ndarray, int], np.ndarray],
-    floor: float,
-    surrogate_for: Callable[[int, np.ndarray, _Run], SurrogateScores],
-    adapt: bool = False,
-    reliance_for: Callable[[], Reliance] | None = None,
+    surrogate_for: Callable[[int, _Run], SurrogateScores],
+    reliance_for: Callable[[], Reliance],
+    proposal: Proposal | None,
 ) -> _Run:
-    """Draw ``max_budget`` items in batches; ``surrogate_for(m, labeled, run)`` gives the
-    pool-wide scores current at draw m (fitted on labels before m only). ``adapt``: each
-    batch's floor from ``adaptive_floor`` over the draws so far (``floor`` the minimum).
-    ``reliance_for()``: the reliance (control variate and floor) in force for the next
-    batch, chosen at the last refit; None = full reliance at ``floor``."""
-    n = scenario.pool_size
-    run = _Run(pool_size=n)
-    labeled = np.zeros(n, dtype=bool)
-    bound = scenario.spec.bound
+    """Draw ``max_budget`` items in batches; ``surrogate_for(m, run)`` gives the pool-wide
+    scores current at draw m (fitted on labels before m only), ``reliance_for()`` the
+    reliance (control variate and floor) in force for the next batch. ``proposal`` None
+    is the service's usefulness."""
+    run = _Run(scenario)
     done = 0
-    scores = surrogate_for(0, labeled, run)
+    version = 0
+    scores = surrogate_for(0, run)
     for size in _batches(config):
-        candidates = np.flatnonzero(~labeled)
-        raw_scores = _subset(scores, candidates)
-        reliance = reliance_for() if reliance_for is not None else Reliance(floor=floor)
-        cand_scores = reliance.apply(raw_scores, loss_bound=bound)
-        u = proposal(cand_scores, candidates, done)
-        batch_floor = reliance.floor
-        if adapt:
-            from benchmarks.experiments.adaptive_floor import adaptive_floor
-
-            order = np.asarray(run.order, dtype=np.int64)
-            batch_floor = adaptive_floor(
-                scenario.losses[order] - np.asarray(run.expected_loss),
-                np.asarray(run.probability),
-                np.asarray(run.floor),
-                np.asarray(run.remaining_count, dtype=float),
-                minimum=floor,
-            )
-        worst = cand_scores.worst_squared_deviation
-        batch = draw_batch(
-            u,
-            cand_scores.expected_loss,
+        run.draw(
+            scores,
             size,
-            floor=batch_floor,
-            loss_bound=bound,
+            reliance=reliance_for(),
             rng=rng,
-            max_deviation=None if worst is None else np.sqrt(worst),
+            proposal=proposal,
+            done=done,
+            version=version,
         )
-        items = candidates[batch.positions]
-        run.order.extend(int(i) for i in items)
-        run.probability.extend(batch.probabilities.tolist())
-        run.floor.extend([batch_floor] * size)
-        run.remaining_count.extend(int(c) for c in batch.remaining_counts)
-        run.expected_loss.extend(cand_scores.expected_loss[batch.positions].tolist())
-        run.remaining_expected_loss.extend(batch.remaining_expected_loss.tolist())
-        run.correction_low.extend(batch.correction_low.tolist())
-        run.correction_high.extend(batch.correction_high.tolist())
-        run.residual_second_moment.extend(
-            cand_scores.residual_second_moment[batch.positions].tolist()
-        )
-        labeled[items] = True
         done += size
-        scores = surrogate_for(done, labeled, run)
+        if done in config.refit_at:
+            version += 1
+        scores = surrogate_for(done, run)
         if done in config.budgets:
-            run.sums_at[done] = _plug_in_sums(
-                scenario, labeled, reliance.apply(scores, loss_bound=bound)
-            )
+            run.sums_at[done] = run.plug_in(scores)
     return run
+
+
+def _leadline_proposal(scenario: Scenario, config: HarnessConfig) -> Proposal | None:
+    """The experiment's rule in the context it needs, or None (the service's rule)."""
+    rule = config.usefulness
+    if rule is None:
+        return None
+    refit_points = sorted(config.refit_at)
+
+    def proposal(scores: SurrogateScores, candidates: np.ndarray, done: int) -> np.ndarray:
+        # The surrogate in force was fitted on the labels up to the last refit point.
+        fitted_on = max((p for p in refit_points if p <= done), default=0)
+        context = RuleContext(
+            scenario.features[candidates], scenario.outputs[candidates], scenario.spec, fitted_on
+        )
+        return rule(scores, context)
+
+    return proposal
+
+
+def _lure_proposal(scores: SurrogateScores, _candidates: np.ndarray, _done: int) -> np.ndarray:
+    # Active testing: q proportional to the surrogate's expected loss.
+    return scores.expected_loss
+
+
+def _oracle_proposal(losses: np.ndarray) -> Proposal:
+    def proposal(scores: SurrogateScores, candidates: np.ndarray, _done: int) -> np.ndarray:
+        return np.abs(losses[candidates] - scores.expected_loss)
+
+    return proposal
 
 
 def _iid_row(
@@ -402,14 +459,100 @@ def _iid_terms(losses: np.ndarray, pool_size: int, bound: float) -> DrawTerms:
     )
 
 
-def _resolve_rule(name: str | None) -> UsefulnessRule:
-    if name is None:
-        return _core_usefulness
-    from benchmarks.experiments.variants import USEFULNESS_RULES
+class _Table:
+    """The repetition's result arrays, filled method by method."""
 
-    if name not in USEFULNESS_RULES:
-        raise ValueError(f"usefulness_rule={name!r} is unknown, known: {sorted(USEFULNESS_RULES)}.")
-    return USEFULNESS_RULES[name]
+    def __init__(self, config: HarnessConfig) -> None:
+        shape = (len(METHODS), len(config.budgets))
+        self.estimate = np.full(shape, np.nan)
+        self.lower = np.full(shape, np.nan)
+        self.upper = np.full(shape, np.nan)
+        self.gate_pass = np.full(shape, np.nan)
+        self.balanced_weight = np.full(len(config.budgets), np.nan)
+        self.anytime_lower = np.full((len(ANYTIME_METHODS), config.max_budget), np.nan)
+        self.anytime_upper = np.full((len(ANYTIME_METHODS), config.max_budget), np.nan)
+
+    def put(self, method: str, b: int, risk: float, lower: float, upper: float) -> None:
+        row = METHODS.index(method)
+        self.estimate[row, b], self.lower[row, b], self.upper[row, b] = risk, lower, upper
+
+    def path(
+        self, method: str, terms: DrawTerms, n: int, *, confidence: float, bound: float
+    ) -> None:
+        k = ANYTIME_METHODS.index(method)
+        lower, upper = anytime_path(terms, n, confidence=confidence, loss_bound=bound)
+        self.anytime_lower[k], self.anytime_upper[k] = lower, upper
+
+
+def _iid_method(
+    table: _Table, scenario: Scenario, config: HarnessConfig, rng: np.random.Generator
+) -> None:
+    """Uniform random sampling: sample mean and t interval; its anytime path."""
+    n, conf, bound = scenario.pool_size, config.confidence, scenario.spec.bound
+    losses = scenario.losses[rng.permutation(n)[: config.max_budget]]
+    est, lo, hi = _iid_row(losses, n, config.budgets, conf)
+    row = METHODS.index("iid")
+    table.estimate[row], table.lower[row], table.upper[row] = est, lo, hi
+    # One-sided at conf: the two-sided interval at 2 conf - 1 has the same upper edge.
+    table.gate_pass[row] = _iid_row(losses, n, config.budgets, 2 * conf - 1)[2] < float(
+        scenario.true_risk
+    )
+    table.path("iid", _iid_terms(losses, n, bound), n, confidence=conf, bound=bound)
+
+
+def _leadline_methods(table: _Table, run: _Run, scenario: Scenario, config: HarnessConfig) -> None:
+    """UNBIASED, BALANCED and SURROGATE on leadline's draws; UNBIASED's anytime path."""
+    conf, bound, truth = config.confidence, scenario.spec.bound, float(scenario.true_risk)
+    for b, m in enumerate(config.budgets):
+        terms, sums = run.terms(m), run.sums_at[m]
+        for mode, name in (
+            (EstimatorMode.UNBIASED, "unbiased"),
+            (EstimatorMode.BALANCED, "balanced"),
+            (EstimatorMode.SURROGATE, "surrogate"),
+        ):
+            r = estimate_risk(terms, sums, mode=mode, confidence=conf, loss_bound=bound)
+            table.put(name, b, r.risk, r.lower, r.upper)
+            if name == "balanced":
+                table.balanced_weight[b] = r.unbiased_weight
+            table.gate_pass[METHODS.index(name), b] = _wrong_pass(
+                terms, sums, mode, conf, bound, truth
+            )
+    n = scenario.pool_size
+    table.path("unbiased", run.terms(config.max_budget), n, confidence=conf, bound=bound)
+
+
+def _unbiased_method(
+    table: _Table, name: str, run: _Run, scenario: Scenario, config: HarnessConfig
+) -> None:
+    """UNBIASED on another proposal's draws (oracle, gate)."""
+    conf, bound, truth = config.confidence, scenario.spec.bound, float(scenario.true_risk)
+    for b, m in enumerate(config.budgets):
+        terms, sums = run.terms(m), run.sums_at[m]
+        r = estimate_risk(
+            terms, sums, mode=EstimatorMode.UNBIASED, confidence=conf, loss_bound=bound
+        )
+        table.put(name, b, r.risk, r.lower, r.upper)
+        table.gate_pass[METHODS.index(name), b] = _wrong_pass(
+            terms, sums, EstimatorMode.UNBIASED, conf, bound, truth
+        )
+    if name in ANYTIME_METHODS:
+        table.path(
+            name, run.terms(config.max_budget), scenario.pool_size, confidence=conf, bound=bound
+        )
+
+
+def _lure_method(table: _Table, run: _Run, scenario: Scenario, config: HarnessConfig) -> None:
+    """LURE weights on the active-testing draws, normal interval (common practice)."""
+    conf, n = config.confidence, scenario.pool_size
+    row = METHODS.index("lure")
+    for b, m in enumerate(config.budgets):
+        weights = lure_weights(run.ledger.probability.view[:m], n)
+        weighted = weights * scenario.losses[run.rows[:m]]
+        centre = float(weighted.mean())
+        half = stats.norm.ppf(0.5 + conf / 2) * weighted.std(ddof=1) / np.sqrt(m)
+        table.put("lure", b, centre, centre - half, centre + half)
+        one_sided = stats.norm.ppf(conf) * weighted.std(ddof=1) / np.sqrt(m)
+        table.gate_pass[row, b] = centre + one_sided < float(scenario.true_risk)
 
 
 def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -> RepetitionResult:
@@ -417,218 +560,68 @@ def run_repetition(scenario: Scenario, repetition: int, config: HarnessConfig) -
     started = time.perf_counter()
     scenario_key = sum(ord(c) for c in scenario.name)
     rng = np.random.default_rng([config.seed, scenario_key, repetition])
-    spec, features, outputs = scenario.spec, scenario.features, scenario.outputs
-    losses, labels, n = scenario.losses, scenario.labels, scenario.pool_size
-    budgets, conf, bound = config.budgets, config.confidence, spec.bound
-    rule = _resolve_rule(config.usefulness_rule)
-    fit_seconds = 0.0
-
-    # --- leadline's run, fitting its own surrogate sequence as labels arrive.
-    snapshots: dict[int, SurrogateScores] = {}
-    current: list[SurrogateScores] = []
-    refit_points = set(config.refit_at)
-    fit_seed = int(rng.integers(2**31 - 1))
-
-    fitted: dict[int, SurrogateScores] = {}
-
-    def _cold_start_erred_less(m: int, order: list[int]) -> bool:
-        # Draws t >= the first refit point: the fit in force at t (fitted[p], p <= t) had
-        # not seen item order[t]; compare its squared error with the cold start's.
-        points = sorted(p for p in fitted if 0 < p < m)
-        if not points:
-            return False
-        fit_err = cold_err = 0.0
-        for t in range(points[0], m):
-            p = max(q for q in points if q <= t)
-            item = order[t]
-            fit_err += float(losses[item] - fitted[p].expected_loss[item]) ** 2
-            cold_err += float(losses[item] - fitted[0].expected_loss[item]) ** 2
-        return cold_err < fit_err
-
-    reliance_now = [Reliance(floor=config.floor)]
-    versions: list[tuple[SurrogateScores, Reliance]] = []
-    validation = scenario.validation if config.validation else None
-    if config.validation and validation is None:
-        raise ValueError(f"scenario {scenario.name!r} has no validation rows.")
-
-    def own_surrogate(m: int, labeled: np.ndarray, run: _Run) -> SurrogateScores:
-        nonlocal fit_seconds
-        order = run.order
-        if m == 0 or m in refit_points:
-            t0 = time.perf_counter()
-            if m == 0 and validation is None:
-                model = cold_start_surrogate(spec)
-            else:
-                idx = np.asarray(order, dtype=np.int64)
-                model = fit_surrogate(
-                    spec,
-                    features[idx],
-                    outputs[idx],
-                    labels[idx],
-                    version=len(snapshots),
-                    seed=fit_seed + m,
-                    settings=config.surrogate_settings,
-                    validation=validation,
-                )
-            scores = model.score(features, outputs)
-            fit_seconds += time.perf_counter() - t0
-            fitted[m] = scores
-            if config.cold_start_guard and m > 0 and _cold_start_erred_less(m, order):
-                scores = fitted[0]
-            reliance = Reliance(floor=config.floor)
-            if config.guard and m > 0:
-                t0 = time.perf_counter()
-                reliance = _choose_reliance(
-                    scenario, run, scores, labeled, config, fit_seed + m, validation
-                )
-                fit_seconds += time.perf_counter() - t0
-            # With refit_lag k the draws keep the version fitted k refits earlier: refits
-            # that finish after the next labels arrive (the draws stay predictable).
-            versions.append((scores, reliance))
-            scores, reliance_now[0] = versions[max(0, len(versions) - 1 - config.refit_lag)]
-            snapshots[m] = scores
-            current[:] = [scores]
-        return current[0]
-
-    def rule_on_pool(scores: SurrogateScores, candidates: np.ndarray, done: int) -> np.ndarray:
-        # The surrogate in force was fitted on the labels up to the last refit point.
-        fitted_on = max((p for p in refit_points if p <= done), default=0)
-        context = RuleContext(features[candidates], outputs[candidates], spec, fitted_on)
-        return rule(scores, context)
-
+    own = _OwnSurrogates(scenario, config, fit_seed=int(rng.integers(2**31 - 1)))
+    proposal = _leadline_proposal(scenario, config)
     lead = _sequential_run(
         scenario,
         config,
         rng,
-        proposal=rule_on_pool,
-        floor=config.floor,
-        surrogate_for=own_surrogate,
-        adapt=config.adaptive_floor,
-        reliance_for=lambda: reliance_now[0],
+        surrogate_for=own.at,
+        reliance_for=lambda: own.reliance,
+        proposal=proposal,
     )
-    snapshot_points = sorted(snapshots)
-
-    def shared_surrogate(m: int, _labeled: np.ndarray, _run: _Run) -> SurrogateScores:
-        # The latest snapshot fitted at or before m (on leadline's labels, not this run's).
-        return snapshots[max(p for p in snapshot_points if p <= m)]
-
-    runs: dict[str, _Run] = {"leadline": lead}
+    runs: dict[str, _Run] = {}
     if config.with_baselines:
+        shared: Callable[[int, _Run], SurrogateScores] = lambda m, _run: own.shared(m)  # noqa: E731
+        full = Reliance(floor=config.floor)
+        gate = Reliance(floor=config.gate_floor)
         runs["lure"] = _sequential_run(
             scenario,
             config,
             rng,
-            proposal=lambda s, _c, _done: s.expected_loss,
-            floor=config.floor,
-            surrogate_for=shared_surrogate,
+            surrogate_for=shared,
+            reliance_for=lambda: full,
+            proposal=_lure_proposal,
         )
-
-        def oracle_proposal(s: SurrogateScores, c: np.ndarray, _done: int) -> np.ndarray:
-            return np.abs(losses[c] - s.expected_loss)
-
         runs["oracle"] = _sequential_run(
             scenario,
             config,
             rng,
-            proposal=oracle_proposal,
-            floor=config.floor,
-            surrogate_for=shared_surrogate,
+            surrogate_for=shared,
+            reliance_for=lambda: full,
+            proposal=_oracle_proposal(scenario.losses),
         )
         runs["gate"] = _sequential_run(
             scenario,
             config,
             rng,
-            proposal=rule_on_pool,
-            floor=config.gate_floor,
-            surrogate_for=shared_surrogate,
-            adapt=config.adaptive_floor,
+            surrogate_for=shared,
+            reliance_for=lambda: gate,
+            proposal=proposal,
         )
 
-    shape = (len(METHODS), len(budgets))
-    est, lo, hi = np.full(shape, np.nan), np.full(shape, np.nan), np.full(shape, np.nan)
-    gate_pass = np.full(shape, np.nan)
-    truth = float(scenario.true_risk)
-    balanced_weight = np.full(len(budgets), np.nan)
-    row = {name: i for i, name in enumerate(METHODS)}
-
+    table = _Table(config)
     # Its own stream: the i.i.d. baseline is the same whatever the other runs consumed,
     # so arms of an experiment are compared against identical baseline draws.
-    iid_rng = np.random.default_rng([config.seed, scenario_key, repetition, 1])
-    iid_items = iid_rng.permutation(n)[: config.max_budget]
-    iid_losses = losses[iid_items]
-    est[row["iid"]], lo[row["iid"]], hi[row["iid"]] = _iid_row(iid_losses, n, budgets, conf)
-    # One-sided at conf: the two-sided interval at 2 conf - 1 has the same upper edge.
-    gate_pass[row["iid"]] = _iid_row(iid_losses, n, budgets, 2 * conf - 1)[2] < truth
-
-    for b, m in enumerate(budgets):
-        terms = lead.terms(losses, m)
-        sums = lead.sums_at[m]
-        for mode, name in (
-            (EstimatorMode.UNBIASED, "unbiased"),
-            (EstimatorMode.BALANCED, "balanced"),
-            (EstimatorMode.SURROGATE, "surrogate"),
-        ):
-            r = estimate_risk(terms, sums, mode=mode, confidence=conf, loss_bound=bound)
-            est[row[name], b], lo[row[name], b], hi[row[name], b] = r.risk, r.lower, r.upper
-            if name == "balanced":
-                balanced_weight[b] = r.unbiased_weight
-            gate_pass[row[name], b] = _wrong_pass(terms, sums, mode, conf, bound, truth)
-        if not config.with_baselines:
-            continue
-        for name in ("oracle", "gate"):
-            r = estimate_risk(
-                runs[name].terms(losses, m),
-                runs[name].sums_at[m],
-                mode=EstimatorMode.UNBIASED,
-                confidence=conf,
-                loss_bound=bound,
-            )
-            est[row[name], b], lo[row[name], b], hi[row[name], b] = r.risk, r.lower, r.upper
-            gate_pass[row[name], b] = _wrong_pass(
-                runs[name].terms(losses, m),
-                runs[name].sums_at[m],
-                EstimatorMode.UNBIASED,
-                conf,
-                bound,
-                truth,
-            )
-        lure = runs["lure"]
-        weights = lure_weights(np.asarray(lure.probability[:m]), n)
-        weighted = weights * losses[np.asarray(lure.order[:m], dtype=np.int64)]
-        centre = float(weighted.mean())
-        half = stats.norm.ppf(0.5 + conf / 2) * weighted.std(ddof=1) / np.sqrt(m)
-        est[row["lure"], b], lo[row["lure"], b], hi[row["lure"], b] = (
-            centre,
-            centre - half,
-            centre + half,
-        )
-        one_sided = stats.norm.ppf(conf) * weighted.std(ddof=1) / np.sqrt(m)
-        gate_pass[row["lure"], b] = centre + one_sided < truth
-
-    path_len = config.max_budget
-    any_lo = np.full((len(ANYTIME_METHODS), path_len), np.nan)
-    any_hi = np.full((len(ANYTIME_METHODS), path_len), np.nan)
-    anytime_terms = {
-        "unbiased": lead.terms(losses, path_len),
-        "iid": _iid_terms(iid_losses, n, bound),
-    }
+    _iid_method(
+        table, scenario, config, np.random.default_rng([config.seed, scenario_key, repetition, 1])
+    )
+    _leadline_methods(table, lead, scenario, config)
     if config.with_baselines:
-        anytime_terms["gate"] = runs["gate"].terms(losses, path_len)
-    for k, name in enumerate(ANYTIME_METHODS):
-        if name in anytime_terms:
-            lower, upper = anytime_path(anytime_terms[name], n, confidence=conf, loss_bound=bound)
-            any_lo[k], any_hi[k] = lower, upper
+        _unbiased_method(table, "oracle", runs["oracle"], scenario, config)
+        _unbiased_method(table, "gate", runs["gate"], scenario, config)
+        _lure_method(table, runs["lure"], scenario, config)
 
     return RepetitionResult(
         scenario=scenario.name,
         repetition=repetition,
-        estimate=est,
-        lower=lo,
-        upper=hi,
-        anytime_lower=any_lo,
-        anytime_upper=any_hi,
-        balanced_weight=balanced_weight,
+        estimate=table.estimate,
+        lower=table.lower,
+        upper=table.upper,
+        anytime_lower=table.anytime_lower,
+        anytime_upper=table.anytime_upper,
+        balanced_weight=table.balanced_weight,
         seconds=time.perf_counter() - started,
-        fit_seconds=fit_seconds,
-        gate_pass=gate_pass,
+        fit_seconds=own.fit_seconds,
+        gate_pass=table.gate_pass,
     )

@@ -32,6 +32,7 @@ import numpy as np  # noqa: E402
 from benchmarks.harness import HarnessConfig  # noqa: E402
 from benchmarks.labels import run_benchmark, surrogate_settings  # noqa: E402
 from benchmarks.report import ScenarioSummary, summarize  # noqa: E402
+from benchmarks.experiments.variants import USEFULNESS_RULES  # noqa: E402
 from benchmarks.scenarios import SCENARIO_NAMES, build_scenario  # noqa: E402
 
 _RESULTS = Path(__file__).resolve().parent / "RESULTS.md"
@@ -44,23 +45,23 @@ def _arms() -> dict[str, dict[str, Any]]:
     base = surrogate_settings()
     return {
         "core": {},
-        "sqrt_second_moment": {"usefulness_rule": "sqrt_second_moment"},
-        "expected_loss": {"usefulness_rule": "expected_loss"},
-        "spread_x3": {"usefulness_rule": "spread_x3"},
-        "spread_x10": {"usefulness_rule": "spread_x10"},
-        "pow_0.25": {"usefulness_rule": "second_moment_pow_0.25"},
-        "pow_0.75": {"usefulness_rule": "second_moment_pow_0.75"},
+        "sqrt_second_moment": {"usefulness": USEFULNESS_RULES["plain_square_root"]},
+        "expected_loss": {"usefulness": USEFULNESS_RULES["expected_loss"]},
+        "spread_x3": {"usefulness": USEFULNESS_RULES["spread_x3"]},
+        "spread_x10": {"usefulness": USEFULNESS_RULES["spread_x10"]},
+        "pow_0.25": {"usefulness": USEFULNESS_RULES["second_moment_pow_0.25"]},
+        "pow_0.75": {"usefulness": USEFULNESS_RULES["second_moment_pow_0.75"]},
         "refit_150": {"refit_at": (10, 25, 50, 100, 150)},
-        "root_plus_loss": {"usefulness_rule": "root_plus_loss"},
-        "smoothed_0.1": {"usefulness_rule": "smoothed_0.1"},
-        "smoothed_1": {"usefulness_rule": "smoothed_1"},
-        "mixture_0.01": {"usefulness_rule": "mixture_0.01"},
-        "mixture_0.03": {"usefulness_rule": "mixture_0.03"},
-        "mixture_succession": {"usefulness_rule": "mixture_succession"},
-        "mixture_bound_0.01": {"usefulness_rule": "mixture_bound_0.01"},
-        "mixture_bound_0.003": {"usefulness_rule": "mixture_bound_0.003"},
-        "mixture_0.01_floor_0.2": {"usefulness_rule": "mixture_0.01", "floor": 0.2},
-        "mixture_0.01_floor_0.1": {"usefulness_rule": "mixture_0.01", "floor": 0.1},
+        "root_plus_loss": {"usefulness": USEFULNESS_RULES["root_plus_loss"]},
+        "smoothed_0.1": {"usefulness": USEFULNESS_RULES["smoothed_0.1"]},
+        "smoothed_1": {"usefulness": USEFULNESS_RULES["smoothed_1"]},
+        "mixture_0.01": {"usefulness": USEFULNESS_RULES["mixture_0.01"]},
+        "mixture_0.03": {"usefulness": USEFULNESS_RULES["mixture_0.03"]},
+        "mixture_succession": {"usefulness": USEFULNESS_RULES["mixture_succession"]},
+        "mixture_bound_0.01": {"usefulness": USEFULNESS_RULES["mixture_bound_0.01"]},
+        "mixture_bound_0.003": {"usefulness": USEFULNESS_RULES["mixture_bound_0.003"]},
+        "mixture_0.01_floor_0.2": {"usefulness": USEFULNESS_RULES["mixture_0.01"], "floor": 0.2},
+        "mixture_0.01_floor_0.1": {"usefulness": USEFULNESS_RULES["mixture_0.01"], "floor": 0.1},
         "floor_0.1": {"floor": 0.1},
         "floor_0.3": {"floor": 0.3},
         "floor_0.5": {"floor": 0.5},
@@ -69,13 +70,10 @@ def _arms() -> dict[str, dict[str, Any]]:
         "ensemble_10": {"surrogate_settings": replace(base, ensemble_size=10)},
         "rounds_80": {"surrogate_settings": replace(base, num_rounds=80)},
         "rounds_20": {"surrogate_settings": replace(base, num_rounds=20)},
-        "core_pow_0.75": {"usefulness_rule": "core_pow_0.75"},
-        "core_pow_0.5": {"usefulness_rule": "core_pow_0.5"},
+        "core_pow_0.75": {"usefulness": USEFULNESS_RULES["core_pow_0.75"]},
+        "core_pow_0.5": {"usefulness": USEFULNESS_RULES["core_pow_0.5"]},
         "floor_0.2": {"floor": 0.2},
         "floor_0.15": {"floor": 0.15},
-        "cold_start_guard": {"cold_start_guard": True},
-        "adaptive_floor": {"adaptive_floor": True},
-        "adaptive_floor_0.1": {"adaptive_floor": True, "floor": 0.1},
     }
 
 

@@ -17,11 +17,17 @@ that improve g elsewhere in the pool (epistemic spread).
 from __future__ import annotations
 
 from collections.abc import Callable
+from functools import partial
 
 import numpy as np
 
 from benchmarks.harness import RuleContext, UsefulnessRule
-from leadline.service.estimation import SurrogateScores, usefulness, worst_squared_deviation
+from leadline.service.estimation import (
+    SurrogateScores,
+    usefulness,
+    worst_squared_deviation,
+    worst_squared_deviation_of,
+)
 
 __all__ = ["USEFULNESS_RULES", "worst_case_second_moment"]
 
@@ -49,20 +55,26 @@ def worst_case_second_moment(scores: SurrogateScores, context: RuleContext) -> n
     return worst_squared_deviation(context.spec, context.outputs, scores.expected_loss)
 
 
-def _with_spread(weight: float) -> UsefulnessRule:
+# The factories below return ``functools.partial`` objects of module-level functions, so
+# a rule can travel to a benchmark worker inside ``HarnessConfig.usefulness`` (pickled).
+
+
+def _spread_rule(scores: SurrogateScores, _context: RuleContext, *, weight: float) -> np.ndarray:
     # Extra weight on the epistemic part: a label where the ensemble disagrees also
     # improves g for similar items (its value for the rest of the pool).
-    def rule(scores: SurrogateScores, _context: RuleContext) -> np.ndarray:
-        return np.sqrt(_second(scores) + weight * scores.spread**2)
+    return np.sqrt(_second(scores) + weight * scores.spread**2)
 
-    return rule
+
+def _with_spread(weight: float) -> UsefulnessRule:
+    return partial(_spread_rule, weight=weight)
+
+
+def _power_rule(scores: SurrogateScores, _context: RuleContext, *, exponent: float) -> np.ndarray:
+    return _second(scores) ** exponent
 
 
 def _power(exponent: float) -> UsefulnessRule:
-    def rule(scores: SurrogateScores, _context: RuleContext) -> np.ndarray:
-        return _second(scores) ** exponent
-
-    return rule
+    return partial(_power_rule, exponent=exponent)
 
 
 def _root_plus_loss(scores: SurrogateScores, _context: RuleContext) -> np.ndarray:
@@ -72,45 +84,57 @@ def _root_plus_loss(scores: SurrogateScores, _context: RuleContext) -> np.ndarra
     return root / max(root.mean(), 1e-12) + g / max(g.mean(), 1e-12)
 
 
-def _smoothed(share: float) -> UsefulnessRule:
+def _smoothed_rule(scores: SurrogateScores, _context: RuleContext, *, share: float) -> np.ndarray:
     # sqrt(E[(L-g)^2] + share * mean): a floor in the square-root scale.
-    def rule(scores: SurrogateScores, _context: RuleContext) -> np.ndarray:
-        second = _second(scores)
-        return np.sqrt(second + share * second.mean())
-
-    return rule
+    second = _second(scores)
+    return np.sqrt(second + share * second.mean())
 
 
-def _mixture(alpha: float | None, *, prior_labels: float = 10.0) -> UsefulnessRule:
+def _smoothed(share: float) -> UsefulnessRule:
+    return partial(_smoothed_rule, share=share)
+
+
+def _mixture_rule(
+    scores: SurrogateScores, context: RuleContext, *, alpha: float | None, prior_labels: float
+) -> np.ndarray:
     # The second moment under a mixture of the surrogate (weight 1 - a) and the worst case
     # (weight a): sqrt(E[(L-g)^2] + a * max (L-g)^2). A fixed a, or (alpha=None) the rule of
     # succession a = 1 / (labels + prior_labels): the chance of a kind of mistake not seen
     # among the labels so far.
-    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
-        a = alpha if alpha is not None else 1.0 / (context.label_count + prior_labels)
-        return np.sqrt(_second(scores) + a * worst_case_second_moment(scores, context))
+    a = alpha if alpha is not None else 1.0 / (context.label_count + prior_labels)
+    return np.sqrt(_second(scores) + a * worst_case_second_moment(scores, context))
 
-    return rule
+
+def _mixture(alpha: float | None, *, prior_labels: float = 10.0) -> UsefulnessRule:
+    return partial(_mixture_rule, alpha=alpha, prior_labels=prior_labels)
+
+
+def _mixture_bound_rule(
+    scores: SurrogateScores, context: RuleContext, *, alpha: float
+) -> np.ndarray:
+    # As _mixture, but the worst case from the loss bound alone, max(g, B - g)^2: needs
+    # only g and B (no loss table); the core's rule before it used the loss table.
+    worst = worst_squared_deviation_of(
+        SurrogateScores(scores.expected_loss, scores.residual_second_moment, scores.spread),
+        loss_bound=context.spec.bound,
+    )
+    return np.sqrt(_second(scores) + alpha * worst)
 
 
 def _mixture_bound(alpha: float) -> UsefulnessRule:
-    # As _mixture, but the worst case from the loss bound alone, max(g, B - g)^2: needs
-    # only g and B (no loss table); the core's rule before it used the loss table.
-    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
-        g = scores.expected_loss
-        worst = np.maximum(g, context.spec.bound - g) ** 2
-        return np.sqrt(_second(scores) + alpha * worst)
+    return partial(_mixture_bound_rule, alpha=alpha)
 
-    return rule
+
+def _core_power_rule(
+    scores: SurrogateScores, context: RuleContext, *, exponent: float
+) -> np.ndarray:
+    # The core's hedged rule raised to a power < 1: flatter where the surrogate's spread
+    # tracks the residuals only loosely.
+    return _core(scores, context) ** exponent
 
 
 def _core_power(exponent: float) -> UsefulnessRule:
-    # The core's hedged rule raised to a power < 1: flatter where the surrogate's spread
-    # tracks the residuals only loosely.
-    def rule(scores: SurrogateScores, context: RuleContext) -> np.ndarray:
-        return _core(scores, context) ** exponent
-
-    return rule
+    return partial(_core_power_rule, exponent=exponent)
 
 
 USEFULNESS_RULES: dict[str, Callable[[SurrogateScores, RuleContext], np.ndarray]] = {

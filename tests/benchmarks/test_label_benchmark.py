@@ -69,20 +69,23 @@ def test_repetition_runs_every_method_on_a_tiny_scenario() -> None:
     assert summary.cost.shape == (len(METHODS), 3)
 
 
-@pytest.mark.parametrize(
-    "option", [{"adaptive_floor": True}, {"cold_start_guard": True}], ids=lambda o: next(iter(o))
-)
-def test_experiment_options_keep_the_run_valid(option: dict) -> None:
-    # The experiment arms change only which predictable proposal / surrogate is used, so
-    # every method still yields finite estimates inside their intervals' ordering.
+def test_an_experiments_usefulness_hook_keeps_the_run_valid() -> None:
+    # An experiment replaces only the predictable proposal of leadline's and the gate's
+    # runs, so every method still yields finite estimates inside their intervals'
+    # ordering; the rule travels to workers pickled (a partial of a module function).
+    import pickle
+
+    from benchmarks.experiments.variants import USEFULNESS_RULES
+
+    rule = USEFULNESS_RULES["mixture_0.01"]
     scenario = build_scenario("breast_cancer", quick=True)
     config = HarnessConfig(
-        budgets=(10, 20, 40), refit_at=(10, 20, 40), batch_size=5, with_baselines=False, **option
+        budgets=(10, 20, 40), refit_at=(10, 20, 40), batch_size=5, usefulness=rule
     )
+    assert pickle.loads(pickle.dumps(config)).usefulness.func is rule.func
     result = run_repetition(scenario, 1, config)
-    leadline_rows = [METHODS.index(name) for name in ("unbiased", "balanced", "surrogate")]
-    assert np.all(np.isfinite(result.estimate[leadline_rows]))
-    assert np.all(result.lower[leadline_rows] <= result.upper[leadline_rows])
+    assert np.all(np.isfinite(result.estimate))
+    assert np.all(result.lower <= result.upper)
 
 
 def test_quick_command_writes_a_report(tmp_path: Path) -> None:

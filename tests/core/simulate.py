@@ -1,19 +1,17 @@
 """Test helper: run the selection loop on a fully labeled pool and build the ledger arrays.
 
-Not a mock: it calls the real ``draw_batch`` and builds ``DrawTerms`` the way the service
-does for the whole-pool scope (and optionally a segment scope).
+Not a mock: it draws, logs and builds ``DrawTerms`` / ``PlugInSums`` with the service's own
+ledger (``leadline.service.engine.ledger``: ``select``, ``DrawLedger``), the path the
+server takes for the whole-pool scope, with the plain usefulness sqrt(E[(L - g)^2]) (or
+the one given) in place of the server's hedged rule.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from leadline.service.estimation import (
-    DRAW_LABELED,
-    DrawTerms,
-    PlugInSums,
-    draw_batch,
-)
+from leadline.service.engine.ledger import DrawLedger, select
+from leadline.service.estimation import DrawTerms, PlugInSums, Reliance, SurrogateScores
 
 
 def run_draws(
@@ -27,34 +25,34 @@ def run_draws(
     loss_bound: float,
     rng: np.random.Generator,
     usefulness: np.ndarray | None = None,
-) -> tuple[np.ndarray, dict[str, np.ndarray]]:
-    """Draw ``draws`` items in batches; returns drawn pool indices and per-draw logs."""
+) -> tuple[np.ndarray, DrawLedger]:
+    """Draw ``draws`` items in batches; returns the drawn pool indices and the ledger."""
     n = losses.shape[0]
     u_all = np.sqrt(second_moment) if usefulness is None else usefulness
     remaining = np.arange(n)
-    logs: dict[str, list[np.ndarray]] = {
-        k: [] for k in ("probability", "remaining", "low", "high", "count")
-    }
-    picked = []
+    ledger = DrawLedger()
+    picked: list[int] = []
     while len(picked) < draws:
         k = min(batch, draws - len(picked))
-        b = draw_batch(
-            u_all[remaining],
-            expected_loss[remaining],
+        scores = SurrogateScores(
+            expected_loss=expected_loss[remaining],
+            residual_second_moment=second_moment[remaining],
+            spread=np.zeros(remaining.shape[0]),
+        )
+        left = remaining
+        selection = select(
+            scores,
             k,
-            floor=floor,
+            reliance=Reliance(floor=floor),
             loss_bound=loss_bound,
             rng=rng,
+            rule=lambda _seen, left=left: u_all[left],
         )
-        chosen = remaining[b.positions]
+        chosen = remaining[selection.positions]
+        ledger.record(selection, rows=chosen, surrogate_version=0, arrival_mark=n)
         picked.extend(chosen.tolist())
-        logs["probability"].append(b.probabilities)
-        logs["remaining"].append(b.remaining_expected_loss)
-        logs["low"].append(b.correction_low)
-        logs["high"].append(b.correction_high)
-        logs["count"].append(b.remaining_counts.astype(np.float64))
         remaining = np.setdiff1d(remaining, chosen, assume_unique=True)
-    return np.array(picked, dtype=np.int64), {k: np.concatenate(v) for k, v in logs.items()}
+    return np.array(picked, dtype=np.int64), ledger
 
 
 def pool_terms(
@@ -62,34 +60,20 @@ def pool_terms(
     expected_loss: np.ndarray,
     second_moment: np.ndarray,
     picked: np.ndarray,
-    logs: dict[str, np.ndarray],
+    ledger: DrawLedger,
     *,
     upto: int | None = None,
 ) -> tuple[DrawTerms, PlugInSums]:
     """Whole-pool DrawTerms / PlugInSums after the first ``upto`` draws, all labeled."""
+    n = losses.shape[0]
     m = picked.shape[0] if upto is None else upto
-    idx = picked[:m]
-    terms = DrawTerms(
-        probability=logs["probability"][:m],
-        expected_loss=expected_loss[idx],
-        remaining_expected_loss=logs["remaining"][:m],
-        late_expected_loss=np.zeros(m),
-        late_count=np.zeros(m, dtype=np.int64),
-        in_scope=np.ones(m, dtype=bool),
-        status=np.full(m, DRAW_LABELED),
-        loss=losses[idx],
-        correction_low=logs["low"][:m],
-        correction_high=logs["high"][:m],
-        residual_second_moment=second_moment[idx],
-        remaining_count=logs["count"][:m],
-    )
-    rest = np.ones(losses.shape[0], dtype=bool)
-    rest[idx] = False
-    sums = PlugInSums(
-        scope_size=losses.shape[0],
-        labeled_loss_sum=float(losses[idx].sum()),
-        unlabeled_expected_loss_sum=float(expected_loss[rest].sum()),
-        unlabeled_second_moment_sum=float(second_moment[rest].sum()),
-        unlabeled_count=int(rest.sum()),
+    first = DrawLedger()
+    first.append([ledger.at(index) for index in range(m)])
+    first.label(np.arange(m), losses[picked[:m]], losses[picked[:m]])
+    unlabeled = np.ones(n, dtype=bool)
+    unlabeled[picked[:m]] = False
+    terms = first.terms(item_count=n, cold_expected_loss=np.zeros(n), loss_bound=1.0)
+    sums = first.plug_in_sums(
+        unlabeled=unlabeled, expected_loss=expected_loss, second_moment=second_moment
     )
     return terms, sums
