@@ -52,15 +52,15 @@ if str(_ROOT) not in sys.path:  # run as a script: make `benchmarks` importable
 
 from benchmarks.markdown import replace_section  # noqa: E402
 from leadline.client import Client, LocalServer  # noqa: E402
+from leadline.service.engine.ledger import DrawLedger, select  # noqa: E402
 from leadline.service.estimation import (  # noqa: E402
     DEFAULT_FLOOR,
-    DRAW_LABELED,
-    DRAW_PENDING,
     DrawTerms,
     EstimatorMode,
     LossKind,
     LossSpec,
     PlugInSums,
+    Reliance,
     SurrogateScores,
     SurrogateSettings,
     cold_start_surrogate,
@@ -480,43 +480,31 @@ def _estimate_terms(
     labeled: int,
     rng: np.random.Generator,
 ) -> tuple[DrawTerms, PlugInSums]:
-    """Core inputs with the server's number of draws: a draw_batch of ``draws`` over the
-    pool's cold scores, the first ``labeled`` of them labeled with the true classes."""
-    batch = draw_batch(
-        usefulness(scores),
-        scores.expected_loss,
-        draws,
-        floor=SELECTION_FLOOR,
-        loss_bound=spec.bound,
-        rng=rng,
+    """Core inputs with the server's number of draws, built as the server builds them
+    (its ledger): ``draws`` draws over the pool's cold scores, the first ``labeled`` of
+    them labeled with the true classes."""
+    n = len(data.item_ids)
+    ledger = DrawLedger()
+    selection = select(
+        scores, draws, reliance=Reliance(floor=SELECTION_FLOOR), loss_bound=spec.bound, rng=rng
     )
-    rows = batch.positions
-    status = np.full(draws, DRAW_PENDING, dtype=np.int64)
-    status[:labeled] = DRAW_LABELED
-    losses = np.full(draws, np.nan)
-    losses[:labeled] = spec.losses(
-        data.outputs[rows[:labeled]].astype(np.float64), data.labels[rows[:labeled]]
+    rows = selection.positions
+    ledger.record(selection, rows=rows, surrogate_version=0, arrival_mark=n)
+    first = rows[:labeled]
+    ledger.label(
+        np.arange(labeled),
+        data.labels[first].astype(np.float64),
+        spec.losses(data.outputs[first].astype(np.float64), data.labels[first]),
     )
-    terms = DrawTerms(
-        probability=batch.probabilities,
-        expected_loss=scores.expected_loss[rows],
-        remaining_expected_loss=batch.remaining_expected_loss,
-        late_expected_loss=np.zeros(draws),
-        late_count=np.zeros(draws),
-        in_scope=np.ones(draws, dtype=bool),
-        status=status,
-        loss=losses,
-        correction_low=batch.correction_low,
-        correction_high=batch.correction_high,
-        residual_second_moment=scores.residual_second_moment[rows],
+    unlabeled = np.ones(n, dtype=bool)
+    unlabeled[first] = False
+    terms = ledger.terms(
+        item_count=n, cold_expected_loss=scores.expected_loss, loss_bound=spec.bound
     )
-    unlabeled = np.ones(len(data.item_ids), dtype=bool)
-    unlabeled[rows[:labeled]] = False
-    sums = PlugInSums(
-        scope_size=len(data.item_ids),
-        labeled_loss_sum=float(np.nansum(losses)),
-        unlabeled_expected_loss_sum=float(scores.expected_loss[unlabeled].sum()),
-        unlabeled_second_moment_sum=float(scores.residual_second_moment[unlabeled].sum()),
+    sums = ledger.plug_in_sums(
+        unlabeled=unlabeled,
+        expected_loss=scores.expected_loss,
+        second_moment=scores.residual_second_moment,
     )
     return terms, sums
 

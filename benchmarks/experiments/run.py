@@ -29,10 +29,10 @@ if str(_ROOT) not in sys.path:
 
 import numpy as np  # noqa: E402
 
+from benchmarks.experiments.variants import USEFULNESS_RULES  # noqa: E402
 from benchmarks.harness import HarnessConfig  # noqa: E402
 from benchmarks.labels import run_benchmark, surrogate_settings  # noqa: E402
 from benchmarks.report import ScenarioSummary, summarize  # noqa: E402
-from benchmarks.experiments.variants import USEFULNESS_RULES  # noqa: E402
 from benchmarks.scenarios import SCENARIO_NAMES, build_scenario  # noqa: E402
 
 _RESULTS = Path(__file__).resolve().parent / "RESULTS.md"
