@@ -131,11 +131,11 @@ class HarnessConfig:
 
     def __post_init__(self) -> None:
         if not self.budgets or list(self.budgets) != sorted(set(self.budgets)):
-            raise ValueError(f"budgets={self.budgets}, must be strictly increasing, non-empty.")
+            raise ValueError(f"budgets = {self.budgets}: must be strictly increasing, non-empty.")
         if self.budgets[0] < 2:
-            raise ValueError(f"budgets[0]={self.budgets[0]}, must be >= 2 (interval needs 2).")
+            raise ValueError(f"budgets[0] = {self.budgets[0]}: must be >= 2 (interval needs 2).")
         if self.batch_size < 1:
-            raise ValueError(f"batch_size={self.batch_size}, must be >= 1.")
+            raise ValueError(f"batch_size = {self.batch_size}: must be >= 1.")
 
     @property
     def max_budget(self) -> int:

@@ -323,7 +323,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     quick = bool(args.quick)
     repetitions = args.repetitions or (QUICK_REPETITIONS if quick else FULL_REPETITIONS)
     if repetitions < 2:
-        raise SystemExit(f"--repetitions={repetitions}, must be >= 2.")
+        raise SystemExit(f"--repetitions={repetitions}: must be >= 2.")
     names = args.scenarios or (QUICK_SCENARIO_NAMES if quick else SCENARIO_NAMES)
     output = args.output or (
         _ROOT / "bench-out" / "labels-quick.md" if quick else _ROOT / "BENCHMARKS.md"

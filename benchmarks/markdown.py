@@ -23,7 +23,7 @@ _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]*")
 def _check_name(name: str) -> str:
     if not isinstance(name, str) or not _NAME.fullmatch(name):
         raise ValueError(
-            f"name == {name!r}, must be letters, digits, '.', '_' or '-' (starting with a "
+            f"name = {name!r}: must be letters, digits, '.', '_' or '-' (starting with a "
             "letter or digit), e.g. 'system-benchmark'."
         )
     return name

@@ -55,7 +55,7 @@ def equivalent_iid_labels(
     if b.ndim != 1 or b.shape != r.shape or b.size < 2:
         raise ValueError(f"budgets and iid_rmse must be 1-d of equal length >= 2, got {b.shape}.")
     if not np.all(np.diff(b) > 0):
-        raise ValueError(f"budgets={list(budgets)}, must be strictly increasing.")
+        raise ValueError(f"budgets = {list(budgets)}: must be strictly increasing.")
     if not (np.isfinite(rmse) and rmse > 0):
         # Zero error: no finite i.i.d. budget matches it; NaN/inf: undefined.
         return (float("inf") if rmse == 0 else float("nan")), True

@@ -441,7 +441,7 @@ def build_scenario(name: str, *, quick: bool = False) -> Scenario:
     """Build scenario ``name`` (one of ``SCENARIO_NAMES``); ``quick`` shrinks large pools."""
     if name not in _BUILDERS:
         known = ", ".join(SCENARIO_NAMES)
-        raise ValueError(f"scenario {name!r} is unknown, must be one of {known}.")
+        raise ValueError(f"scenario {name!r} is unknown: must be one of {known}.")
     scenario = _BUILDERS[name](quick=quick)
     _LOG.debug("built %s: N=%d risk=%.4f", name, scenario.pool_size, scenario.true_risk)
     return scenario

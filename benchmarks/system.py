@@ -130,17 +130,17 @@ class SystemConfig:
             )
         for name in ("acquire_calls", "estimate_calls", "refit_every_labels", "refits"):
             if getattr(self, name) < 1:
-                raise ValueError(f"{name} == {getattr(self, name)}, must be >= 1.")
+                raise ValueError(f"{name} == {getattr(self, name)}: must be >= 1.")
         drawn = self.acquire_calls * sum(self.acquire_counts) + self.estimate_calls
         if drawn > self.items:
             raise ValueError(
                 f"acquire_calls * sum(acquire_counts) + estimate_calls == {drawn} draws, "
-                f"must be <= items == {self.items}."
+                f"must be <= items = {self.items}."
             )
         labels = self.refits * self.refit_every_labels
         if labels > self.acquire_calls * sum(self.acquire_counts):
             raise ValueError(
-                f"refits * refit_every_labels == {labels} labels, must be <= the "
+                f"refits * refit_every_labels = {labels} labels: must be <= the "
                 f"{self.acquire_calls * sum(self.acquire_counts)} items the acquire phase draws."
             )
 

@@ -65,13 +65,13 @@ class IngestColumns:
         feats = np.asarray(features, dtype=np.float32)
         if feats.ndim != 2 or feats.shape[0] != n:
             raise invalid_argument(
-                f"features has shape {feats.shape}, must be (n, feature_dim) with n == "
+                f"features has shape {feats.shape}: must be (n, feature_dim) with n == "
                 f"len(item_ids) == {n}."
             )
         outs = np.asarray(outputs, dtype=np.float32)
         if outs.ndim not in (1, 2) or outs.shape[0] != n:
             raise invalid_argument(
-                f"outputs has shape {outs.shape}, must be (n, num_classes) for "
+                f"outputs has shape {outs.shape}: must be (n, num_classes) for "
                 f"classification or (n,) for regression, with n == len(item_ids) == {n}."
             )
         refs = cls._optional_strings("payload_refs", payload_refs, n)
@@ -81,7 +81,7 @@ class IngestColumns:
             times = np.asarray(event_time_ms, dtype=np.int64)
             if times.shape != (n,):
                 raise invalid_argument(
-                    f"event_time_ms has shape {times.shape}, must be ({n},): one per item."
+                    f"event_time_ms has shape {times.shape}: must be ({n},): one per item."
                 )
         return cls(ids, feats, outs, refs, segs, times)
 
@@ -94,7 +94,7 @@ class IngestColumns:
         strings = [str(value) for value in values]
         if len(strings) != n:
             raise invalid_argument(
-                f"{name} has {len(strings)} entries, must have {n}: one per item."
+                f"{name} has {len(strings)} entries: must have {n}: one per item."
             )
         return strings
 
@@ -147,10 +147,10 @@ class ValidationColumns:
         values = np.asarray(labels)
         if values.shape != (n,):
             raise invalid_argument(
-                f"labels has shape {values.shape}, must be ({n},): one per item."
+                f"labels has shape {values.shape}: must be ({n},): one per item."
             )
         if values.dtype.kind not in "iuf":
-            raise invalid_argument(f"labels has dtype {values.dtype}, must be numeric.")
+            raise invalid_argument(f"labels has dtype {values.dtype}: must be numeric.")
         if classification:
             whole = np.isfinite(values) & (values == np.round(values))
             if not whole.all():
@@ -176,9 +176,9 @@ def plan_batches(row_bytes: np.ndarray, *, max_rows: int, max_bytes: int) -> lis
     A single row larger than the budget gets a batch of its own (the server then decides).
     """
     if max_rows < 1:
-        raise invalid_argument(f"max_rows == {max_rows}, must be >= 1.")
+        raise invalid_argument(f"max_rows = {max_rows}: must be >= 1.")
     if max_bytes <= _MESSAGE_OVERHEAD:
-        raise invalid_argument(f"max_bytes == {max_bytes}, must be > {_MESSAGE_OVERHEAD}.")
+        raise invalid_argument(f"max_bytes = {max_bytes}: must be > {_MESSAGE_OVERHEAD}.")
     budget = max_bytes - _MESSAGE_OVERHEAD
     slices: list[slice] = []
     start, n = 0, len(row_bytes)

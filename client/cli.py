@@ -843,9 +843,9 @@ def _run_gate(args: argparse.Namespace) -> int:
             f"(got --bound {args.bound})."
         )
     if not args.interval > 0:
-        raise _UsageError(f"leadline gate: --interval {args.interval:g}, must be > 0.")
+        raise _UsageError(f"leadline gate: --interval {args.interval:g}: must be > 0.")
     if args.wait < 0:
-        raise _UsageError(f"leadline gate: --wait {args.wait:g}, must be >= 0.")
+        raise _UsageError(f"leadline gate: --wait {args.wait:g}: must be >= 0.")
     deadline = time.monotonic() + args.wait
     with _client(args) as client:
         while True:

@@ -161,7 +161,7 @@ def build_scenario(*, seed: int, items: int) -> Scenario:
     from threadpoolctl import threadpool_limits  # installed with scikit-learn
 
     if items < 100:
-        raise ValueError(f"items == {items}, must be >= 100.")
+        raise ValueError(f"items = {items}: must be >= 100.")
     rows = int(2.6 * (items + _TRAIN_ROWS))
     x, y = make_classification(
         n_samples=rows,
@@ -228,7 +228,7 @@ def iid_labels_for_half_width(
     for a proportion, as in the textbook "Sampling Techniques", 3rd ed., 1977).
     """
     if not half_width > 0:
-        raise ValueError(f"half_width == {half_width}, must be > 0.")
+        raise ValueError(f"half_width = {half_width}: must be > 0.")
     z = statistics.NormalDist().inv_cdf(0.5 + confidence / 2)
     n0 = z * z * risk * (1 - risk) / (half_width * half_width)
     return math.ceil(n0 / (1 + (n0 - 1) / population))

@@ -1,7 +1,7 @@
 """Boundary validation shared by the estimation modules.
 
 Every check raises ``ValueError`` whose message names the field, shows the value and states
-the rule, e.g. ``floor = 1.5, must be in (0, 1].`` Inside the package inputs are trusted
+the rule, e.g. ``floor = 1.5: must be in (0, 1].`` Inside the package inputs are trusted
 once they have passed these checks.
 """
 
@@ -36,12 +36,12 @@ def check_fraction(name: str, value: float, *, low_open: bool, high_open: bool) 
     try:
         number = float(value)
     except (TypeError, ValueError):
-        raise ValueError(f"{name} = {describe(value)}, must be a number.") from None
+        raise ValueError(f"{name} = {describe(value)}: must be a number.") from None
     low_ok = number > 0.0 if low_open else number >= 0.0
     high_ok = number < 1.0 if high_open else number <= 1.0
     if not (math.isfinite(number) and low_ok and high_ok):
         interval = ("(" if low_open else "[") + "0, 1" + (")" if high_open else "]")
-        raise ValueError(f"{name} = {describe(value)}, must be in {interval}.")
+        raise ValueError(f"{name} = {describe(value)}: must be in {interval}.")
     return number
 
 
@@ -61,13 +61,13 @@ def check_finite_array(
     try:
         array: np.ndarray = np.asarray(value, dtype=dtype)
     except (TypeError, ValueError):
-        raise ValueError(f"{name} = {describe(value)}, must be numeric.") from None
+        raise ValueError(f"{name} = {describe(value)}: must be numeric.") from None
     if ndim is not None and array.ndim != ndim:
-        raise ValueError(f"{name} has shape {array.shape}, must have {ndim} dimension(s).")
+        raise ValueError(f"{name} has shape {array.shape}: must have {ndim} dimension(s).")
     if array.dtype.kind == "f" and not np.all(np.isfinite(array)):
         bad = int(np.flatnonzero(~np.isfinite(array.ravel()))[0])
         raise ValueError(
-            f"{name}[{bad}] = {describe(array.ravel()[bad])}, must be finite (no NaN or inf)."
+            f"{name}[{bad}] = {describe(array.ravel()[bad])}: must be finite (no NaN or inf)."
         )
     return array
 
@@ -77,5 +77,5 @@ def check_same_length(reference_name: str, reference: int, **arrays: np.ndarray)
     for name, array in arrays.items():
         if array.shape[0] != reference:
             raise ValueError(
-                f"{name} has {array.shape[0]} rows, must match {reference_name} ({reference})."
+                f"{name} has {array.shape[0]} rows: must match {reference_name} ({reference})."
             )

@@ -133,13 +133,13 @@ def lure_weights(probabilities: np.ndarray, pool_size: int) -> np.ndarray:
     """
     q = check_finite_array("probabilities", probabilities, ndim=1)
     if int(pool_size) != pool_size or pool_size < 1:
-        raise ValueError(f"pool_size = {describe(pool_size)}, must be an integer >= 1.")
+        raise ValueError(f"pool_size = {describe(pool_size)}: must be an integer >= 1.")
     n, m = int(pool_size), q.shape[0]
     if m > n:
-        raise ValueError(f"len(probabilities) = {m}, must be <= pool_size ({n}).")
+        raise ValueError(f"len(probabilities) = {m}: must be <= pool_size ({n}).")
     if m and (q.min() <= 0.0 or q.max() > 1.0):
         raise ValueError(
-            f"probabilities range [{describe(q.min())}, {describe(q.max())}], must be in (0, 1]."
+            f"probabilities range [{describe(q.min())}, {describe(q.max())}]: must be in (0, 1]."
         )
     index = np.arange(1, m + 1, dtype=np.float64)
     left = n - index
@@ -278,7 +278,7 @@ def _term_weights(ts: TermSums) -> np.ndarray:
 
 def _check_scope(scope_size: int) -> int:
     if isinstance(scope_size, bool) or int(scope_size) != scope_size or scope_size < 1:
-        raise ValueError(f"scope_size = {describe(scope_size)}, must be an integer >= 1.")
+        raise ValueError(f"scope_size = {describe(scope_size)}: must be an integer >= 1.")
     return int(scope_size)
 
 
@@ -408,13 +408,13 @@ def _check_sums(sums: PlugInSums) -> None:
             and math.isfinite(value)
             and value >= -1e-9
         ):
-            raise ValueError(f"{name} = {describe(value)}, must be a finite number >= 0.")
+            raise ValueError(f"{name} = {describe(value)}: must be a finite number >= 0.")
     count = sums.unlabeled_count
     if count is not None and (
         isinstance(count, bool) or int(count) != count or not 0 <= count <= sums.scope_size
     ):
         raise ValueError(
-            f"unlabeled_count = {describe(count)}, must be an integer in [0, scope_size "
+            f"unlabeled_count = {describe(count)}: must be an integer in [0, scope_size "
             f"({sums.scope_size})]."
         )
 
@@ -475,7 +475,7 @@ def _estimate(
     anytime: bool = True,
 ) -> RiskEstimate:
     if not isinstance(mode, EstimatorMode):
-        raise ValueError(f"mode = {describe(mode)}, must be an EstimatorMode member.")
+        raise ValueError(f"mode = {describe(mode)}: must be an EstimatorMode member.")
     _check_sums(sums)
     ts = check_terms(terms, loss_bound=loss_bound)
     bound = float(loss_bound)

@@ -62,7 +62,7 @@ def check_gate(
     if problem is not None:
         raise ValueError(problem)
     if not isinstance(bound, BoundKind):
-        raise ValueError(f"bound = {describe(bound)}, must be a BoundKind member.")
+        raise ValueError(f"bound = {describe(bound)}: must be a BoundKind member.")
     # One rule for the server, this core and the client: max_risk in (0, loss_bound).
     problem = max_risk_problem(max_risk, loss_bound=loss_bound)
     if problem is not None:

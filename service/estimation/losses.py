@@ -90,11 +90,11 @@ class LossSpec:
 
     def __post_init__(self) -> None:
         if not isinstance(self.kind, LossKind):
-            raise ValueError(f"kind = {describe(self.kind)}, must be a LossKind member.")
+            raise ValueError(f"kind = {describe(self.kind)}: must be a LossKind member.")
         if self.kind in _CLASSIFICATION:
             if int(self.num_classes) != self.num_classes or self.num_classes < 2:
                 raise ValueError(
-                    f"num_classes = {describe(self.num_classes)}, must be an integer >= 2 "
+                    f"num_classes = {describe(self.num_classes)}: must be an integer >= 2 "
                     f"for {self.kind.name}."
                 )
             object.__setattr__(self, "num_classes", int(self.num_classes))
@@ -102,30 +102,30 @@ class LossSpec:
             cap = float(self.loss_cap)
             if not (math.isfinite(cap) and cap > 0.0):
                 raise ValueError(
-                    f"loss_cap = {describe(self.loss_cap)}, must be finite and > 0 for "
+                    f"loss_cap = {describe(self.loss_cap)}: must be finite and > 0 for "
                     f"{self.kind.name} (bounds need a finite cap)."
                 )
             object.__setattr__(self, "loss_cap", cap)
         if self.kind is LossKind.COST_MATRIX:
             if self.cost_matrix is None:
-                raise ValueError("cost_matrix = None, must be given for COST_MATRIX.")
+                raise ValueError("cost_matrix = None: must be given for COST_MATRIX.")
             matrix = check_finite_array("cost_matrix", self.cost_matrix, ndim=2)
             k = self.num_classes
             if matrix.shape != (k, k):
                 raise ValueError(
-                    f"cost_matrix has shape {matrix.shape}, must be ({k}, {k}) "
+                    f"cost_matrix has shape {matrix.shape}: must be ({k}, {k}) "
                     "(num_classes x num_classes, row = predicted, column = true)."
                 )
             if np.any(matrix < 0) or not np.any(matrix > 0):
                 raise ValueError(
-                    f"cost_matrix = {describe(matrix)}, entries must be >= 0 with at least one > 0."
+                    f"cost_matrix = {describe(matrix)}: entries must be >= 0 with at least one > 0."
                 )
             matrix = matrix.copy()
             matrix.setflags(write=False)
             object.__setattr__(self, "cost_matrix", matrix)
         elif self.cost_matrix is not None:
             raise ValueError(
-                f"cost_matrix = {describe(self.cost_matrix)}, must be None for {self.kind.name}."
+                f"cost_matrix = {describe(self.cost_matrix)}: must be None for {self.kind.name}."
             )
 
     def __repr__(self) -> str:
@@ -172,7 +172,7 @@ class LossSpec:
             if np.any(off):
                 row = int(np.flatnonzero(off)[0])
                 raise ValueError(
-                    f"{name}[{row}] sums to {describe(sums[row])}, probabilities must sum to 1 "
+                    f"{name}[{row}] sums to {describe(sums[row])}: probabilities must sum to 1 "
                     f"within {PROBABILITY_SUM_TOLERANCE}."
                 )
             return probs
@@ -182,7 +182,7 @@ class LossSpec:
         """Labels as class indices in [0, K) or finite real values, ``count`` of them."""
         values = check_finite_array(name, labels, ndim=1)
         if values.shape[0] != count:
-            raise ValueError(f"{name} has {values.shape[0]} entries, must match outputs ({count}).")
+            raise ValueError(f"{name} has {values.shape[0]} entries: must match outputs ({count}).")
         if not self.is_classification:
             return values
         integral = values == np.round(values)
@@ -191,7 +191,7 @@ class LossSpec:
         if bad.size:
             i = int(bad[0])
             raise ValueError(
-                f"{name}[{i}] = {describe(values[i])},"
+                f"{name}[{i}] = {describe(values[i])}:"
                 f" must be a class index in [0, {self.num_classes})."
             )
         return values.astype(np.int64)
@@ -251,7 +251,7 @@ class LossSpec:
             pi = self.check_outputs(predictive, name="predictive")
             if pi.shape != out.shape:
                 raise ValueError(
-                    f"predictive has shape {pi.shape}, must match outputs {out.shape}."
+                    f"predictive has shape {pi.shape}: must match outputs {out.shape}."
                 )
             table = self.loss_table(out)
             first = np.sum(pi * table, axis=1)
@@ -259,7 +259,7 @@ class LossSpec:
             return first.clip(0.0, self.bound), second.clip(0.0, self.bound**2)
         if not (isinstance(predictive, tuple) and len(predictive) == 2):
             raise ValueError(
-                f"predictive = {describe(predictive)}, must be a (mean, variance) pair "
+                f"predictive = {describe(predictive)}: must be a (mean, variance) pair "
                 "for regression."
             )
         mean = check_finite_array("predictive mean", predictive[0], ndim=1)
@@ -270,7 +270,7 @@ class LossSpec:
                 f"must match outputs {out.shape}."
             )
         if np.any(variance < 0):
-            raise ValueError(f"predictive variance min = {describe(variance.min())}, must be >= 0.")
+            raise ValueError(f"predictive variance min = {describe(variance.min())}: must be >= 0.")
         return _clipped_error_moments(self.kind, mean - out, variance, self.loss_cap)
 
 

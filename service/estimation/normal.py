@@ -94,7 +94,7 @@ def student_t_quantile(probability: float, df: int) -> float:
     """
     p = check_fraction("probability", probability, low_open=True, high_open=True)
     if isinstance(df, bool) or int(df) != df or df < 1:
-        raise ValueError(f"df = {describe(df)}, must be an integer >= 1.")
+        raise ValueError(f"df = {describe(df)}: must be an integer >= 1.")
     df = int(df)
     if p == 0.5:
         return 0.0

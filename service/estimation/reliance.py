@@ -76,9 +76,9 @@ class Reliance:
 
     def __post_init__(self) -> None:
         if not (0.0 <= self.coefficient <= 1.0):
-            raise ValueError(f"coefficient = {describe(self.coefficient)}, must be in [0, 1].")
+            raise ValueError(f"coefficient = {describe(self.coefficient)}: must be in [0, 1].")
         if not (np.isfinite(self.constant) and self.constant >= 0.0):
-            raise ValueError(f"constant = {describe(self.constant)}, must be finite and >= 0.")
+            raise ValueError(f"constant = {describe(self.constant)}: must be finite and >= 0.")
         check_fraction("floor", self.floor, low_open=True, high_open=False)
 
     @property
@@ -194,14 +194,14 @@ def choose_reliance(
     for name, array in (("honest.expected_loss", g), ("probabilities", q), ("remaining_counts", n)):
         if array.shape != loss.shape:
             raise ValueError(
-                f"{name} has {array.shape[0]} entries, must match losses ({loss.shape[0]})."
+                f"{name} has {array.shape[0]} entries: must match losses ({loss.shape[0]})."
             )
     if q.size and (q.min() <= 0.0 or q.max() > 1.0):
         raise ValueError(
-            f"probabilities range [{describe(q.min())}, {describe(q.max())}], must be in (0, 1]."
+            f"probabilities range [{describe(q.min())}, {describe(q.max())}]: must be in (0, 1]."
         )
     if n.size and n.min() < 1.0:
-        raise ValueError(f"remaining_counts min = {describe(n.min())}, must be >= 1.")
+        raise ValueError(f"remaining_counts min = {describe(n.min())}: must be >= 1.")
     if loss.shape[0] < max(int(min_draws), 1) or candidates.expected_loss.shape[0] == 0:
         return Reliance(floor=minimum)
 

@@ -93,11 +93,11 @@ def usefulness(scores: SurrogateScores, *, loss_bound: float | None = None) -> n
         return np.asarray(np.sqrt(second))
     bound = float(loss_bound)
     if not (np.isfinite(bound) and bound > 0.0):
-        raise ValueError(f"loss_bound = {loss_bound!r}, must be finite and > 0.")
+        raise ValueError(f"loss_bound = {loss_bound!r}: must be finite and > 0.")
     g = check_finite_array("expected_loss", scores.expected_loss, ndim=1)
     if g.shape != second.shape:
         raise ValueError(
-            f"expected_loss has {g.shape[0]} entries, must match residual_second_moment "
+            f"expected_loss has {g.shape[0]} entries: must match residual_second_moment "
             f"({second.shape[0]})."
         )
     if scores.worst_squared_deviation is not None:
@@ -106,14 +106,14 @@ def usefulness(scores: SurrogateScores, *, loss_bound: float | None = None) -> n
         )
         if worst.shape != second.shape:
             raise ValueError(
-                f"worst_squared_deviation has {worst.shape[0]} entries, must match "
+                f"worst_squared_deviation has {worst.shape[0]} entries: must match "
                 f"residual_second_moment ({second.shape[0]})."
             )
         tolerance = 1e-9 * bound**2
         if worst.size and (worst.min() < -tolerance or worst.max() > bound**2 + tolerance):
             raise ValueError(
                 f"worst_squared_deviation range [{describe(worst.min())}, "
-                f"{describe(worst.max())}], must lie in [0, {describe(bound**2)}] (B^2)."
+                f"{describe(worst.max())}]: must lie in [0, {describe(bound**2)}] (B^2)."
             )
         worst = np.clip(worst, 0.0, bound**2)
     else:
@@ -152,7 +152,7 @@ def _check_usefulness(value: object) -> np.ndarray:
     u = check_finite_array("usefulness", value, ndim=1)
     if u.size and u.min() < 0.0:
         i = int(np.argmin(u))
-        raise ValueError(f"usefulness[{i}] = {describe(u[i])}, must be >= 0.")
+        raise ValueError(f"usefulness[{i}] = {describe(u[i])}: must be >= 0.")
     return u
 
 
@@ -185,15 +185,15 @@ def draw_batch(
     g = check_finite_array("expected_loss", expected_loss, ndim=1)
     n = u.shape[0]
     if g.shape[0] != n:
-        raise ValueError(f"expected_loss has {g.shape[0]} entries, must match usefulness ({n}).")
+        raise ValueError(f"expected_loss has {g.shape[0]} entries: must match usefulness ({n}).")
     floor = check_fraction("floor", floor, low_open=True, high_open=False)
     bound = float(loss_bound)
     if not (np.isfinite(bound) and bound > 0.0):
-        raise ValueError(f"loss_bound = {describe(loss_bound)}, must be finite and > 0.")
+        raise ValueError(f"loss_bound = {describe(loss_bound)}: must be finite and > 0.")
     tolerance = 1e-9 * bound
     if n and (g.min() < -tolerance or g.max() > bound + tolerance):
         raise ValueError(
-            f"expected_loss range [{describe(g.min())}, {describe(g.max())}],"
+            f"expected_loss range [{describe(g.min())}, {describe(g.max())}]:"
             f" must lie in [0, {describe(bound)}] "
             "(loss_bound)."
         )
@@ -203,23 +203,23 @@ def draw_batch(
         deviation = check_finite_array("max_deviation", max_deviation, ndim=1)
         if deviation.shape[0] != n:
             raise ValueError(
-                f"max_deviation has {deviation.shape[0]} entries, must match usefulness ({n})."
+                f"max_deviation has {deviation.shape[0]} entries: must match usefulness ({n})."
             )
         if n and deviation.min() < 0.0:
             i = int(np.argmin(deviation))
-            raise ValueError(f"max_deviation[{i}] = {describe(deviation[i])}, must be >= 0.")
+            raise ValueError(f"max_deviation[{i}] = {describe(deviation[i])}: must be >= 0.")
         # A hair of slack: the realised loss is recomputed from the same outputs and may
         # differ from the table entry in the last bits.
         deviation = deviation * (1.0 + 1e-9) + 1e-12 * bound
         reach_up = np.minimum(reach_up, deviation)
         reach_down = np.minimum(reach_down, deviation)
     if isinstance(count, bool) or int(count) != count or count < 0:
-        raise ValueError(f"count = {describe(count)}, must be an integer >= 0.")
+        raise ValueError(f"count = {describe(count)}: must be an integer >= 0.")
     count = int(count)
     if count > n:
-        raise ValueError(f"count = {count}, must be <= the number of candidates ({n}).")
+        raise ValueError(f"count = {count}: must be <= the number of candidates ({n}).")
     if not isinstance(rng, np.random.Generator):
-        raise ValueError(f"rng = {describe(rng)}, must be a numpy.random.Generator.")
+        raise ValueError(f"rng = {describe(rng)}: must be a numpy.random.Generator.")
     codes = None
     if groups is not None:
         raw_codes = np.asarray(groups)
@@ -232,14 +232,14 @@ def draw_batch(
             codes = check_finite_array("groups", groups, ndim=1)
             whole = bool(np.all(codes == np.round(codes)))
         if codes.shape[0] != n:
-            raise ValueError(f"groups has {codes.shape[0]} entries, must match usefulness ({n}).")
+            raise ValueError(f"groups has {codes.shape[0]} entries: must match usefulness ({n}).")
         if int(num_groups) != num_groups or num_groups < 1:
             raise ValueError(
-                f"num_groups = {describe(num_groups)}, must be an integer >= 1 with groups."
+                f"num_groups = {describe(num_groups)}: must be an integer >= 1 with groups."
             )
         if n and (not whole or codes.min() < 0 or codes.max() >= num_groups):
             raise ValueError(
-                f"groups range [{describe(codes.min())}, {describe(codes.max())}],"
+                f"groups range [{describe(codes.min())}, {describe(codes.max())}]:"
                 f" must be integer codes "
                 f"in [0, {num_groups})."
             )

@@ -148,20 +148,20 @@ class SurrogateSettings:
         ):
             value = getattr(self, name)
             if not isinstance(value, int) or value < 1:
-                raise ValueError(f"{name} = {describe(value)}, must be an integer >= 1.")
+                raise ValueError(f"{name} = {describe(value)}: must be an integer >= 1.")
         if self.num_leaves < 2:
-            raise ValueError(f"num_leaves = {describe(self.num_leaves)}, must be >= 2.")
+            raise ValueError(f"num_leaves = {describe(self.num_leaves)}: must be >= 2.")
         if self.num_threads > 2:
-            raise ValueError(f"num_threads = {describe(self.num_threads)}, must be 1 or 2.")
+            raise ValueError(f"num_threads = {describe(self.num_threads)}: must be 1 or 2.")
         if not (0.0 < self.learning_rate <= 1.0):
-            raise ValueError(f"learning_rate = {describe(self.learning_rate)}, must be in (0, 1].")
+            raise ValueError(f"learning_rate = {describe(self.learning_rate)}: must be in (0, 1].")
         if not (self.lambda_l2 >= 0.0):
-            raise ValueError(f"lambda_l2 = {describe(self.lambda_l2)}, must be >= 0.")
+            raise ValueError(f"lambda_l2 = {describe(self.lambda_l2)}: must be >= 0.")
         for name in ("validation_weight", "temperature_validation_weight"):
             value = getattr(self, name)
             if not (value > 0.0):
                 raise ValueError(
-                    f"{name} = {describe(value)}, must be > 0 (math.inf: every validation "
+                    f"{name} = {describe(value)}: must be > 0 (math.inf: every validation "
                     "row weighs as much as a pool label)."
                 )
 
@@ -240,7 +240,7 @@ class Surrogate:
             return _cold_scores(self.spec, out)
         x = _design(features, out, self._feature_dim)
         if x.shape[0] != n:
-            raise ValueError(f"features has {x.shape[0]} rows, must match outputs ({n}).")
+            raise ValueError(f"features has {x.shape[0]} rows: must match outputs ({n}).")
         firsts, seconds = [], []
         # The boosting start is shared by every member: compute it once.
         init = _log_init(out, self.temperature) if self.spec.is_classification else None
@@ -315,7 +315,7 @@ class Surrogate:
             raise ValueError("data format is not 'leadline-surrogate'.")
         if envelope.get("format_version") != _FORMAT_VERSION:
             raise ValueError(
-                f"format_version = {describe(envelope.get('format_version'))},"
+                f"format_version = {describe(envelope.get('format_version'))}:"
                 f" must be {_FORMAT_VERSION}."
             )
         if envelope["loss_kind"] != spec.kind.value or envelope["num_classes"] != spec.num_classes:
@@ -580,12 +580,12 @@ def fit_surrogate(
     """
     settings = settings or SurrogateSettings()
     if int(version) != version or version < 0:
-        raise ValueError(f"version = {describe(version)}, must be an integer >= 0.")
+        raise ValueError(f"version = {describe(version)}: must be an integer >= 0.")
     out = spec.check_outputs(outputs)
     y = spec.check_labels(labels, out.shape[0])
     x = _design(features, out, -1)
     if x.shape[0] != out.shape[0]:
-        raise ValueError(f"features has {x.shape[0]} rows, must match outputs ({out.shape[0]}).")
+        raise ValueError(f"features has {x.shape[0]} rows: must match outputs ({out.shape[0]}).")
     feature_dim = x.shape[1] - (out.shape[1] if out.ndim == 2 else 1)
     n = out.shape[0]
     if validation is not None and len(validation):
@@ -660,7 +660,7 @@ def _fit_with_validation(
     )
     if v_x.shape[0] != used:
         raise ValueError(
-            f"validation features has {v_x.shape[0]} rows, must match validation outputs ({used})."
+            f"validation features has {v_x.shape[0]} rows: must match validation outputs ({used})."
         )
     if not spec.is_classification and n + used < MIN_REGRESSION_LABELS:
         return Surrogate(

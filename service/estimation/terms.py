@@ -128,7 +128,7 @@ def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:
     """Validate a ``DrawTerms`` (ValueError naming field, value and rule)."""
     bound = float(loss_bound)
     if not (np.isfinite(bound) and bound > 0.0):
-        raise ValueError(f"loss_bound = {describe(loss_bound)}, must be finite and > 0.")
+        raise ValueError(f"loss_bound = {describe(loss_bound)}: must be finite and > 0.")
     probability = check_finite_array("probability", terms.probability, ndim=1)
     m = probability.shape[0]
     fields = {}
@@ -142,21 +142,21 @@ def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:
     ):
         array = check_finite_array(name, getattr(terms, name), ndim=1)
         if array.shape[0] != m:
-            raise ValueError(f"{name} has {array.shape[0]} entries, must match probability ({m}).")
+            raise ValueError(f"{name} has {array.shape[0]} entries: must match probability ({m}).")
         fields[name] = array
     in_scope = np.asarray(terms.in_scope)
     status = np.asarray(terms.status)
     loss = np.asarray(terms.loss, dtype=np.float64)
     for name, array in (("in_scope", in_scope), ("status", status), ("loss", loss)):
         if array.ndim != 1 or array.shape[0] != m:
-            raise ValueError(f"{name} has shape {array.shape}, must be ({m},) like probability.")
+            raise ValueError(f"{name} has shape {array.shape}: must be ({m},) like probability.")
     if m and (probability.min() <= 0.0 or probability.max() > 1.0):
         i = int(np.argmin(probability) if probability.min() <= 0.0 else np.argmax(probability))
-        raise ValueError(f"probability[{i}] = {describe(probability[i])}, must be in (0, 1].")
+        raise ValueError(f"probability[{i}] = {describe(probability[i])}: must be in (0, 1].")
     if not np.all(np.isin(status, (DRAW_LABELED, DRAW_PENDING, DRAW_SKIPPED))):
         i = int(np.flatnonzero(~np.isin(status, (DRAW_LABELED, DRAW_PENDING, DRAW_SKIPPED)))[0])
         raise ValueError(
-            f"status[{i}] = {describe(status[i])}, must be DRAW_LABELED (0), DRAW_PENDING (1) or "
+            f"status[{i}] = {describe(status[i])}: must be DRAW_LABELED (0), DRAW_PENDING (1) or "
             "DRAW_SKIPPED (2)."
         )
     status = status.astype(np.int64)
@@ -169,23 +169,23 @@ def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:
     if np.any(bad_loss):
         i = int(np.flatnonzero(bad_loss)[0])
         raise ValueError(
-            f"loss[{i}] = {describe(loss[i])},"
+            f"loss[{i}] = {describe(loss[i])}:"
             f" must be finite and in [0, {describe(bound)}] for a LABELED draw."
         )
     h = fields["expected_loss"]
     if m and (h.min() < -tolerance or h.max() > bound + tolerance):
         i = int(np.argmax((h < -tolerance) | (h > bound + tolerance)))
         raise ValueError(
-            f"expected_loss[{i}] = {describe(h[i])}, must be in [0, {describe(bound)}]."
+            f"expected_loss[{i}] = {describe(h[i])}: must be in [0, {describe(bound)}]."
         )
     late_count = fields["late_count"]
     if m and (late_count.min() < 0 or np.any(late_count != np.round(late_count))):
         i = int(np.argmax((late_count < 0) | (late_count != np.round(late_count))))
-        raise ValueError(f"late_count[{i}] = {describe(late_count[i])}, must be an integer >= 0.")
+        raise ValueError(f"late_count[{i}] = {describe(late_count[i])}: must be an integer >= 0.")
     for name in ("remaining_expected_loss", "late_expected_loss"):
         if m and fields[name].min() < -tolerance * max(1.0, float(np.abs(fields[name]).max())):
             i = int(np.argmin(fields[name]))
-            raise ValueError(f"{name}[{i}] = {describe(fields[name][i])}, must be >= 0.")
+            raise ValueError(f"{name}[{i}] = {describe(fields[name][i])}: must be >= 0.")
     if m and (fields["correction_low"].max() > 0.0 or fields["correction_high"].min() < 0.0):
         raise ValueError(
             "correction_low must be <= 0 and correction_high >= 0 for every draw "
@@ -197,7 +197,7 @@ def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:
         second = check_finite_array("residual_second_moment", terms.residual_second_moment, ndim=1)
         if second.shape[0] != m:
             raise ValueError(
-                f"residual_second_moment has {second.shape[0]} entries, must match "
+                f"residual_second_moment has {second.shape[0]} entries: must match "
                 f"probability ({m})."
             )
         second = np.maximum(second, 0.0)
@@ -209,14 +209,14 @@ def check_terms(terms: DrawTerms, *, loss_bound: float) -> TermSums:
         remaining_count = check_finite_array("remaining_count", terms.remaining_count, ndim=1)
         if remaining_count.shape[0] != m:
             raise ValueError(
-                f"remaining_count has {remaining_count.shape[0]} entries, must match "
+                f"remaining_count has {remaining_count.shape[0]} entries: must match "
                 f"probability ({m})."
             )
         bad = (remaining_count < 1) | (remaining_count != np.round(remaining_count))
         if np.any(bad):
             i = int(np.flatnonzero(bad)[0])
             raise ValueError(
-                f"remaining_count[{i}] = {describe(remaining_count[i])}, must be an integer >= 1."
+                f"remaining_count[{i}] = {describe(remaining_count[i])}: must be an integer >= 1."
             )
     return TermSums(
         probability=probability,

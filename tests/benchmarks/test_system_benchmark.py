@@ -171,7 +171,7 @@ def test_replace_section_ignores_marker_text_inside_a_line(tmp_path: Path) -> No
 
 @pytest.mark.parametrize("name", ["", "has space", "-leading-dash", "x-->", "a:b"])
 def test_replace_section_refuses_bad_names(tmp_path: Path, name: str) -> None:
-    with pytest.raises(ValueError, match="name == "):
+    with pytest.raises(ValueError, match="name = "):
         replace_section(tmp_path / "B.md", name, "body")
     assert not (tmp_path / "B.md").exists()
 

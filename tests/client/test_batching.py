@@ -82,16 +82,16 @@ def test_request_ids_are_fresh_without_a_caller_id_and_stable_with_one() -> None
     [
         (
             {"features": np.zeros((3, 2))},
-            "features has shape (3, 2), must be (n, feature_dim) with n == len(item_ids) == 2.",
+            "features has shape (3, 2): must be (n, feature_dim) with n == len(item_ids) == 2.",
         ),
         (
             {"features": np.zeros(2)},
-            "features has shape (2,), must be (n, feature_dim)",
+            "features has shape (2,): must be (n, feature_dim)",
         ),
-        ({"outputs": np.zeros((2, 2, 2))}, "outputs has shape (2, 2, 2), must be (n, num_classes)"),
-        ({"segments": ["a"]}, "segments has 1 entries, must have 2: one per item."),
-        ({"payload_refs": ["a", "b", "c"]}, "payload_refs has 3 entries, must have 2"),
-        ({"event_time_ms": [1]}, "event_time_ms has shape (1,), must be (2,): one per item."),
+        ({"outputs": np.zeros((2, 2, 2))}, "outputs has shape (2, 2, 2): must be (n, num_classes)"),
+        ({"segments": ["a"]}, "segments has 1 entries: must have 2: one per item."),
+        ({"payload_refs": ["a", "b", "c"]}, "payload_refs has 3 entries: must have 2"),
+        ({"event_time_ms": [1]}, "event_time_ms has shape (1,): must be (2,): one per item."),
     ],
 )
 def test_mismatched_shapes_are_refused_naming_the_argument(kwargs: dict, message: str) -> None:

@@ -98,7 +98,7 @@ def test_add_validation_is_batched_repeatable_and_checked_before_sending(
                 rows["outputs"][:3],
                 half,
             )
-        with pytest.raises(InvalidRequest, match=r"labels has shape \(2,\), must be \(3,\)"):
+        with pytest.raises(InvalidRequest, match=r"labels has shape \(2,\): must be \(3,\)"):
             client.add_validation(
                 "batched-validation",
                 rows["item_ids"][:3],

@@ -297,12 +297,12 @@ def _one_draw() -> DrawTerms:
 @pytest.mark.parametrize(
     ("change", "message"),
     [
-        ({"probability": np.array([0.0])}, "probability[0] = 0.0, must be in (0, 1]"),
-        ({"probability": np.array([np.nan])}, "probability[0] = nan, must be finite"),
-        ({"loss": np.array([1.5])}, "loss[0] = 1.5, must be finite and in [0, 1.0]"),
-        ({"status": np.array([7])}, "status[0] = 7, must be DRAW_LABELED (0)"),
-        ({"expected_loss": np.array([0.2, 0.3])}, "expected_loss has 2 entries, must match"),
-        ({"late_count": np.array([-1])}, "late_count[0] = -1.0, must be an integer >= 0"),
+        ({"probability": np.array([0.0])}, "probability[0] = 0.0: must be in (0, 1]"),
+        ({"probability": np.array([np.nan])}, "probability[0] = nan: must be finite"),
+        ({"loss": np.array([1.5])}, "loss[0] = 1.5: must be finite and in [0, 1.0]"),
+        ({"status": np.array([7])}, "status[0] = 7: must be DRAW_LABELED (0)"),
+        ({"expected_loss": np.array([0.2, 0.3])}, "expected_loss has 2 entries: must match"),
+        ({"late_count": np.array([-1])}, "late_count[0] = -1.0: must be an integer >= 0"),
     ],
 )
 def test_bad_terms_raise_value_error_naming_field_value_and_rule(change, message):
@@ -319,7 +319,7 @@ def test_bad_terms_raise_value_error_naming_field_value_and_rule(change, message
 
 @pytest.mark.parametrize("confidence", [0.0, 1.0, 1.2, float("nan")])
 def test_confidence_outside_the_open_unit_interval_is_rejected(confidence):
-    with pytest.raises(ValueError, match=r"confidence = .*, must be in \(0, 1\)"):
+    with pytest.raises(ValueError, match=r"confidence = .*: must be in \(0, 1\)"):
         estimate_risk(
             _one_draw(),
             PlugInSums(20, 1.0, 2.0, 1.0),
@@ -365,7 +365,7 @@ def test_other_bad_arguments_are_rejected():
         check_gate(_one_draw(), sums, max_risk=0.1, confidence=0.5, loss_bound=1.0)
     with pytest.raises(ValueError, match=r"max_risk = nan: must be in \(0, 1\)"):
         check_gate(_one_draw(), sums, max_risk=math.nan, confidence=0.9, loss_bound=1.0)
-    with pytest.raises(ValueError, match=r"scope_size = 0, must be an integer >= 1"):
+    with pytest.raises(ValueError, match=r"scope_size = 0: must be an integer >= 1"):
         estimate_risk(
             _one_draw(),
             PlugInSums(0, 0.0, 0.0, 0.0),
@@ -373,9 +373,9 @@ def test_other_bad_arguments_are_rejected():
             confidence=0.9,
             loss_bound=1.0,
         )
-    with pytest.raises(ValueError, match=r"mode = 'unbiased', must be an EstimatorMode member"):
+    with pytest.raises(ValueError, match=r"mode = 'unbiased': must be an EstimatorMode member"):
         estimate_risk(_one_draw(), sums, mode="unbiased", confidence=0.9, loss_bound=1.0)
-    with pytest.raises(ValueError, match=r"len\(probabilities\) = 3, must be <= pool_size \(2\)"):
+    with pytest.raises(ValueError, match=r"len\(probabilities\) = 3: must be <= pool_size \(2\)"):
         lure_weights(np.full(3, 0.5), 2)
 
 

@@ -179,11 +179,11 @@ def test_student_t_quantile_matches_scipy(df, p):
     ("build", "message"),
     [
         (lambda: LossSpec(kind=LossKind.ZERO_ONE, num_classes=1), "num_classes = 1"),
-        (lambda: LossSpec(kind=LossKind.SQUARED_ERROR), "loss_cap = 0.0, must be finite"),
+        (lambda: LossSpec(kind=LossKind.SQUARED_ERROR), "loss_cap = 0.0: must be finite"),
         (lambda: LossSpec(kind=LossKind.ABSOLUTE_ERROR, loss_cap=float("inf")), "loss_cap = inf"),
         (
             lambda: LossSpec(kind=LossKind.COST_MATRIX, num_classes=2, cost_matrix=np.eye(3)),
-            "cost_matrix has shape (3, 3), must be (2, 2)",
+            "cost_matrix has shape (3, 3): must be (2, 2)",
         ),
         (
             lambda: LossSpec(
@@ -201,13 +201,13 @@ def test_bad_loss_specs_raise_value_error_naming_field_value_and_rule(build, mes
 @pytest.mark.parametrize(
     ("outputs", "labels", "message"),
     [
-        (np.array([[0.5, 0.6]]), [0], "outputs[0] sums to 1.1, probabilities must sum to 1"),
+        (np.array([[0.5, 0.6]]), [0], "outputs[0] sums to 1.1: probabilities must sum to 1"),
         (np.array([[np.nan, 1.0]]), [0], "must be finite"),
         (np.array([[0.5, 0.5, 0.0]]), [0], "outputs has 3 columns, pool has 2 classes"),
-        (np.array([[0.5, 0.5]]), [2], "labels[0] = 2.0, must be a class index in [0, 2)"),
+        (np.array([[0.5, 0.5]]), [2], "labels[0] = 2.0: must be a class index in [0, 2)"),
         (np.array([[0.5, 0.5]]), [0.5], "must be a class index"),
-        (np.array([[0.5, 0.5]]), [0, 1], "labels has 2 entries, must match outputs (1)"),
-        (np.array([0.5, 0.5]), [0], "outputs has shape (2,), must have 2 dimension(s)"),
+        (np.array([[0.5, 0.5]]), [0, 1], "labels has 2 entries: must match outputs (1)"),
+        (np.array([0.5, 0.5]), [0], "outputs has shape (2,): must have 2 dimension(s)"),
     ],
 )
 def test_bad_loss_inputs_raise_value_error_naming_field_value_and_rule(outputs, labels, message):

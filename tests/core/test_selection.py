@@ -135,15 +135,15 @@ def test_one_million_candidates_draw_a_batch_of_100_well_under_a_second():
 @pytest.mark.parametrize(
     ("kwargs", "message"),
     [
-        ({"floor": 0.0}, "floor = 0.0, must be in (0, 1]"),
-        ({"floor": 1.5}, "floor = 1.5, must be in (0, 1]"),
-        ({"count": 11}, "count = 11, must be <= the number of candidates (10)"),
-        ({"count": -1}, "count = -1, must be an integer >= 0"),
-        ({"usefulness": np.r_[np.ones(9), np.nan]}, "usefulness[9] = nan, must be finite"),
-        ({"usefulness": -np.ones(10)}, "usefulness[0] = -1.0, must be >= 0"),
-        ({"expected_loss": np.ones(9)}, "expected_loss has 9 entries, must match usefulness"),
+        ({"floor": 0.0}, "floor = 0.0: must be in (0, 1]"),
+        ({"floor": 1.5}, "floor = 1.5: must be in (0, 1]"),
+        ({"count": 11}, "count = 11: must be <= the number of candidates (10)"),
+        ({"count": -1}, "count = -1: must be an integer >= 0"),
+        ({"usefulness": np.r_[np.ones(9), np.nan]}, "usefulness[9] = nan: must be finite"),
+        ({"usefulness": -np.ones(10)}, "usefulness[0] = -1.0: must be >= 0"),
+        ({"expected_loss": np.ones(9)}, "expected_loss has 9 entries: must match usefulness"),
         ({"expected_loss": np.full(10, 2.0)}, "must lie in [0, 1.0]"),
-        ({"loss_bound": float("inf")}, "loss_bound = inf, must be finite and > 0"),
+        ({"loss_bound": float("inf")}, "loss_bound = inf: must be finite and > 0"),
         ({"groups": np.full(10, 3), "num_groups": 2}, "must be integer codes in [0, 2)"),
         ({"groups": np.full(10, 0.5), "num_groups": 2}, "must be integer codes in [0, 2)"),
         ({"groups": np.full(10, -1), "num_groups": 2}, "must be integer codes in [0, 2)"),
@@ -237,7 +237,7 @@ def test_own_reach_ranges_cover_every_possible_loss_and_are_narrower():
 
 
 def test_negative_max_deviation_is_rejected():
-    with pytest.raises(ValueError, match=r"max_deviation\[1\] = -0.5, must be >= 0"):
+    with pytest.raises(ValueError, match=r"max_deviation\[1\] = -0.5: must be >= 0"):
         draw_batch(
             np.ones(3), np.full(3, 0.2), 1, floor=0.3, loss_bound=1.0,
             rng=np.random.default_rng(0), max_deviation=np.array([0.1, -0.5, 0.2]),

@@ -160,9 +160,9 @@ def test_no_labels_gives_the_cold_start_under_the_new_version(digits):
 @pytest.mark.parametrize(
     ("build", "message"),
     [
-        (lambda: SurrogateSettings(ensemble_size=0), "ensemble_size = 0, must be an integer >= 1"),
-        (lambda: SurrogateSettings(num_threads=4), "num_threads = 4, must be 1 or 2"),
-        (lambda: SurrogateSettings(learning_rate=0.0), "learning_rate = 0.0, must be in (0, 1]"),
+        (lambda: SurrogateSettings(ensemble_size=0), "ensemble_size = 0: must be an integer >= 1"),
+        (lambda: SurrogateSettings(num_threads=4), "num_threads = 4: must be 1 or 2"),
+        (lambda: SurrogateSettings(learning_rate=0.0), "learning_rate = 0.0: must be in (0, 1]"),
     ],
 )
 def test_bad_settings_raise_value_error(build, message):
@@ -178,7 +178,7 @@ def test_bad_surrogate_inputs_raise_value_error(digits):
     )
     with pytest.raises(ValueError, match=r"features has 3 columns, surrogate was fitted on 64"):
         fitted.score(features[:, :3], outputs)
-    with pytest.raises(ValueError, match=r"version = -1, must be an integer >= 0"):
+    with pytest.raises(ValueError, match=r"version = -1: must be an integer >= 0"):
         fit_surrogate(spec, features[:4], outputs[:4], labels[:4], version=-1, seed=0)
     with pytest.raises(ValueError, match=r"surrogate was fitted for loss 'zero_one'"):
         Surrogate.from_bytes(LossSpec(kind=LossKind.BRIER, num_classes=10), fitted.to_bytes())
@@ -335,9 +335,9 @@ def test_bad_validation_rows_raise_value_error(digits):
 
     with pytest.raises(ValueError, match=r"validation features has 3 columns, surrogate was"):
         fit(ValidationRows(features[:20, :3], outputs[:20], labels[:20]))
-    with pytest.raises(ValueError, match=r"validation labels\[1\] = 10.0, must be a class index"):
+    with pytest.raises(ValueError, match=r"validation labels\[1\] = 10.0: must be a class index"):
         fit(ValidationRows(features[:2], outputs[:2], np.array([1, 10])))
     with pytest.raises(ValueError, match=r"validation outputs has 3 columns, pool has 10"):
         fit(ValidationRows(features[:2], outputs[:2, :3], labels[:2]))
-    with pytest.raises(ValueError, match=r"validation_weight = 0.0, must be > 0"):
+    with pytest.raises(ValueError, match=r"validation_weight = 0.0: must be > 0"):
         SurrogateSettings(validation_weight=0.0)

@@ -50,7 +50,7 @@ def test_without_bound_the_rule_is_the_plain_square_root():
 
 @pytest.mark.parametrize(
     ("bound", "message"),
-    [(0.0, "loss_bound = 0.0, must be finite and > 0"), (np.inf, "loss_bound = inf")],
+    [(0.0, "loss_bound = 0.0: must be finite and > 0"), (np.inf, "loss_bound = inf")],
 )
 def test_bad_bound_is_rejected(bound: float, message: str):
     with pytest.raises(ValueError, match=message):
