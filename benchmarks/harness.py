@@ -204,7 +204,7 @@ class _Run:
         self.ledger.record(
             selection, rows=rows, surrogate_version=version, arrival_mark=scenario.pool_size
         )
-        self.ledger.label(
+        self.ledger.set_labels(
             np.arange(start, start + size),
             scenario.labels[rows].astype(np.float64),
             scenario.losses[rows].astype(np.float64),

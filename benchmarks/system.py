@@ -491,7 +491,7 @@ def _estimate_terms(
     rows = selection.positions
     ledger.record(selection, rows=rows, surrogate_version=0, arrival_mark=n)
     first = rows[:labeled]
-    ledger.label(
+    ledger.set_labels(
         np.arange(labeled),
         data.labels[first].astype(np.float64),
         spec.losses(data.outputs[first].astype(np.float64), data.labels[first]),

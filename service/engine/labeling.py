@@ -119,7 +119,7 @@ def submit(
         outputs = data.outputs.view[rows].astype(np.float64)
         typed = values.astype(np.int64) if pool.settings.is_classification else values
         losses = np.asarray(pool.spec.losses(outputs, typed), dtype=np.float64)
-        draws.label(indices, values, losses, time_ms=now)
+        draws.set_labels(indices, values, losses, time_ms=now)
         data.status.view[rows] = ITEM_LABELED
         changed.extend(indices.tolist())
     for index, reason in to_skip:
@@ -304,11 +304,11 @@ def _check_submission(
                 )
             label = float(submission.value)
         if status == DrawStatus.LABELED:
-            if float(draws.label_value.view[index]) == label:
+            if float(draws.label.view[index]) == label:
                 return "noop"
             raise FailedPrecondition(
                 f"{name}: item {pool.data.item_ids[int(draws.row.view[index])]!r} is already "
-                f"labeled {draws.label_value.view[index]:g}; a different label ({label:g}) is "
+                f"labeled {draws.label.view[index]:g}; a different label ({label:g}) is "
                 "refused.",
                 field="label",
             )

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -119,33 +120,62 @@ def _suffix_at(values: np.ndarray, marks: np.ndarray) -> np.ndarray:
     return np.asarray(suffix[marks])
 
 
+# The ledger's numeric columns (named as DrawRecord's fields), their dtypes and fills.
+_NUMBERS: dict[str, tuple[type, float]] = {
+    "row": (np.int64, 0),
+    "probability": (np.float64, 0),
+    "remaining_count": (np.int64, 0),
+    "remaining_expected_loss": (np.float64, 0),
+    "correction_low": (np.float64, 0),
+    "correction_high": (np.float64, 0),
+    "min_probability": (np.float64, 0),
+    "expected_loss": (np.float64, 0),
+    "second_moment": (np.float64, 0),
+    "surrogate_version": (np.int64, 0),
+    "arrival_mark": (np.int64, 0),
+    "draw_time_ms": (np.int64, 0),
+    "status": (np.int8, 0),
+    "lease_expire_ms": (np.int64, 0),
+    "label": (np.float64, np.nan),
+    "loss": (np.float64, np.nan),
+    "label_time_ms": (np.int64, 0),
+}
+_TEXTS = ("labeler", "holder", "assignment_id", "skip_reason")
+
+
 class DrawLedger:
-    """A pool's draws in draw order, as columns: what was logged at draw time plus the
-    lease and the outcome. Mutated only under the owner's lock."""
+    """A pool's draws in draw order, as columns named after :class:`DrawRecord`'s fields:
+    what was logged at draw time plus the lease and the outcome (an unknown label or
+    loss is NaN). Mutated only under the owner's lock."""
+
+    row: Column
+    probability: Column
+    remaining_count: Column
+    remaining_expected_loss: Column
+    correction_low: Column
+    correction_high: Column
+    min_probability: Column
+    expected_loss: Column
+    second_moment: Column
+    surrogate_version: Column
+    arrival_mark: Column
+    draw_time_ms: Column
+    status: Column
+    lease_expire_ms: Column
+    label: Column
+    loss: Column
+    label_time_ms: Column
+    labeler: list[str]
+    holder: list[str]
+    assignment_id: list[str]
+    skip_reason: list[str]
 
     def __init__(self) -> None:
-        self.row = Column(np.int64)
-        self.probability = Column(np.float64)
-        self.remaining_count = Column(np.int64)
-        self.remaining_expected_loss = Column(np.float64)
+        for name, (dtype, fill) in _NUMBERS.items():
+            setattr(self, name, Column(dtype, fill=fill))
+        for name in _TEXTS:
+            setattr(self, name, [])
         self.remaining_by_segment: list[np.ndarray] = []
-        self.correction_low = Column(np.float64)
-        self.correction_high = Column(np.float64)
-        self.min_probability = Column(np.float64)
-        self.expected_loss = Column(np.float64)
-        self.second_moment = Column(np.float64)
-        self.surrogate_version = Column(np.int64)
-        self.arrival_mark = Column(np.int64)
-        self.draw_time_ms = Column(np.int64)
-        self.status = Column(np.int8)
-        self.lease_expire_ms = Column(np.int64)
-        self.label_value = Column(np.float64, fill=np.nan)
-        self.loss = Column(np.float64, fill=np.nan)
-        self.label_time_ms = Column(np.int64)
-        self.labeler: list[str] = []
-        self.holder: list[str] = []
-        self.assignment_id: list[str] = []
-        self.skip_reason: list[str] = []
 
     def __len__(self) -> int:
         return self.row.size
@@ -189,7 +219,6 @@ class DrawLedger:
                 surrogate_version=surrogate_version,
                 arrival_mark=arrival_mark,
                 draw_time_ms=draw_time_ms,
-                status=DrawStatus.ASSIGNED,
                 labeler=labeler,
                 holder=holder,
                 assignment_id="" if assignment_id is None else assignment_id(start + j),
@@ -202,41 +231,20 @@ class DrawLedger:
 
     def append(self, records: Sequence[DrawRecord]) -> None:
         """Append records in draw order (new draws, or the store's rows at start-up)."""
-        if not records:
-            return
-
-        def column(name: str) -> np.ndarray:
-            return np.array([getattr(r, name) for r in records])
-
-        self.row.extend(column("row"))
-        self.probability.extend(column("probability"))
-        self.remaining_count.extend(column("remaining_count"))
-        self.remaining_expected_loss.extend(column("remaining_expected_loss"))
+        for name, (_, fill) in _NUMBERS.items():
+            values = [getattr(r, name) for r in records]
+            column: Column = getattr(self, name)
+            column.extend(np.array([fill if v is None else v for v in values]))
+        for name in _TEXTS:
+            getattr(self, name).extend(getattr(r, name) for r in records)
         self.remaining_by_segment.extend(r.remaining_by_segment for r in records)
-        self.correction_low.extend(column("correction_low"))
-        self.correction_high.extend(column("correction_high"))
-        self.min_probability.extend(column("min_probability"))
-        self.expected_loss.extend(column("expected_loss"))
-        self.second_moment.extend(column("second_moment"))
-        self.surrogate_version.extend(column("surrogate_version"))
-        self.arrival_mark.extend(column("arrival_mark"))
-        self.draw_time_ms.extend(column("draw_time_ms"))
-        self.status.extend(np.array([int(r.status) for r in records]))
-        self.lease_expire_ms.extend(column("lease_expire_ms"))
-        self.label_value.extend(np.array([np.nan if r.label is None else r.label for r in records]))
-        self.loss.extend(np.array([np.nan if r.loss is None else r.loss for r in records]))
-        self.label_time_ms.extend(column("label_time_ms"))
-        self.labeler.extend(r.labeler for r in records)
-        self.holder.extend(r.holder for r in records)
-        self.assignment_id.extend(r.assignment_id for r in records)
-        self.skip_reason.extend(r.skip_reason for r in records)
 
-    def label(
+    def set_labels(
         self, indices: np.ndarray, labels: np.ndarray, losses: np.ndarray, *, time_ms: int = 0
     ) -> None:
         """Draws ``indices`` got ``labels`` with ``losses``: LABELED."""
         self.status.view[indices] = DrawStatus.LABELED
-        self.label_value.view[indices] = labels
+        self.label.view[indices] = labels
         self.loss.view[indices] = losses
         self.label_time_ms.view[indices] = time_ms
 
@@ -264,32 +272,15 @@ class DrawLedger:
     # -- reading -------------------------------------------------------------------------
     def at(self, index: int) -> DrawRecord:
         """Draw ``index`` as a record (the store's row format)."""
-        label = float(self.label_value.view[index])
-        loss = float(self.loss.view[index])
+        values: dict[str, Any] = {name: getattr(self, name)[index] for name in _TEXTS}
+        for name, (dtype, _) in _NUMBERS.items():
+            value = getattr(self, name).view[index]
+            values[name] = (
+                None if np.isnan(value) else float(value) if dtype is np.float64 else int(value)
+            )
+        values["status"] = DrawStatus(values["status"])
         return DrawRecord(
-            draw_index=index,
-            row=int(self.row.view[index]),
-            probability=float(self.probability.view[index]),
-            remaining_count=int(self.remaining_count.view[index]),
-            remaining_expected_loss=float(self.remaining_expected_loss.view[index]),
-            remaining_by_segment=self.remaining_by_segment[index],
-            correction_low=float(self.correction_low.view[index]),
-            correction_high=float(self.correction_high.view[index]),
-            min_probability=float(self.min_probability.view[index]),
-            expected_loss=float(self.expected_loss.view[index]),
-            second_moment=float(self.second_moment.view[index]),
-            surrogate_version=int(self.surrogate_version.view[index]),
-            arrival_mark=int(self.arrival_mark.view[index]),
-            draw_time_ms=int(self.draw_time_ms.view[index]),
-            status=DrawStatus(int(self.status.view[index])),
-            labeler=self.labeler[index],
-            holder=self.holder[index],
-            assignment_id=self.assignment_id[index],
-            lease_expire_ms=int(self.lease_expire_ms.view[index]),
-            label=None if np.isnan(label) else label,
-            loss=None if np.isnan(loss) else loss,
-            label_time_ms=int(self.label_time_ms.view[index]),
-            skip_reason=self.skip_reason[index],
+            draw_index=index, remaining_by_segment=self.remaining_by_segment[index], **values
         )
 
     def counts(self) -> tuple[int, int, int]:

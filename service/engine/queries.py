@@ -127,7 +127,7 @@ def draw_page(pool: PoolState, *, start: int, limit: int) -> tuple[list[DrawInfo
     infos = []
     for index in range(start, stop):
         row = int(draws.row.view[index])
-        label = float(draws.label_value.view[index])
+        label = float(draws.label.view[index])
         loss = float(draws.loss.view[index])
         infos.append(
             DrawInfo(

@@ -212,7 +212,7 @@ class Refits:
         labeled = draws.labeled
         version = data.surrogate_version + 1
         classification = pool.settings.is_classification
-        labels = draws.label_value.view[labeled].copy()
+        labels = draws.label.view[labeled].copy()
         validation_labels = data.validation_labels.view
         return _Snapshot(
             epoch=pool.epoch,

@@ -69,7 +69,7 @@ def pool_terms(
     m = picked.shape[0] if upto is None else upto
     first = DrawLedger()
     first.append([ledger.at(index) for index in range(m)])
-    first.label(np.arange(m), losses[picked[:m]], losses[picked[:m]])
+    first.set_labels(np.arange(m), losses[picked[:m]], losses[picked[:m]])
     unlabeled = np.ones(n, dtype=bool)
     unlabeled[picked[:m]] = False
     terms = first.terms(item_count=n, cold_expected_loss=np.zeros(n), loss_bound=1.0)
