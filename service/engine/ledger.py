@@ -12,6 +12,11 @@ benchmark measures the service's own code:
    :meth:`DrawLedger.label`, :meth:`DrawLedger.skip` and the lease updates record outcomes;
 3. :meth:`DrawLedger.terms` builds ``DrawTerms`` for the whole pool or a scope, and
    :meth:`DrawLedger.plug_in_sums` the plug-in's ``PlugInSums``.
+
+Faster versions have their places here: a weight structure for O(k log N) draws replaces
+the whole-candidate pass inside :func:`select` (its state lives with the scores in
+``PoolData``), and sums kept up to date draw by draw replace the full passes of
+:meth:`DrawLedger.terms` and :meth:`DrawLedger.plug_in_sums`.
 """
 
 from __future__ import annotations
