@@ -214,7 +214,7 @@ def _path(
 
 
 def _fixed_time_interval(
-    ts: TermSums, scope_size: int, bound: float, alpha_side: float, center: float
+    ts: TermSums, scope_size: int, bound: float, alpha_side: float
 ) -> tuple[float, float]:
     """(lower, upper) of the fixed-time betting interval, each side at ``alpha_side``.
 
@@ -235,7 +235,6 @@ def _fixed_time_interval(
             x, lo, hi, alpha=alpha_side, support=support, prior=prior, scale=scale
         )
         sides.append(-value if upper else value)
-    del center
     return min(max(sides[0], 0.0), bound), min(max(sides[1], 0.0), bound)
 
 
@@ -570,15 +569,17 @@ def _estimate(
 
     # The fixed-time interval is the finite-sample betting interval on the design terms
     # (valid whatever the surrogate knows; unknown and late losses at their worst case),
-    # widened to contain the mode's own point estimate.
-    lower, upper = _fixed_time_interval(ts, n, bound, alpha_side, design.risk)
+    # widened to contain the mode's own point estimate (a superset of a valid interval is
+    # valid); the anytime interval likewise, so no mode's estimate lies outside its bounds.
+    lower, upper = _fixed_time_interval(ts, n, bound, alpha_side)
     clipped = min(max(risk, 0.0), bound)
     lower, upper = min(lower, clipped), max(upper, clipped)
     if anytime:
         low_path, high_path = _path(
             ts, n, bound, alpha_side, design.risk, method="betting", final_only=True
         )
-        anytime_lower, anytime_upper = float(low_path[-1]), float(high_path[-1])
+        anytime_lower = min(float(low_path[-1]), clipped)
+        anytime_upper = max(float(high_path[-1]), clipped)
     else:
         anytime_lower, anytime_upper = 0.0, bound
     return RiskEstimate(

@@ -176,3 +176,35 @@ def test_near_census_intervals_shrink_and_cover():
             assert estimate.lower <= truth <= estimate.upper
             widths[m].append(estimate.upper - estimate.lower)
     assert np.mean(widths[137]) < np.mean(widths[130]) < np.mean(widths[100])
+
+
+@pytest.mark.parametrize("mode", list(EstimatorMode))
+def test_every_mode_keeps_its_point_estimate_inside_both_intervals(mode):
+    """A plug-in far from the design terms (a surrogate that is badly off on the unlabeled
+    items): the reported intervals still contain the mode's own estimate (each is a
+    superset of a valid interval, so still valid)."""
+    spec, losses, scores = _digits(138, LossKind.ZERO_ONE)
+    rng = np.random.default_rng(2)
+    picked, logs = run_draws(
+        losses,
+        scores.expected_loss,
+        scores.residual_second_moment,
+        draws=40,
+        batch=10,
+        floor=DEFAULT_FLOOR,
+        loss_bound=spec.bound,
+        rng=rng,
+    )
+    terms, sums = pool_terms(
+        losses, scores.expected_loss, scores.residual_second_moment, picked, logs
+    )
+    off = PlugInSums(
+        sums.scope_size,
+        sums.labeled_loss_sum,
+        0.9 * (sums.scope_size - 40),  # the surrogate says 0.9 everywhere unlabeled
+        sums.unlabeled_second_moment_sum,
+        unlabeled_count=sums.unlabeled_count,
+    )
+    estimate = estimate_risk(terms, off, mode=mode, confidence=0.9, loss_bound=spec.bound)
+    assert estimate.lower <= estimate.risk <= estimate.upper
+    assert estimate.anytime_lower <= estimate.risk <= estimate.anytime_upper
