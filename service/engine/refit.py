@@ -172,6 +172,7 @@ class Refits:
                 return False
             job = self._snapshot(pool)
             pool.refitting = True
+        reliance = None
         try:
             surrogate, scores, reliance = self._fit(pool, job)
             if not self._save(pool, job, surrogate, reliance):
@@ -196,13 +197,16 @@ class Refits:
         self.seconds_total += elapsed
         _LOG.info(
             "refit pool %s: surrogate version %d on %d labels and %d validation items,"
-            " %d items rescored in %.2f s",
+            " %d items rescored in %.2f s; reliance: coefficient %.3f, constant %.4g, floor %.3f",
             pool.pool_id,
             job.version,
             job.labels.shape[0],
             len(job.validation),
             job.item_count,
             elapsed,
+            reliance.coefficient if reliance is not None else 1.0,
+            reliance.constant if reliance is not None else 0.0,
+            reliance.floor if reliance is not None else float("nan"),
         )
         return True
 
