@@ -41,6 +41,7 @@ from __future__ import annotations
 
 import enum
 import math
+from collections.abc import Callable
 
 import numpy as np
 
@@ -151,6 +152,12 @@ def betting_fixed_lower_bound(
         logs = _log_capital(x, lo, bets, np.array([r]))[:, 0]
         return bool(np.sum(logs) >= threshold)
 
+    return _excluded_edge(crossed, support)
+
+
+def _excluded_edge(crossed: Callable[[float], bool], support: tuple[float, float]) -> float:
+    """The largest candidate of ``support`` that is itself excluded, by bisection: the
+    excluded candidates form a lower half-line (the capital decreases in r)."""
     rejected, accepted = float(support[0]), float(support[1])
     if not crossed(rejected):
         return rejected
@@ -249,18 +256,7 @@ def betting_lower_bound(
         logs = _log_capital(x, lo, bets, np.array([r]))[:, 0]
         return bool(np.max(np.cumsum(logs)) >= threshold)
 
-    rejected, accepted = float(support[0]), float(support[1])
-    if not crossed(rejected):
-        return rejected
-    if crossed(accepted):
-        return accepted
-    for _ in range(_BISECTION_STEPS):
-        middle = 0.5 * (rejected + accepted)
-        if crossed(middle):
-            rejected = middle
-        else:
-            accepted = middle
-    return rejected
+    return _excluded_edge(crossed, support)
 
 
 def empirical_bernstein_lower_path(
