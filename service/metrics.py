@@ -2,11 +2,11 @@
 
 Request counters and latency histograms are fed by the auth interceptor, labelled with
 the short method name (``GetPool``) from a closed set (:func:`method_label`); pool gauges
-(items, labels, pending, skipped, draws, surrogate version, whole-pool risk estimate and
-its bounds), refit and commit counters are read from the engine at scrape time. The
-bounds carry a ``bound`` label saying which they are: ``fixed-time`` (valid at one look)
-or ``anytime`` (valid however often it is read), both two-sided at the pool's default
-confidence.
+(items, labels, pending, skipped, draws, surrogate version and lag, whole-pool risk
+estimate and its bounds), refit (seconds, CPU seconds) and commit counters are read
+from the engine at scrape time. The bounds carry a ``bound`` label saying which they
+are: ``fixed-time`` (valid at one look) or ``anytime`` (valid however often it is read),
+both two-sided at the pool's default confidence.
 """
 
 from __future__ import annotations
@@ -124,6 +124,7 @@ class Metrics:
             "leadline_pool_skipped": [],
             "leadline_pool_draws": [],
             "leadline_pool_surrogate_version": [],
+            "leadline_pool_surrogate_lag_labels": [],
             "leadline_pool_risk": [],
             "leadline_pool_risk_lower": [],
             "leadline_pool_risk_upper": [],
@@ -145,6 +146,10 @@ class Metrics:
             gauges["leadline_pool_draws"].append(f"leadline_pool_draws{tag} {info.draw_count}")
             gauges["leadline_pool_surrogate_version"].append(
                 f"leadline_pool_surrogate_version{tag} {info.surrogate_version}"
+            )
+            gauges["leadline_pool_surrogate_lag_labels"].append(
+                f"leadline_pool_surrogate_lag_labels{tag} "
+                f"{info.labeled_count - info.surrogate_label_count}"
             )
             if info.item_count:
                 try:
@@ -172,6 +177,8 @@ class Metrics:
             "leadline_pool_skipped": "Draws the labeler skipped.",
             "leadline_pool_draws": "Draws made.",
             "leadline_pool_surrogate_version": "Current surrogate version.",
+            "leadline_pool_surrogate_lag_labels": "Labels the surrogate in force was not "
+            "fitted on (labeled draws minus its label count).",
             "leadline_pool_risk": "Whole-pool risk estimate in the pool's default mode.",
             "leadline_pool_risk_lower": "Lower end of that estimate's two-sided interval at "
             "the pool's default confidence; label bound: fixed-time (one look) or anytime "
@@ -187,6 +194,12 @@ class Metrics:
         lines.append(f"leadline_refits_total {self._engine.refit_count}")
         family("leadline_refit_seconds_total", "counter", "Seconds spent in refits.")
         lines.append(f"leadline_refit_seconds_total {self._engine.refit_seconds_total}")
+        family(
+            "leadline_refit_cpu_seconds_total",
+            "counter",
+            "CPU seconds of the refit thread (its rate is the share of one core refits take).",
+        )
+        lines.append(f"leadline_refit_cpu_seconds_total {self._engine.refit_cpu_seconds_total}")
         family("leadline_store_commits_total", "counter", "SQLite group commits.")
         lines.append(f"leadline_store_commits_total {self._database.commits}")
         family(

@@ -322,6 +322,7 @@ _HELP = {
     "enable_reflection": "turn on gRPC server reflection",
     "refit_every_labels": "refit the surrogate after this many new labels",
     "refit_interval_seconds": "... or after this many seconds with new labels",
+    "refit_time_share": "either way, a pool's refits take at most this share of the time",
     "default_lease_seconds": "lease when neither request nor pool sets one",
     "selection_floor": "defensive floor of the selection when the pool sets none",
     "default_confidence": "confidence when neither request nor pool sets one",

@@ -119,6 +119,10 @@ class Engine:
         return self._refits.seconds_total
 
     @property
+    def refit_cpu_seconds_total(self) -> float:
+        return self._refits.cpu_seconds_total
+
+    @property
     def reload_count(self) -> int:
         return self._writes.reload_count
 

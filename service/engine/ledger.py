@@ -176,8 +176,8 @@ class DrawLedger:
     skip_reason: list[str]
 
     def __init__(self) -> None:
-        for name, (dtype, fill) in _NUMBERS.items():
-            setattr(self, name, Column(dtype, fill=fill))
+        for name, (dtype, _) in _NUMBERS.items():
+            setattr(self, name, Column(dtype))
         for name in _TEXTS:
             setattr(self, name, [])
         self.remaining_by_segment: list[np.ndarray] = []
@@ -416,6 +416,6 @@ class DrawLedger:
             scope_size=size,
             labeled_loss_sum=float(self.loss.view[in_scope].sum()),
             unlabeled_expected_loss_sum=float(expected_loss[left].sum()),
-            unlabeled_second_moment_sum=float(second_moment[left].sum()),
+            unlabeled_second_moment_sum=float(second_moment[left].sum(dtype=np.float64)),
             unlabeled_count=int(np.count_nonzero(left)),
         )

@@ -42,10 +42,18 @@ __all__ = [
     "PoolSettings",
     "PoolState",
     "RememberedCall",
+    "SCORE_DTYPE",
 ]
 
 # Item status codes (PoolData.status).
 AVAILABLE, DRAWN, ITEM_LABELED, ITEM_SKIPPED = 0, 1, 2, 3
+
+# The per-item scores that only shape the selection (second moment, spread, worst squared
+# deviation) are kept in float32: they enter q through the usefulness, and q is logged as
+# computed, so their rounding (relative 6e-8) changes no estimate's validity; sums over
+# them are accumulated in float64. The control variate g (``expected_loss``) and the
+# cold-start g0 stay float64: they enter every estimate directly.
+SCORE_DTYPE = np.float32
 
 _REQUEST_MEMORY = 4096
 
@@ -124,11 +132,11 @@ class PoolData:
         self.ingest_time_ms = Column(np.int64)
         self.g0 = Column(np.float64)  # label-free cold-start expected loss
         self.expected_loss = Column(np.float64)  # current surrogate g
-        self.second_moment = Column(np.float64)  # current E[(L - g)^2]
-        self.spread = Column(np.float64)
-        self.worst_deviation = Column(np.float64)  # max (L - g)^2: the selection hedge
+        self.second_moment = Column(SCORE_DTYPE)  # current E[(L - g)^2]
+        self.spread = Column(SCORE_DTYPE)
+        self.worst_deviation = Column(SCORE_DTYPE)  # max (L - g)^2: the selection hedge
         self.status = Column(np.int8)
-        self.item_draw = Column(np.int64, fill=-1)
+        self.item_draw = Column(np.int32)  # draw index (< 2**31 draws per pool)
         self.segment_names: list[str] = []
         self.segment_codes: dict[str, int] = {}
         self.draws = DrawLedger()
@@ -167,6 +175,23 @@ class PoolData:
             constant=self.reliance.constant,
             floor=max(self.reliance.floor, floor),
         )
+
+    def adopt_scores(
+        self,
+        expected_loss: np.ndarray,
+        second_moment: np.ndarray,
+        spread: np.ndarray,
+        worst_deviation: np.ndarray,
+        *,
+        size: int,
+    ) -> None:
+        """Take a refit's score arrays as the score columns, their first ``size`` rows
+        filled (caller holds the lock; no copy: the old arrays go once no view holds
+        them)."""
+        self.expected_loss.adopt(expected_loss, size)
+        self.second_moment.adopt(second_moment, size)
+        self.spread.adopt(spread, size)
+        self.worst_deviation.adopt(worst_deviation, size)
 
     def mark_drawn_items(self, start: int) -> None:
         """Set the item status of the items drawn from draw ``start`` on."""
@@ -229,6 +254,8 @@ class PoolState:
         # Refit bookkeeping (survives a reload: a refit may be running).
         self.refitting = False
         self.last_fit_time = 0.0
+        # Wall seconds the last refit took: the next waits in proportion (refit.py).
+        self.last_refit_seconds = 0.0
         # Label and validation-item counts at the last failed refit (-1: none failed).
         self.failed_fit_labels = -1
         self.failed_fit_validation = -1

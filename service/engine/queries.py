@@ -188,7 +188,7 @@ def trace(
             unlabeled_expected_loss_sum=inputs.sums.unlabeled_expected_loss_sum
             + float(pool.data.expected_loss.view[rows].sum()),
             unlabeled_second_moment_sum=inputs.sums.unlabeled_second_moment_sum
-            + float(pool.data.second_moment.view[rows].sum()),
+            + float(pool.data.second_moment.view[rows].sum(dtype=np.float64)),
         )
         estimate = estimate_risk(
             prefix, sums, mode=mode, confidence=confidence, loss_bound=pool.loss_bound

@@ -12,6 +12,16 @@ the surrogate does not cover.
 The worker (:class:`RefitWorker`) wakes every ``poll_seconds`` (or when nudged after new
 labels), refits every due pool, one at a time, then forgets request ids past their
 retention (rate-limited).
+
+Cadence (:func:`refit_gap_seconds`): a refit costs about one core for the time it takes
+to fit and rescore the pool (seconds per million items), so besides the label count the
+worker spaces a pool's refits so that they take at most ``refit_time_share`` of the
+time: after a refit that took ``t`` seconds the next one waits ``t (1 - share) / share``
+seconds. A small pool refits in milliseconds and keeps its label cadence; a large pool's
+refits spread out in proportion to its size (and to the label count, which the fit's cost
+grows with). Rescoring (:func:`rescore_into`) runs in chunks outside the pool lock,
+pausing between chunks, into fresh arrays that the final swap adopts as the pool's score
+columns (one assignment per column under the lock, no extra copy).
 """
 
 from __future__ import annotations
@@ -28,7 +38,7 @@ import numpy as np
 
 from leadline.service.config import ServerConfig
 from leadline.service.engine.ingest import now_ms
-from leadline.service.engine.pool import AVAILABLE, PoolState
+from leadline.service.engine.pool import AVAILABLE, SCORE_DTYPE, PoolState
 from leadline.service.engine.writes import PoolWrites
 from leadline.service.errors import Unavailable
 from leadline.service.estimation import (
@@ -40,7 +50,6 @@ from leadline.service.estimation import (
     SurrogateSettings,
     ValidationRows,
     choose_reliance,
-    concatenate_scores,
     cross_fitted_scores,
     fit_surrogate,
     worst_squared_deviation_of,
@@ -48,25 +57,104 @@ from leadline.service.estimation import (
 from leadline.service.store import Database
 from leadline.service.store import records as store
 
-__all__ = ["RefitWorker", "Refits", "choose_reliance_at_refit", "score_rows"]
+__all__ = [
+    "RefitWorker",
+    "Refits",
+    "ScoreColumns",
+    "choose_reliance_at_refit",
+    "refit_gap_seconds",
+    "rescore_into",
+]
 
 _LOG = logging.getLogger(__name__)
 
-_SCORE_CHUNK = 100_000
+_SCORE_CHUNK = 65_536
 # A refit scores at most this many late-arriving items while holding the pool lock.
 _CATCH_UP_UNDER_LOCK = 5_000
+# Between two rescoring chunks the refit thread sleeps this long: it gives the GIL and the
+# surrogate's native-call lock to the request threads waiting for them.
+_CHUNK_PAUSE_SECONDS = 0.001
 
 
-def score_rows(surrogate: Surrogate, features: np.ndarray, outputs: np.ndarray) -> SurrogateScores:
-    """Score rows in chunks (bounded memory for a million items)."""
-    n = features.shape[0]
-    if n <= _SCORE_CHUNK:
-        return surrogate.score(features, outputs)
-    parts = [
-        surrogate.score(features[i : i + _SCORE_CHUNK], outputs[i : i + _SCORE_CHUNK])
-        for i in range(0, n, _SCORE_CHUNK)
-    ]
-    return concatenate_scores(parts)
+def refit_gap_seconds(last_refit_seconds: float, share: float) -> float:
+    """How long a pool waits after a refit that took ``last_refit_seconds`` before the
+    next may start, so that its refits take at most ``share`` of the time:
+    t / (t + gap) <= share  <=>  gap >= t (1 - share) / share."""
+    return last_refit_seconds * (1.0 - share) / share
+
+
+class ScoreColumns:
+    """A surrogate's per-item score columns, filled chunk by chunk in arrays with room
+    for items that arrive while the rest are scored (see :func:`rescore_into`).
+
+    ``expected_loss`` is float64 (it enters every estimate directly); the second moment,
+    the spread and the worst squared deviation are float32, as in the pool's columns.
+    """
+
+    def __init__(self, capacity: int) -> None:
+        capacity = max(capacity, 1)
+        self.expected_loss = np.empty(capacity, dtype=np.float64)
+        self.second_moment = np.empty(capacity, dtype=SCORE_DTYPE)
+        self.spread = np.empty(capacity, dtype=SCORE_DTYPE)
+        self.worst_deviation = np.empty(capacity, dtype=SCORE_DTYPE)
+        self.size = 0
+
+    def _reserve(self, needed: int) -> None:
+        if needed <= self.expected_loss.shape[0]:
+            return
+        capacity = max(needed, self.expected_loss.shape[0] + self.expected_loss.shape[0] // 4)
+        for name in ("expected_loss", "second_moment", "spread", "worst_deviation"):
+            old = getattr(self, name)
+            grown = np.empty(capacity, dtype=old.dtype)
+            grown[: self.size] = old[: self.size]
+            setattr(self, name, grown)
+
+    def append(self, scores: SurrogateScores, *, loss_bound: float) -> None:
+        count = scores.expected_loss.shape[0]
+        end = self.size + count
+        self._reserve(end)
+        self.expected_loss[self.size : end] = scores.expected_loss
+        self.second_moment[self.size : end] = scores.residual_second_moment
+        self.spread[self.size : end] = scores.spread
+        self.worst_deviation[self.size : end] = worst_squared_deviation_of(
+            scores, loss_bound=loss_bound
+        )
+        self.size = end
+
+    def scores(self) -> SurrogateScores:
+        """Views of the filled part."""
+        n = self.size
+        return SurrogateScores(
+            self.expected_loss[:n],
+            self.second_moment[:n],
+            self.spread[:n],
+            self.worst_deviation[:n],
+        )
+
+
+def rescore_into(
+    out: ScoreColumns,
+    surrogate: Surrogate,
+    features: np.ndarray,
+    outputs: np.ndarray,
+    stop: int,
+    *,
+    loss_bound: float,
+    chunk: int | None = None,
+    pause: float | None = None,
+) -> None:
+    """Score rows ``out.size`` .. ``stop`` of ``features`` / ``outputs`` in chunks of
+    ``chunk`` rows (default ``_SCORE_CHUNK``), sleeping ``pause`` seconds between chunks
+    (default ``_CHUNK_PAUSE_SECONDS``); append to ``out``. The trees score each row on
+    its own, so the result equals one call on all rows."""
+    rows = _SCORE_CHUNK if chunk is None else chunk
+    wait = _CHUNK_PAUSE_SECONDS if pause is None else pause
+    while out.size < stop:
+        start = out.size
+        end = min(stop, start + rows)
+        out.append(surrogate.score(features[start:end], outputs[start:end]), loss_bound=loss_bound)
+        if wait > 0 and out.size < stop:
+            time.sleep(wait)
 
 
 def _rows_of(scores: SurrogateScores, rows: np.ndarray) -> SurrogateScores:
@@ -144,9 +232,14 @@ class Refits:
         self._writes = writes
         self.count = 0
         self.seconds_total = 0.0
+        # CPU time of the refitting thread (LightGBM runs on it with surrogate_threads = 1).
+        self.cpu_seconds_total = 0.0
 
     def due(self, pool: PoolState, now: float) -> bool:
-        """Whether the worker should refit ``pool`` at monotonic time ``now``."""
+        """Whether the worker should refit ``pool`` at monotonic time ``now``: validation
+        items the surrogate does not cover (at once), or new labels (``refit_every_labels``
+        of them, or any after ``refit_interval_seconds``) once the gap after the last
+        refit (:func:`refit_gap_seconds`) has passed."""
         with pool.lock:
             if pool.deleted or pool.refitting or pool.reload_pending:
                 return False
@@ -159,14 +252,17 @@ class Refits:
             new_labels = labeled - data.surrogate.label_count
             if new_labels <= 0 or labeled <= pool.failed_fit_labels:
                 return False
-            every = pool.settings.refit_every_labels or self._config.refit_every_labels
             waited = now - pool.last_fit_time
+            if waited < refit_gap_seconds(pool.last_refit_seconds, self._config.refit_time_share):
+                return False
+            every = pool.settings.refit_every_labels or self._config.refit_every_labels
             return new_labels >= every or waited >= self._config.refit_interval_seconds
 
     def run(self, pool: PoolState) -> bool:
         """Fit a new surrogate version on all labels, persist it with its reliance,
         rescore, swap. True if done."""
         started = time.monotonic()
+        cpu_started = time.thread_time()
         with pool.lock:
             if pool.deleted or pool.refitting:
                 return False
@@ -189,10 +285,13 @@ class Refits:
                 pool.last_fit_time = time.monotonic()
             return False
         finally:
+            elapsed = time.monotonic() - started
             with pool.lock:
                 pool.refitting = False
+                # The next refit of this pool waits in proportion (refit_gap_seconds).
+                pool.last_refit_seconds = elapsed
                 pool.refit_done.notify_all()
-        elapsed = time.monotonic() - started
+            self.cpu_seconds_total += time.thread_time() - cpu_started
         self.count += 1
         self.seconds_total += elapsed
         _LOG.info(
@@ -242,7 +341,7 @@ class Refits:
             ),
         )
 
-    def _fit(self, pool: PoolState, job: _Snapshot) -> tuple[Surrogate, SurrogateScores, Reliance]:
+    def _fit(self, pool: PoolState, job: _Snapshot) -> tuple[Surrogate, ScoreColumns, Reliance]:
         """The new surrogate, its scores of the items present, and the reliance (outside
         the lock)."""
         settings = SurrogateSettings(num_threads=self._config.surrogate_threads)
@@ -257,7 +356,9 @@ class Refits:
             settings=settings,
             validation=job.validation,
         )
-        scores = score_rows(surrogate, features[:n0], outputs[:n0])
+        # Room for the items that arrive while the rest are scored.
+        scores = ScoreColumns(n0 + n0 // 16 + _CATCH_UP_UNDER_LOCK)
+        rescore_into(scores, surrogate, features, outputs, n0, loss_bound=pool.loss_bound)
         reliance = choose_reliance_at_refit(
             pool.spec,
             features[job.rows],
@@ -266,7 +367,7 @@ class Refits:
             losses=job.losses,
             probabilities=job.probabilities,
             remaining_counts=job.remaining_counts,
-            candidates=_rows_of(scores, np.flatnonzero(job.available[:n0])),
+            candidates=_rows_of(scores.scores(), np.flatnonzero(job.available[:n0])),
             floor=job.floor,
             seed=job.seed,
             settings=settings,
@@ -316,36 +417,40 @@ class Refits:
         pool: PoolState,
         job: _Snapshot,
         surrogate: Surrogate,
-        scores: SurrogateScores,
+        scores: ScoreColumns,
         reliance: Reliance,
     ) -> bool:
         """Score the items that arrived while fitting, then swap every score in."""
         # Outside the lock until few are left, so the final swap under the lock stays
-        # short even under heavy ingest.
-        parts = [scores]
-        done = job.item_count
+        # short even under heavy ingest. Rows never change once written: views of the
+        # columns taken under the lock stay valid after it is released.
         while True:
             with pool.lock:
                 data = pool.data
                 n, features, outputs = data.item_count, data.features.view, data.outputs.view
-            if n - done <= _CATCH_UP_UNDER_LOCK:
+            if n - scores.size <= _CATCH_UP_UNDER_LOCK:
                 break
-            parts.append(score_rows(surrogate, features[done:n], outputs[done:n]))
-            done = n
+            rescore_into(scores, surrogate, features, outputs, n, loss_bound=pool.loss_bound)
         with pool.lock:
             if pool.epoch != job.epoch:
                 # Reloaded meanwhile: the reload read this version from the store.
                 return False
             data = pool.data
-            n = data.item_count
-            if n > done:
-                parts.append(surrogate.score(data.features.view[done:n], data.outputs.view[done:n]))
-            rescored = concatenate_scores(parts)
-            data.expected_loss.replace(rescored.expected_loss)
-            data.second_moment.replace(rescored.residual_second_moment)
-            data.spread.replace(rescored.spread)
-            data.worst_deviation.replace(
-                worst_squared_deviation_of(rescored, loss_bound=pool.loss_bound)
+            rescore_into(
+                scores,
+                surrogate,
+                data.features.view,
+                data.outputs.view,
+                data.item_count,
+                loss_bound=pool.loss_bound,
+                pause=0.0,
+            )
+            data.adopt_scores(
+                scores.expected_loss,
+                scores.second_moment,
+                scores.spread,
+                scores.worst_deviation,
+                size=scores.size,
             )
             data.surrogate = surrogate
             data.reliance = reliance
