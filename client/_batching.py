@@ -12,6 +12,7 @@ from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 
 import numpy as np
+from google.protobuf.message import Message
 
 from leadline.client._errors import invalid_argument
 from leadline.v1 import leadline_pb2
@@ -203,6 +204,32 @@ def batch_request_id(request_id: str | None, index: int) -> str:
     return str(uuid.uuid5(_BATCH_ID_NAMESPACE, f"{request_id}/{index}"))
 
 
+def _varint(value: int) -> bytes:
+    """Protobuf base-128 varint of a non-negative int (protobuf encoding guide)."""
+    out = bytearray()
+    while value > 0x7F:
+        out.append((value & 0x7F) | 0x80)
+        value >>= 7
+    out.append(value)
+    return bytes(out)
+
+
+def _merge_floats(message: Message, **columns: np.ndarray) -> None:
+    """Append float32 arrays to the message's ``repeated float`` fields of those names.
+
+    A proto3 ``repeated float`` travels packed: tag, byte length, then the values as
+    little-endian float32 (protobuf encoding guide, "packed repeated fields"). Writing that
+    from the array's bytes and merging it costs one parse in C, where ``.tolist()`` and
+    ``extend`` make a Python float per value (about 10x slower for a 2,000-row batch).
+    """
+    encoded = bytearray()
+    fields = message.DESCRIPTOR.fields_by_name
+    for name, values in columns.items():
+        data = np.ascontiguousarray(values, dtype="<f4").tobytes()
+        encoded += _varint(fields[name].number << 3 | 2) + _varint(len(data)) + data
+    message.MergeFromString(bytes(encoded))
+
+
 def build_batches(
     pool: str,
     columns: IngestColumns,
@@ -219,9 +246,8 @@ def build_batches(
             pool=pool,
             request_id=batch_request_id(request_id, index),
             item_ids=columns.item_ids[rows],
-            features=columns.features[rows].ravel().tolist(),
-            model_outputs=columns.outputs[rows].ravel().tolist(),
         )
+        _merge_floats(batch, features=columns.features[rows], model_outputs=columns.outputs[rows])
         if columns.payload_refs is not None:
             batch.payload_refs.extend(columns.payload_refs[rows])
         if columns.segments is not None:
@@ -248,9 +274,8 @@ def build_validation_batches(
             pool=pool,
             request_id=batch_request_id(request_id, index),
             item_ids=rows.item_ids[part],
-            features=rows.features[part].ravel().tolist(),
-            model_outputs=rows.outputs[part].ravel().tolist(),
         )
+        _merge_floats(batch, features=rows.features[part], model_outputs=rows.outputs[part])
         labels = columns.labels[part].tolist()
         if columns.classification:
             batch.class_labels.extend(labels)

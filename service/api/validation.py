@@ -229,6 +229,23 @@ def _first(mask: Any) -> int:
     return int(np.flatnonzero(mask)[0])
 
 
+def _all_fit(values: list[str], *, max_length: int, allow_empty: bool) -> bool:
+    """Whether every string is printable and 0 (or 1) to ``max_length`` characters long.
+
+    One pass in C over the joined strings (a string is printable when each of its
+    characters is, so the joined one is printable exactly when every part is); the
+    per-entry loops that name the first offender run only when this says no.
+    """
+    if not values:
+        return True
+    lengths = list(map(len, values))
+    return (
+        max(lengths) <= max_length
+        and (allow_empty or min(lengths) > 0)
+        and "".join(values).isprintable()
+    )
+
+
 def _strings(field: str, values: Any, n: int, *, max_length: int, allow_empty: bool) -> list[str]:
     items = list(values)
     if len(items) != n:
@@ -237,6 +254,8 @@ def _strings(field: str, values: Any, n: int, *, max_length: int, allow_empty: b
             f"{field} has {len(items)} entries for {n} item ids: optional columns are "
             "all-or-nothing (give none or one per item).",
         )
+    if _all_fit(items, max_length=max_length, allow_empty=allow_empty):
+        return items
     for position, value in enumerate(items):
         if (not value and not allow_empty) or len(value) > max_length or not value.isprintable():
             shown = value if len(value) <= 40 else value[:40] + "..."
@@ -258,7 +277,8 @@ def _check_item_ids(values: Any, *, max_items: int) -> list[str]:
             f"item_ids has {n} entries: at most {max_items} items per batch; split the batch.",
             field="item_ids",
         )
-    for position, item_id in enumerate(ids):
+    fit = _all_fit(ids, max_length=MAX_ITEM_ID, allow_empty=False)
+    for position, item_id in enumerate([] if fit else ids):
         if not item_id or len(item_id) > MAX_ITEM_ID or not item_id.isprintable():
             shown = item_id if len(item_id) <= 40 else item_id[:40] + "..."
             raise _bad(

@@ -22,7 +22,7 @@ import logging
 import secrets
 import threading
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
 from leadline.service.config import ServerConfig
 from leadline.service.engine import ingest, labeling, queries
@@ -81,12 +81,18 @@ class Engine:
     # ------------------------------------------------------------------------------------
     # start-up, shutdown, the background worker, counters
     # ------------------------------------------------------------------------------------
-    def load(self) -> None:
-        """Rebuild every pool's in-memory state from the database (start-up)."""
-        for row in store.load_pools(self._db.reader()):
+    def load(self, *, progress: Callable[[int, int], None] | None = None) -> None:
+        """Rebuild every pool's in-memory state from the database (start-up);
+        ``progress(loaded, total)`` is told before the first pool and after each one."""
+        rows = store.load_pools(self._db.reader())
+        if progress is not None:
+            progress(0, len(rows))
+        for loaded, row in enumerate(rows, start=1):
             pool = self._writes.load(row)
             with self._pools_lock:
                 self._pools[pool.pool_id] = pool
+            if progress is not None:
+                progress(loaded, len(rows))
 
     def close(self) -> None:
         """Refuse further writes (queued ones still commit when the database closes)."""
@@ -345,7 +351,8 @@ class Engine:
             ingest.check_shape(pool, batch.features, batch.outputs)
             surrogate = pool.data.surrogate
         current = surrogate.score(batch.features, batch.outputs)
-        cold = pool.cold.score(batch.features, batch.outputs)
+        # Before the first refit the pool's surrogate is its cold start: score once.
+        cold = current if surrogate is pool.cold else pool.cold.score(batch.features, batch.outputs)
         result: IngestResult = self._writes.run(
             self.pool(pool_id),
             "ingest",

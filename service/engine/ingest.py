@@ -106,8 +106,7 @@ def apply_batch(
     swapped the surrogate since. Returns the result and the durable writes to queue.
     """
     check_shape(pool, batch.features, batch.outputs)
-    known = [pool.data.index.get(item_id) for item_id in batch.item_ids]
-    existing = np.array([-1 if k is None else k for k in known], dtype=np.int64)
+    existing = _existing_rows(pool.data.index, batch.item_ids)
     is_new = existing < 0
     problems: list[ItemProblem] = []
     duplicates = 0
@@ -120,23 +119,22 @@ def apply_batch(
         if pool.data.surrogate is not scored_with:
             current = pool.data.surrogate.score(batch.features, batch.outputs)
         received = now_ms()
-        names = [batch.segments[i] for i in new_positions] if batch.segments else [""] * accepted
+        every = accepted == len(batch.item_ids)
+        names = _pick(batch.segments, new_positions, every) if batch.segments else [""] * accepted
         new_codes, new_names = pool.data.add_segments(names)
         if new_codes:
             writes.append(store.insert_segments(pool.pool_id, new_codes, new_names))
-        codes = np.fromiter(
-            (pool.data.segment_codes[name] for name in names), dtype=np.int32, count=accepted
-        )
+        codes = np.array(list(map(pool.data.segment_codes.__getitem__, names)), dtype=np.int32)
         ingest_times = np.full(accepted, received, dtype=np.int64)
         event_times = (
             batch.event_time_ms[new_positions] if batch.event_time_ms is not None else ingest_times
         )
         payloads = (
-            [batch.payload_refs[i] for i in new_positions]
+            _pick(batch.payload_refs, new_positions, every)
             if batch.payload_refs
             else [""] * accepted
         )
-        ids = [batch.item_ids[i] for i in new_positions]
+        ids = _pick(batch.item_ids, new_positions, every)
         chunk = store.ItemChunk(
             start=pool.data.item_count,
             item_ids=ids,
@@ -180,6 +178,20 @@ def apply_batch(
         item_count=pool.data.item_count,
     )
     return result, writes
+
+
+def _pick(values: list[str], positions: np.ndarray, every: bool) -> list[str]:
+    """``values`` at ``positions``; the list itself when ``every`` position is taken."""
+    return values if every else [values[i] for i in positions]
+
+
+def _existing_rows(index: dict[str, int], item_ids: list[str]) -> np.ndarray:
+    """Each id's row in the pool, -1 for a new id. A batch of only new ids (the usual
+    case) costs one set-disjointness test in C instead of a lookup per id."""
+    if index.keys().isdisjoint(item_ids):
+        return np.full(len(item_ids), -1, dtype=np.int64)
+    known = [index.get(item_id) for item_id in item_ids]
+    return np.array([-1 if k is None else k for k in known], dtype=np.int64)
 
 
 def compare_duplicates(
@@ -261,8 +273,7 @@ def apply_validation(pool: PoolState, batch: ValidationItems) -> tuple[IngestRes
     the pool's items, scores or estimates, so the query caches stay valid.
     """
     check_shape(pool, batch.features, batch.outputs)
-    known = [pool.data.validation_index.get(item_id) for item_id in batch.item_ids]
-    existing = np.array([-1 if k is None else k for k in known], dtype=np.int64)
+    existing = _existing_rows(pool.data.validation_index, batch.item_ids)
     problems: list[ItemProblem] = []
     duplicates = 0
     if (existing >= 0).any():
