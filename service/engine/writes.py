@@ -313,12 +313,21 @@ class PoolWrites:
             if reliance:
                 pool.data.reliance = Reliance(**json.loads(reliance))
             pool.data.surrogate = Surrogate.from_bytes(pool.spec, blob)
+        scoring = 0.0
         for chunk in store.load_items(
             reader,
             settings.pool_id,
             feature_dim=settings.feature_dim,
             output_width=settings.output_width,
         ):
+            scoring -= time.monotonic()
+            cold = pool.cold.score(chunk.features, chunk.outputs)
+            current = (
+                cold
+                if pool.data.surrogate is pool.cold
+                else pool.data.surrogate.score(chunk.features, chunk.outputs)
+            )
+            scoring += time.monotonic()
             ingest.append_items(
                 pool,
                 chunk.item_ids,
@@ -328,8 +337,8 @@ class PoolWrites:
                 chunk.segments,
                 chunk.event_time_ms,
                 chunk.ingest_time_ms,
-                cold=pool.cold.score(chunk.features, chunk.outputs),
-                current=pool.data.surrogate.score(chunk.features, chunk.outputs),
+                cold=cold,
+                current=current,
             )
         draws = store.load_draws(reader, settings.pool_id)
         pool.data.draws.append(draws)
@@ -339,13 +348,14 @@ class PoolWrites:
         pool.last_fit_time = time.monotonic()
         _LOG.info(
             "loaded pool %s: %d items, %d validation items, %d draws, surrogate version %d"
-            " in %.2f s",
+            " in %.2f s (scoring the items %.2f s)",
             settings.pool_id,
             pool.data.item_count,
             pool.data.validation_count,
             len(pool.data.draws),
             pool.data.surrogate_version,
             time.monotonic() - started,
+            scoring,
         )
         return pool
 

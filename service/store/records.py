@@ -2,7 +2,8 @@
 
 Write helpers return a function of a connection, to be queued on
 :meth:`leadline.service.store.Database.submit`; read helpers take a connection (a reader).
-Numeric columns travel as numpy arrays, features and model outputs as float32 blobs.
+Numeric columns travel as numpy arrays, features and model outputs as float32 blobs. Items
+are stored one row per ingest batch (``item_chunks``), one blob per column.
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ __all__ = [
     "PoolRow",
     "RememberedRequest",
     "ValidationChunk",
+    "count_items",
     "delete_pool",
     "find_request",
     "find_server_request",
@@ -135,7 +137,16 @@ def insert_pool(row: PoolRow) -> Write:
 
 def delete_pool(pool_id: str) -> Write:
     def write(connection: sqlite3.Connection) -> None:
-        tables = ("items", "validation_items", "draws", "segments", "models", "requests", "pools")
+        tables = (
+            "items",
+            "item_chunks",
+            "validation_items",
+            "draws",
+            "segments",
+            "models",
+            "requests",
+            "pools",
+        )
         for table in tables:
             connection.execute(f"DELETE FROM {table} WHERE pool_id = ?", (pool_id,))
 
@@ -151,35 +162,56 @@ def insert_segments(pool_id: str, codes: Sequence[int], names: Sequence[str]) ->
     return write
 
 
+def _join_strings(field: str, values: Sequence[str]) -> bytes:
+    """UTF-8 strings separated by line feeds. The API admits only printable strings here
+    (item ids, payload refs), which never hold one; a count checks it anyway."""
+    text = "\n".join(values)
+    if text.count("\n") != len(values) - 1:
+        raise ValueError(f"{field}: a value holds a line feed; cannot store it in a chunk")
+    return text.encode("utf-8")
+
+
+def _split_strings(blob: bytes) -> list[str]:
+    return bytes(blob).decode("utf-8").split("\n")
+
+
 def insert_items(pool_id: str, chunk: ItemChunk) -> Write:
-    feature_bytes = np.ascontiguousarray(chunk.features, dtype=np.float32)
-    output_bytes = np.ascontiguousarray(chunk.outputs, dtype=np.float32)
+    """Store the chunk's items as one ``item_chunks`` row: one blob per column (float32,
+    int32 and int64 little-endian arrays; strings joined by line feeds)."""
     n = len(chunk.item_ids)
-    feature_rows = feature_bytes.reshape(n, -1)
-    output_rows = output_bytes.reshape(n, -1)
-    rows = [
-        (
-            pool_id,
-            chunk.start + i,
-            chunk.item_ids[i],
-            feature_rows[i].tobytes(),
-            output_rows[i].tobytes(),
-            chunk.payload_refs[i],
-            int(chunk.segments[i]),
-            int(chunk.event_time_ms[i]),
-            int(chunk.ingest_time_ms[i]),
-        )
-        for i in range(n)
-    ]
+    row = (
+        pool_id,
+        chunk.start,
+        n,
+        _join_strings("item_ids", chunk.item_ids),
+        np.ascontiguousarray(chunk.features, dtype="<f4").tobytes(),
+        np.ascontiguousarray(chunk.outputs, dtype="<f4").tobytes(),
+        _join_strings("payload_refs", chunk.payload_refs),
+        np.ascontiguousarray(chunk.segments, dtype="<i4").tobytes(),
+        np.ascontiguousarray(chunk.event_time_ms, dtype="<i8").tobytes(),
+        np.ascontiguousarray(chunk.ingest_time_ms, dtype="<i8").tobytes(),
+    )
 
     def write(connection: sqlite3.Connection) -> None:
-        connection.executemany(
-            "INSERT INTO items (pool_id, row, item_id, features, outputs, payload_ref, segment,"
-            " event_time_ms, ingest_time_ms) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-            rows,
+        connection.execute(
+            "INSERT INTO item_chunks (pool_id, start_row, row_count, item_ids, features,"
+            " outputs, payload_refs, segments, event_time_ms, ingest_time_ms)"
+            " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            row,
         )
 
     return write
+
+
+def count_items(connection: sqlite3.Connection, pool_id: str) -> int:
+    """How many items of the pool the store holds (rows of schema 1-5 plus chunks)."""
+    (legacy,) = connection.execute(
+        "SELECT COUNT(*) FROM items WHERE pool_id = ?", (pool_id,)
+    ).fetchone()
+    (chunked,) = connection.execute(
+        "SELECT COALESCE(SUM(row_count), 0) FROM item_chunks WHERE pool_id = ?", (pool_id,)
+    ).fetchone()
+    return int(legacy) + int(chunked)
 
 
 def insert_validation_items(pool_id: str, chunk: ValidationChunk) -> Write:
@@ -441,7 +473,85 @@ def load_items(
     output_width: int,
     chunk_rows: int = 100_000,
 ) -> Iterator[ItemChunk]:
-    """All items of the pool in row order, ``chunk_rows`` at a time."""
+    """All items of the pool in row order, about ``chunk_rows`` at a time: first the
+    one-row-per-item rows an older server wrote, then the stored chunks, whose blobs
+    become arrays with one join and one ``np.frombuffer`` per column.
+
+    RuntimeError if the rows are not 0, 1, 2, ... without gaps or overlaps.
+    """
+    legacy = _load_item_rows(
+        connection,
+        pool_id,
+        feature_dim=feature_dim,
+        output_width=output_width,
+        chunk_rows=chunk_rows,
+    )
+    expected = 0
+    for chunk in legacy:
+        yield chunk
+        expected = chunk.start + len(chunk.item_ids)
+    cursor = connection.execute(
+        "SELECT start_row, row_count, item_ids, features, outputs, payload_refs, segments,"
+        " event_time_ms, ingest_time_ms FROM item_chunks WHERE pool_id = ? ORDER BY start_row",
+        (pool_id,),
+    )
+    group: list[tuple[Any, ...]] = []
+    rows = 0
+    for stored in cursor:
+        start, count = int(stored[0]), int(stored[1])
+        if start != expected + rows:
+            raise RuntimeError(
+                f"pool {pool_id!r}: item rows are not contiguous near {expected + rows}"
+            )
+        group.append(stored)
+        rows += count
+        if rows >= chunk_rows:
+            yield _joined_chunk(group, expected, rows, feature_dim, output_width)
+            expected += rows
+            group, rows = [], 0
+    if group:
+        yield _joined_chunk(group, expected, rows, feature_dim, output_width)
+
+
+def _joined_chunk(
+    group: list[tuple[Any, ...]], start: int, n: int, feature_dim: int, output_width: int
+) -> ItemChunk:
+    """One ItemChunk of consecutive stored chunks (rows as selected in :func:`load_items`)."""
+
+    def column(index: int, dtype: str) -> np.ndarray:
+        return np.frombuffer(b"".join(stored[index] for stored in group), dtype=dtype)
+
+    def strings(index: int) -> list[str]:
+        values = [text for stored in group for text in _split_strings(stored[index])]
+        if len(values) != n:
+            raise RuntimeError(f"item chunks from row {start}: {len(values)} strings for {n} rows")
+        return values
+
+    features = column(3, "<f4").astype(np.float32, copy=False)
+    outputs = column(4, "<f4").astype(np.float32, copy=False)
+    if features.shape[0] != n * feature_dim or outputs.shape[0] != n * output_width:
+        raise RuntimeError(f"item chunks from row {start}: feature or output blobs have odd sizes")
+    return ItemChunk(
+        start=start,
+        item_ids=strings(2),
+        features=features.reshape(n, feature_dim),
+        outputs=outputs.reshape(n, output_width) if output_width > 1 else outputs,
+        payload_refs=strings(5),
+        segments=column(6, "<i4").astype(np.int32, copy=False),
+        event_time_ms=column(7, "<i8").astype(np.int64, copy=False),
+        ingest_time_ms=column(8, "<i8").astype(np.int64, copy=False),
+    )
+
+
+def _load_item_rows(
+    connection: sqlite3.Connection,
+    pool_id: str,
+    *,
+    feature_dim: int,
+    output_width: int,
+    chunk_rows: int,
+) -> Iterator[ItemChunk]:
+    """The pool's one-row-per-item rows (schema 1-5) in row order, ``chunk_rows`` at a time."""
     cursor = connection.execute(
         "SELECT row, item_id, features, outputs, payload_ref, segment, event_time_ms,"
         " ingest_time_ms FROM items WHERE pool_id = ? ORDER BY row",

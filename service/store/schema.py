@@ -1,8 +1,10 @@
 """SQLite schema of the data directory and its migrations.
 
-The database holds one row per pool, item, validation item, draw, surrogate version and
-remembered request (per pool, and at server level for creating and deleting pools; each
-with the holder of the token that sent it, a digest of the request and its time).
+The database holds one row per pool, ingest batch of items (``item_chunks``: one blob per
+column; ``items`` keeps the one-row-per-item rows of schema 1-5), validation item, draw,
+surrogate version and remembered request (per pool, and at server level for creating and
+deleting pools; each with the holder of the token that sent it, a digest of the request
+and its time).
 ``schema_version`` records the last migration applied; :func:`migrate` applies the missing
 ones in order inside one transaction, so a data dir written by an older server opens in a
 newer one, and a newer data dir is refused by an older server.
@@ -156,6 +158,25 @@ _MIGRATIONS: tuple[tuple[str, ...], ...] = (
     # 5: the reliance guard's choice made at each refit (JSON: coefficient, constant,
     # floor), kept with the surrogate it governs; '' = full reliance (models saved before).
     ("ALTER TABLE models ADD COLUMN reliance TEXT NOT NULL DEFAULT ''",),
+    # 6: items are stored one row per ingest batch, one blob per column (item_chunks), so
+    # a batch costs one B-tree insert instead of one per item (two with the primary key
+    # index) and a restart reads a few large blobs instead of a row per item. Rows an
+    # older server wrote stay in ``items`` and are read first; new items go to chunks.
+    (
+        """CREATE TABLE item_chunks (
+            pool_id TEXT NOT NULL,
+            start_row INTEGER NOT NULL,
+            row_count INTEGER NOT NULL,
+            item_ids BLOB NOT NULL,
+            features BLOB NOT NULL,
+            outputs BLOB NOT NULL,
+            payload_refs BLOB NOT NULL,
+            segments BLOB NOT NULL,
+            event_time_ms BLOB NOT NULL,
+            ingest_time_ms BLOB NOT NULL,
+            PRIMARY KEY (pool_id, start_row)
+        )""",
+    ),
 )
 
 SCHEMA_VERSION = len(_MIGRATIONS)

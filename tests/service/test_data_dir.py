@@ -123,10 +123,13 @@ def _unread_table(data_dir: Path) -> None:
 
 
 def _rows_gap(data_dir: Path) -> None:
-    """Sound to SQLite, unsound to leadline: an item row missing from the middle (what two
-    servers on one directory once left behind)."""
+    """Sound to SQLite, unsound to leadline: 100 item rows missing before the last stored
+    chunk of items (what two servers on one directory once left behind)."""
     with contextlib.closing(sqlite3.connect(data_dir / DATABASE_FILE)) as connection:
-        connection.execute("DELETE FROM items WHERE row = 100")
+        connection.execute(
+            "UPDATE item_chunks SET start_row = start_row + 100"
+            " WHERE start_row = (SELECT MAX(start_row) FROM item_chunks)"
+        )
         connection.commit()
 
 

@@ -19,6 +19,7 @@ import grpc
 import pytest
 
 from leadline.service.store import DATABASE_FILE
+from leadline.service.store import records as store_records
 from leadline.v1 import leadline_pb2 as pb
 from tests.service.helpers import Dataset, Harness, Stubs, classification_pool, item_batch
 
@@ -39,10 +40,7 @@ def _sql(harness: Harness) -> Iterator[sqlite3.Connection]:
 
 def _stored_items(harness: Harness, pool_id: str) -> int:
     with _sql(harness) as connection:
-        (count,) = connection.execute(
-            "SELECT COUNT(*) FROM items WHERE pool_id = ?", (pool_id,)
-        ).fetchone()
-    return int(count)
+        return store_records.count_items(connection, pool_id)
 
 
 def _snapshot(stubs: Stubs) -> tuple[bytes, bytes, list[bytes]]:
@@ -75,7 +73,8 @@ def test_failed_ingest_leaves_no_trace_and_the_pool_keeps_serving(
         before = stubs.call(stubs.estimates.GetEstimate, pb.GetEstimateRequest(pool=_POOL))
         with _sql(harness) as connection:
             connection.execute(
-                "CREATE TRIGGER poison BEFORE INSERT ON items WHEN NEW.item_id = 'poison'"
+                "CREATE TRIGGER poison BEFORE INSERT ON item_chunks"
+                " WHEN instr(CAST(NEW.item_ids AS TEXT), 'poison') > 0"
                 " BEGIN SELECT RAISE(ABORT, 'injected'); END"
             )
         bad = item_batch("tumours", data, range(200, 260), request_id="batch-2")
@@ -121,7 +120,8 @@ def test_writes_queued_behind_a_failed_one_are_not_acknowledged(
         stubs.call(stubs.ingest.IngestItems, item_batch("tumours", data, range(100)))
         with _sql(harness) as connection:
             connection.execute(
-                "CREATE TRIGGER poison BEFORE INSERT ON items WHEN NEW.item_id = 'poison'"
+                "CREATE TRIGGER poison BEFORE INSERT ON item_chunks"
+                " WHEN instr(CAST(NEW.item_ids AS TEXT), 'poison') > 0"
                 " BEGIN SELECT RAISE(ABORT, 'injected'); END"
             )
         poisoned = item_batch("tumours", data, range(100, 150))
@@ -278,7 +278,8 @@ def test_pool_refuses_calls_until_a_reload_succeeds(harness: Harness, cancer_poo
         stubs.call(stubs.ingest.IngestItems, item_batch("tumours", data, range(100)))
         with _sql(harness) as connection:
             connection.execute(
-                "CREATE TRIGGER poison BEFORE INSERT ON items WHEN NEW.item_id = 'poison'"
+                "CREATE TRIGGER poison BEFORE INSERT ON item_chunks"
+                " WHEN instr(CAST(NEW.item_ids AS TEXT), 'poison') > 0"
                 " BEGIN SELECT RAISE(ABORT, 'injected'); END"
             )
             connection.execute("INSERT INTO segments VALUES ('tumours', 7, 'stray')")
