@@ -17,6 +17,7 @@ import ssl
 import sys
 import threading
 import time
+from collections.abc import Callable
 from concurrent import futures
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -25,7 +26,14 @@ from typing import Any, NoReturn
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 
-from leadline.service.api import Authenticator, AuthInterceptor, add_servicers, load_tokens
+from leadline.service.api import (
+    Authenticator,
+    AuthInterceptor,
+    Readiness,
+    ReadinessInterceptor,
+    add_servicers,
+    load_tokens,
+)
 from leadline.service.config import ServerConfig, is_loopback_host, load_config, split_host_port
 from leadline.service.engine import Engine, RefitWorker
 from leadline.service.metrics import Metrics, MetricsServer
@@ -151,7 +159,12 @@ def _credentials(config: ServerConfig) -> grpc.ServerCredentials | None:
     )
 
 
-def _open_engine(config: ServerConfig, database: Database, auth: Authenticator) -> Engine:
+def _load_engine(
+    engine: Engine,
+    database: Database,
+    auth: Authenticator,
+    progress: Callable[[int, int], None],
+) -> None:
     """Rebuild the pools from the database; DataDirectoryError when its content does not
     hold together (a damaged file SQLite's quick check did not catch)."""
     renames = auth.legacy_renames()
@@ -159,9 +172,9 @@ def _open_engine(config: ServerConfig, database: Database, auth: Authenticator) 
         renamed = database.write(store_records.rename_holders(renames))
         if renamed:
             _LOG.info("gave %d assignments keyed holder ids (data directory upgrade)", renamed)
-    engine = Engine(database, config)
+    started = time.monotonic()
     try:
-        engine.load()
+        engine.load(progress=progress)
     except Exception as error:
         # The traceback is for developers (--log-level DEBUG); the message says what to do.
         _LOG.debug("loading the pools from %s failed", database.path, exc_info=True)
@@ -169,7 +182,7 @@ def _open_engine(config: ServerConfig, database: Database, auth: Authenticator) 
             f"{str(database.path)!r}: the stored pools do not load ({error}). "
             f"{restore_hint(database.data_dir)}"
         ) from None
-    return engine
+    _LOG.info("loaded %d pools in %.2f s", len(engine.pools()), time.monotonic() - started)
 
 
 def _check_can_bind(listen: str, host: str, port: int) -> None:
@@ -201,8 +214,15 @@ def _check_can_bind(listen: str, host: str, port: int) -> None:
             ) from None
 
 
-def start_server(config: ServerConfig) -> RunningServer:
-    """Open the data dir, rebuild the pools, start serving.
+def start_server(
+    config: ServerConfig, *, on_listening: Callable[[str], None] | None = None
+) -> RunningServer:
+    """Open the data dir, listen, load the pools, then serve; returns once serving.
+
+    The port listens before the pools load: meanwhile the health service reports
+    NOT_SERVING and every leadline call gets UNAVAILABLE (see
+    :mod:`leadline.service.api.readiness`). ``on_listening(address)`` is called from this
+    thread once the port listens, before the pools load (``main`` prints a line there).
 
     Raises ValueError on bad configuration, DataDirectoryError when the data directory is
     in use by another server, damaged, or cannot be read.
@@ -212,18 +232,22 @@ def start_server(config: ServerConfig) -> RunningServer:
     credentials = _credentials(config)
     database = Database(config.data_dir)
     try:
-        # Before the pools load (seconds for large ones): a taken port fails at once.
+        # Before anything else: a taken port fails at once, with the system's reason.
         _check_can_bind(config.listen, host, port)
         auth = Authenticator(tokens, holder_key=database.holder_key)
-        engine = _open_engine(config, database, auth)
     except BaseException:
         database.close()
         raise
+    engine = Engine(database, config)
     metrics = Metrics(engine, database)
     worker = engine.refit_worker()
+    readiness = Readiness()
     server = grpc.server(
         futures.ThreadPoolExecutor(max_workers=config.max_workers, thread_name_prefix="rpc"),
-        interceptors=[AuthInterceptor(auth, observe=metrics.observe)],
+        interceptors=[
+            AuthInterceptor(auth, observe=metrics.observe),
+            ReadinessInterceptor(readiness),
+        ],
         options=[
             ("grpc.max_receive_message_length", config.max_message_bytes),
             ("grpc.max_send_message_length", config.max_message_bytes),
@@ -234,6 +258,8 @@ def start_server(config: ServerConfig) -> RunningServer:
     services = add_servicers(server, engine, config, auth, on_labels=worker.nudge)
     health_servicer = health.HealthServicer()
     health_pb2_grpc.add_HealthServicer_to_server(health_servicer, server)
+    for name in ["", *services]:
+        health_servicer.set(name, health_pb2.HealthCheckResponse.NOT_SERVING)
     if config.enable_reflection:
         from grpc_reflection.v1alpha import reflection
 
@@ -252,26 +278,36 @@ def start_server(config: ServerConfig) -> RunningServer:
     if bound == 0:
         database.close()
         raise ValueError(f"listen = {config.listen!r}: cannot bind (address in use?).")
+    address = f"[{host}]:{bound}" if ":" in host else f"{host}:{bound}"
     metrics_server = None
     metrics_port = 0
-    if config.metrics_listen:
-        metrics_host, wanted = split_host_port(config.metrics_listen, name="metrics_listen")
-        try:
-            metrics_server = MetricsServer(metrics_host, wanted, metrics.render)
-        except OSError as error:
-            database.close()
-            raise ValueError(
-                f"metrics_listen = {config.metrics_listen!r}: cannot bind ({error})."
-            ) from None
-        metrics_port = metrics_server.port
+    try:
+        if config.metrics_listen:
+            metrics_host, wanted = split_host_port(config.metrics_listen, name="metrics_listen")
+            try:
+                metrics_server = MetricsServer(metrics_host, wanted, metrics.render)
+            except OSError as error:
+                raise ValueError(
+                    f"metrics_listen = {config.metrics_listen!r}: cannot bind ({error})."
+                ) from None
+            metrics_port = metrics_server.port
+            metrics_server.start()
+            _LOG.info("metrics on http://%s:%d/metrics", metrics_host, metrics_port)
+        server.start()
+        _LOG.info("listening on %s; loading the pools (health: NOT_SERVING)", address)
+        if on_listening is not None:
+            on_listening(address)
+        _load_engine(engine, database, auth, readiness.progress)
+    except BaseException:
+        server.stop(None).wait()
+        if metrics_server is not None:
+            metrics_server.stop()
+        database.close()
+        raise
     worker.start()
-    server.start()
+    readiness.set_ready()
     for name in ["", *services]:
         health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
-    if metrics_server is not None:
-        metrics_server.start()
-        _LOG.info("metrics on http://%s:%d/metrics", metrics_host, metrics_port)
-    address = f"[{host}]:{bound}" if ":" in host else f"{host}:{bound}"
     return RunningServer(
         port=bound,
         address=address,
@@ -398,7 +434,15 @@ def main(argv: list[str] | None = None) -> int:
     previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGTERM, signal.SIGINT)}
     try:
         try:
-            running = start_server(config)
+            running = start_server(
+                config,
+                on_listening=lambda address: print(
+                    f"leadline loading pools; gRPC on {address} answers UNAVAILABLE and health "
+                    "NOT_SERVING until they are loaded",
+                    file=sys.stderr,
+                    flush=True,
+                ),
+            )
         except (ValueError, DataDirectoryError) as error:
             print(f"leadline serve: {error}", file=sys.stderr)
             return _EXIT_ERROR
