@@ -207,6 +207,8 @@ class PoolData:
         """Codes for new segment names, in first-seen order; returns the new (codes, names)."""
         new_codes: list[int] = []
         new_names: list[str] = []
+        if self.segment_codes.keys() >= set(names):
+            return new_codes, new_names  # the usual batch: only known names, one C pass
         for name in names:
             if name not in self.segment_codes:
                 code = len(self.segment_names)
