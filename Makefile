@@ -7,7 +7,7 @@ PY := $(VENV)/bin/python
 PROTO_DIR := proto
 PROTO_OUT := proto/leadline/v1
 
-.PHONY: demo test lint format proto bench bench-quick bench-system bench-system-quick clean
+.PHONY: demo test lint format proto bench bench-quick bench-system bench-system-quick bench-ingest clean
 
 $(PY):
 	$(PYTHON) -c 'import sys; assert sys.version_info >= (3, 11), "leadline needs Python >= 3.11, found " + sys.version'
@@ -72,6 +72,10 @@ bench-system: $(VENV)/.installed-test
 
 bench-system-quick: $(VENV)/.installed-test
 	$(PY) benchmarks/system.py --quick
+
+# Ingest and restart at 100k and 1M items beside bare sqlite3 on the same rows.
+bench-ingest: $(VENV)/.installed-test
+	$(PY) benchmarks/ingest.py
 
 clean:
 	rm -rf $(VENV) build dist *.egg-info .pytest_cache .mypy_cache .ruff_cache

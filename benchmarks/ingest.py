@@ -302,7 +302,11 @@ def measure(
     workdir.mkdir(parents=True, exist_ok=True)
     chunks = _BareChunks(workdir / "bare-chunks.db")
     per_row = _BareRows(workdir / "bare-rows.db")
-    server = ServerProcess(workdir / "server", extra_args=["--refit-interval-seconds", "1000000"])
+    server = ServerProcess(
+        workdir / "server",
+        extra_args=["--refit-interval-seconds", "1000000"],
+        startup_timeout=900.0,  # a restart of a large pool rescores every item first
+    )
     leadline: list[float] = []
     bare_chunks: list[float] = []
     bare_rows: list[float] = []
