@@ -2,8 +2,13 @@
 
 Run from the repository root:
 
-    .venv/bin/python benchmarks/system.py            # full: 1,000,000 items (a few minutes)
-    .venv/bin/python benchmarks/system.py --quick    # 100,000 items, fewer repetitions
+    .venv/bin/python benchmarks/system.py            # full: 1M-item detail, 100k/1M/10M scaling
+    .venv/bin/python benchmarks/system.py --quick    # 100,000 items only, fewer repetitions
+    .venv/bin/python benchmarks/system.py --quick --sizes 100000,300000   # other sizes
+
+Two parts: the detailed table at the main size (below), then the scaling table and the
+mixed-load run of :mod:`benchmarks.system_scaling` (one fresh server per size, default
+settings, each figure beside its floor measured in the same run).
 
 The harness starts ``leadline serve`` as a child process on 127.0.0.1 port 0 with a fresh
 data directory and a token file, reads the port from its ``leadline listening on
@@ -188,6 +193,9 @@ class Row:
 class SystemReport:
     config: SystemConfig
     rows: list[Row] = field(default_factory=list)
+    scaling: str = ""  # the scaling table (Markdown), if run
+    mixed: str = ""  # the mixed-load table (Markdown), if run
+    scaling_notes: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
     wall_seconds: float = 0.0
     load_before: str = ""  # /proc/loadavg (1, 5, 15 minutes) when the run started
@@ -996,6 +1004,33 @@ def render_section(report: SystemReport, *, command: str, quick: bool) -> str:
         lines += ["Details measured in the same run:", ""]
         lines += [f"- {note}" for note in report.notes]
         lines.append("")
+    if report.scaling:
+        lines += [
+            "### Scaling",
+            "",
+            "One fresh server per size with the default settings (refit cadence included: "
+            "every 10 labels, refits at most a quarter of the time); a labeling run of "
+            "rounds of AcquireItems(10), SubmitLabels, then one fresh GetEstimate or "
+            "CheckGate (alternating), with the floors timed in every round "
+            "(benchmarks/system_scaling.py describes each figure).",
+            "",
+            report.scaling,
+            "",
+        ]
+        lines += [f"- {note}" for note in report.scaling_notes]
+        lines.append("")
+    if report.mixed:
+        lines += [
+            "### Under load",
+            "",
+            "The main size's server after its labeling run, 8 clients at once, each on its "
+            "own channel: 2 ingesters (a 2,000-row batch of new items every 0.5 s each), 4 "
+            "labelers (AcquireItems(10) + SubmitLabels back to back), 2 gate pollers "
+            "(CheckGate + GetEstimate back to back).",
+            "",
+            report.mixed,
+            "",
+        ]
     return "\n".join(lines)
 
 
@@ -1016,7 +1051,39 @@ def _parse(argv: Sequence[str] | None) -> argparse.Namespace:
     parser.add_argument("--items", type=int, default=None, help="override the pool size")
     parser.add_argument("--output", type=Path, default=None, help="markdown file to write")
     parser.add_argument("--workdir", type=Path, default=None, help="keep server files here")
+    parser.add_argument(
+        "--sizes",
+        default=None,
+        help="comma-separated pool sizes of the scaling table (default: 100000 for --quick, "
+        "100000,1000000,10000000 for the full run); 0 = skip it",
+    )
     return parser.parse_args(argv)
+
+
+def _scaling(
+    args: argparse.Namespace, quick: bool, main_size: int, workdir: Path
+) -> tuple[str, str, list[str]]:
+    """The scaling table, the mixed-load table and their notes (empty if skipped)."""
+    from benchmarks.system_scaling import (
+        ScalingConfig,
+        format_mixed_table,
+        format_scaling_table,
+        run_scaling,
+    )
+
+    text = args.sizes or ("100000" if quick else "100000,1000000,10000000")
+    sizes = tuple(int(part) for part in text.split(",") if int(part) > 0)
+    if not sizes:
+        return "", "", []
+    config = ScalingConfig(
+        sizes=sizes,
+        main_size=main_size if main_size in sizes else sizes[0],
+        label_seconds=15.0 if quick else 60.0,
+        mixed_seconds=15.0 if quick else 60.0,
+    )
+    results, mixed = run_scaling(config, workdir, _progress)
+    notes = [f"{r.items:,} items: {r.rss_notes}." for r in results]
+    return format_scaling_table(results), format_mixed_table(mixed), notes
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -1030,16 +1097,27 @@ def main(argv: Sequence[str] | None = None) -> int:
         _ROOT / "bench-out" / "system-quick.md" if quick else _ROOT / "BENCHMARKS.md"
     )
     print(f"system benchmark ({'QUICK: ' if quick else ''}{config.items:,} items)", flush=True)
-    if args.workdir is not None:
-        args.workdir.mkdir(parents=True, exist_ok=True)
-        report = run_system_benchmark(config, args.workdir)
-    else:
-        with tempfile.TemporaryDirectory(prefix="leadline-system-") as tmp:
-            report = run_system_benchmark(config, Path(tmp))
+    started = time.perf_counter()
+    with tempfile.TemporaryDirectory(prefix="leadline-system-") as tmp:
+        workdir = args.workdir or Path(tmp)
+        (workdir / "detail").mkdir(parents=True, exist_ok=True)
+        report = run_system_benchmark(config, workdir / "detail")
+        report.scaling, report.mixed, report.scaling_notes = _scaling(
+            args, quick, config.items, workdir
+        )
+    report.wall_seconds = time.perf_counter() - started
     print()
     print(format_table(report.rows))
     for note in report.notes:
         print(f"- {note}")
+    if report.scaling:
+        print()
+        print(report.scaling)
+        for note in report.scaling_notes:
+            print(f"- {note}")
+    if report.mixed:
+        print()
+        print(report.mixed)
     body = render_section(report, command=_command(argv), quick=quick)
     output.parent.mkdir(parents=True, exist_ok=True)
     if not output.exists():

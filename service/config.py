@@ -44,9 +44,9 @@ class ServerConfig:
     refit_every_labels: int = 10
     # ... or when this many seconds passed since the last fit and new labels exist.
     refit_interval_seconds: float = 300.0
-    # Either way only once a pool's refits take at most this share of the time: after a
-    # refit of t seconds the next waits t (1 - share) / share (engine/refit.py).
-    refit_time_share: float = 0.25
+    # Either way only once a pool's refits take at most this share of one core: after a
+    # refit of t CPU seconds the next waits t (1 - share) / share (engine/refit.py).
+    refit_cpu_share: float = 0.25
     default_lease_seconds: int = 3600
     # Defensive floor epsilon of the selection when the pool does not set one.
     selection_floor: float = DEFAULT_FLOOR
@@ -85,8 +85,8 @@ def _check(config: ServerConfig) -> None:
         raise bad("refit_every_labels", "must be >= 1")
     if not config.refit_interval_seconds > 0:
         raise bad("refit_interval_seconds", "must be > 0")
-    if not 0 < config.refit_time_share <= 1:
-        raise bad("refit_time_share", "must be in (0, 1]")
+    if not 0 < config.refit_cpu_share <= 1:
+        raise bad("refit_cpu_share", "must be in (0, 1]")
     if not 1 <= config.default_lease_seconds <= 7 * 86400:
         raise bad("default_lease_seconds", "must be in [1, 604800]")
     if not 0 < config.selection_floor <= 1:

@@ -72,9 +72,7 @@ def append_items(
     cold: SurrogateScores,
     current: SurrogateScores,
 ) -> None:
-    start = pool.data.item_count
     pool.data.item_ids.extend(item_ids)
-    pool.data.index.update(zip(item_ids, range(start, start + len(item_ids)), strict=True))
     pool.data.payload_refs.extend(payload_refs)
     pool.data.features.extend(features)
     pool.data.outputs.extend(outputs)
@@ -106,7 +104,7 @@ def apply_batch(
     swapped the surrogate since. Returns the result and the durable writes to queue.
     """
     check_shape(pool, batch.features, batch.outputs)
-    existing = _existing_rows(pool.data.index, batch.item_ids)
+    existing = pool.data.item_ids.rows_of(batch.item_ids)
     is_new = existing < 0
     problems: list[ItemProblem] = []
     duplicates = 0

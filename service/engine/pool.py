@@ -23,6 +23,7 @@ import numpy as np
 
 from leadline.service.draws import DrawStatus
 from leadline.service.engine.columns import Column
+from leadline.service.engine.item_ids import ItemIds
 from leadline.service.engine.ledger import DrawLedger
 from leadline.service.estimation import (
     EstimatorMode,
@@ -122,8 +123,8 @@ class PoolData:
     def __init__(self, settings: PoolSettings, cold: Surrogate) -> None:
         d = settings.feature_dim
         width = (settings.num_classes,) if settings.is_classification else ()
-        self.item_ids: list[str] = []
-        self.index: dict[str, int] = {}
+        # Ids by row and rows by id (ItemIds.rows_of), ~50 B per item.
+        self.item_ids = ItemIds()
         self.payload_refs: list[str] = []
         self.features = Column(np.float32, (d,))
         self.outputs = Column(np.float32, width)
@@ -256,8 +257,8 @@ class PoolState:
         # Refit bookkeeping (survives a reload: a refit may be running).
         self.refitting = False
         self.last_fit_time = 0.0
-        # Wall seconds the last refit took: the next waits in proportion (refit.py).
-        self.last_refit_seconds = 0.0
+        # CPU seconds the last refit took: the next waits in proportion (refit.py).
+        self.last_refit_cpu_seconds = 0.0
         # Label and validation-item counts at the last failed refit (-1: none failed).
         self.failed_fit_labels = -1
         self.failed_fit_validation = -1

@@ -13,14 +13,15 @@ The worker (:class:`RefitWorker`) wakes every ``poll_seconds`` (or when nudged a
 labels), refits every due pool, one at a time, then forgets request ids past their
 retention (rate-limited).
 
-Cadence (:func:`refit_gap_seconds`): a refit costs about one core for the time it takes
-to fit and rescore the pool (seconds per million items), so besides the label count the
-worker spaces a pool's refits so that they take at most ``refit_time_share`` of the
-time: after a refit that took ``t`` seconds the next one waits ``t (1 - share) / share``
-seconds. A small pool refits in milliseconds and keeps its label cadence; a large pool's
-refits spread out in proportion to its size (and to the label count, which the fit's cost
-grows with). Rescoring (:func:`rescore_into`) runs in chunks outside the pool lock,
-pausing between chunks, into fresh arrays that the final swap adopts as the pool's score
+Cadence (:func:`refit_gap_seconds`): a refit costs one core for the CPU time it takes to
+fit and rescore the pool (seconds per million items), so besides the label count the
+worker spaces a pool's refits so that they take at most ``refit_cpu_share`` of one
+core: after a refit that used ``t`` CPU seconds (its thread's own, so a busy machine does
+not stretch it) the next one waits ``t (1 - share) / share`` seconds. A small pool
+refits in milliseconds and keeps its label cadence; a large pool's refits spread out in
+proportion to its size (and to the label count, which the fit's cost grows with).
+Rescoring (:func:`rescore_into`) runs in chunks outside the pool lock, pausing between
+chunks, into fresh arrays that the final swap adopts as the pool's score
 columns (one assignment per column under the lock, no extra copy).
 """
 
@@ -76,11 +77,12 @@ _CATCH_UP_UNDER_LOCK = 5_000
 _CHUNK_PAUSE_SECONDS = 0.001
 
 
-def refit_gap_seconds(last_refit_seconds: float, share: float) -> float:
-    """How long a pool waits after a refit that took ``last_refit_seconds`` before the
-    next may start, so that its refits take at most ``share`` of the time:
-    t / (t + gap) <= share  <=>  gap >= t (1 - share) / share."""
-    return last_refit_seconds * (1.0 - share) / share
+def refit_gap_seconds(last_refit_cpu_seconds: float, share: float) -> float:
+    """How long a pool waits after a refit that used ``last_refit_cpu_seconds`` of CPU
+    before the next may start, so that its refits take at most ``share`` of one core:
+    the refit's wall time w is at least its CPU time t, so t / (w + gap) <= t / (t + gap)
+    <= share  <=  gap >= t (1 - share) / share."""
+    return last_refit_cpu_seconds * (1.0 - share) / share
 
 
 class ScoreColumns:
@@ -253,7 +255,8 @@ class Refits:
             if new_labels <= 0 or labeled <= pool.failed_fit_labels:
                 return False
             waited = now - pool.last_fit_time
-            if waited < refit_gap_seconds(pool.last_refit_seconds, self._config.refit_time_share):
+            gap = refit_gap_seconds(pool.last_refit_cpu_seconds, self._config.refit_cpu_share)
+            if waited < gap:
                 return False
             every = pool.settings.refit_every_labels or self._config.refit_every_labels
             return new_labels >= every or waited >= self._config.refit_interval_seconds
@@ -286,12 +289,13 @@ class Refits:
             return False
         finally:
             elapsed = time.monotonic() - started
+            cpu = time.thread_time() - cpu_started
             with pool.lock:
                 pool.refitting = False
                 # The next refit of this pool waits in proportion (refit_gap_seconds).
-                pool.last_refit_seconds = elapsed
+                pool.last_refit_cpu_seconds = cpu
                 pool.refit_done.notify_all()
-            self.cpu_seconds_total += time.thread_time() - cpu_started
+            self.cpu_seconds_total += cpu
         self.count += 1
         self.seconds_total += elapsed
         _LOG.info(

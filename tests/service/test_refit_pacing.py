@@ -44,8 +44,8 @@ def _wait(condition, seconds: float, what: str) -> None:  # type: ignore[no-unty
 
 
 def test_gap_keeps_refits_to_their_share_of_the_time() -> None:
-    # The rule's own algebra: a refit of t seconds followed by the gap takes exactly
-    # `share` of the time t + gap (common practice for a duty cycle, no source).
+    # The rule's own algebra: a refit of t CPU seconds followed by the gap takes exactly
+    # `share` of one core over t + gap (common practice for a duty cycle, no source).
     for seconds, share in ((4.0, 0.25), (0.05, 0.5), (40.0, 0.1), (3.0, 1.0)):
         gap = refit_gap_seconds(seconds, share)
         assert seconds / (seconds + gap) == pytest.approx(share, rel=1e-12)
@@ -56,7 +56,7 @@ def test_gap_keeps_refits_to_their_share_of_the_time() -> None:
 def test_refit_waits_for_its_gap(harness_factory, cancer_pool: Dataset) -> None:
     share = 0.001  # a tiny share makes even a small pool's gap long enough to observe
     harness: Harness = harness_factory(
-        refit_every_labels=10, refit_interval_seconds=1e6, refit_time_share=share
+        refit_every_labels=10, refit_interval_seconds=1e6, refit_cpu_share=share
     )
     assert harness.server is not None
     engine = harness.server.engine
@@ -67,7 +67,7 @@ def test_refit_waits_for_its_gap(harness_factory, cancer_pool: Dataset) -> None:
         # The first refit has no predecessor: due at once with its 10 labels.
         _wait(lambda: _version(stubs) == 1, 30, "first refit")
         pool = engine.pool("paced")
-        took = pool.last_refit_seconds
+        took = pool.last_refit_cpu_seconds
         assert took > 0
         gap = refit_gap_seconds(took, share)
         label_round(stubs, "paced", cancer_pool, 10)
@@ -116,7 +116,7 @@ def test_chunked_rescoring_equals_one_call(cancer_pool: Dataset) -> None:
 def test_calls_go_through_a_running_refit_and_late_items_get_new_scores(
     harness_factory, cancer_pool: Dataset, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    harness: Harness = harness_factory(refit_every_labels=10, refit_time_share=1.0)
+    harness: Harness = harness_factory(refit_every_labels=10, refit_cpu_share=1.0)
     assert harness.server is not None
     engine = harness.server.engine
     with harness.stubs() as stubs:
@@ -142,7 +142,7 @@ def test_calls_go_through_a_running_refit_and_late_items_get_new_scores(
         assert _version(stubs) == 0
         _wait(lambda: _version(stubs) == 1, 60, "refit end")
         data = pool.data
-        rows = np.array([data.index[cancer_pool.ids[i]] for i in late])
+        rows = data.item_ids.rows_of([cancer_pool.ids[i] for i in late])
         assert rows.min() >= 400  # they arrived after the refit's snapshot
         fresh = data.surrogate.score(cancer_pool.features[late], cancer_pool.outputs[late])
         cold = pool.cold.score(cancer_pool.features[late], cancer_pool.outputs[late])
