@@ -4,7 +4,9 @@ Per pool size, one fresh ``leadline serve`` child with the default settings (ref
 cadence included) and the parcel-sorting pool of :mod:`benchmarks.system`:
 
 1. ingest every item in 2,000-row batches; beside it, a bare stdlib sqlite3 insert of the
-   same rows (every ``bare_every``-th batch, interleaved, so both see the same load);
+   same rows in leadline's own layout, one durable commit per batch (the floor of
+   :mod:`benchmarks.ingest`, reused; every ``bare_every``-th batch, interleaved, so both
+   see the same load);
 2. a labeling run of ``label_seconds``: rounds of AcquireItems(10), SubmitLabels with the
    true classes, then one fresh GetEstimate or CheckGate (alternating, so each is the first
    call after the label) and a GetPool for the surrogate lag (labeled draws the surrogate
@@ -37,10 +39,10 @@ from pathlib import Path
 
 import numpy as np
 
+from benchmarks.ingest import _BareChunks as BareChunks
 from benchmarks.system import (
     LABELER,
     POOL_ID,
-    BareSqlite,
     ServerProcess,
     SyntheticPool,
     bare_refit_seconds,
@@ -174,7 +176,7 @@ def _ingest(
     workdir: Path,
     result: SizeResult,
 ) -> None:
-    bare = BareSqlite(workdir / "bare-insert.db")
+    bare = BareChunks(workdir / "bare-insert.db")
     bare_every = max(1, n // 1_000_000)
     ours: list[float] = []
     theirs: list[float] = []
@@ -183,7 +185,8 @@ def _ingest(
         for index, start in enumerate(range(0, n, config.batch_rows)):
             part = slice(start, min(n, start + config.batch_rows))
             if index % bare_every == 0:
-                _timed(theirs, lambda part=part: bare.insert(data, segments, part))
+                now = int(time.time() * 1000)
+                _timed(theirs, lambda part=part, now=now: bare.insert(data, part, now))
                 bare_rows += part.stop - part.start
             _timed(ours, lambda part=part: ingest_batch(client, data, segments, part))
     finally:
@@ -473,7 +476,7 @@ def format_scaling_table(results: Sequence[SizeResult]) -> str:
     )
     line("ingest, rows/s", [f"{r.ingest_rate:,.0f}" for r in results])
     line(
-        "floor: bare sqlite3 insert of the same rows, rows/s",
+        "floor: bare sqlite3 insert of the same rows (same layout), rows/s",
         [f"{r.bare_insert_rate:,.0f}" for r in results],
     )
     line("ingest / bare insert", [f"{r.ingest_rate / r.bare_insert_rate:.2f}" for r in results])
