@@ -17,7 +17,9 @@ Cadence (:func:`refit_gap_seconds`): a refit costs one core for the CPU time it 
 fit and rescore the pool (seconds per million items), so besides the label count the
 worker spaces a pool's refits so that they take at most ``refit_cpu_share`` of one
 core: after a refit that used ``t`` CPU seconds (its thread's own, so a busy machine does
-not stretch it) the next one waits ``t (1 - share) / share`` seconds. A small pool
+not stretch it) the next one waits ``t (1 - share) / share`` seconds, unless the labels
+doubled since the surrogate's fit (geometric steps: 10, 20, 40, ... labels refit at once,
+about log2(labels / refit_every_labels) refits in a pool's life). A small pool
 refits in milliseconds and keeps its label cadence; a large pool's refits spread out in
 proportion to its size (and to the label count, which the fit's cost grows with).
 Rescoring (:func:`rescore_into`) runs in chunks outside the pool lock, pausing between
@@ -254,11 +256,16 @@ class Refits:
             new_labels = labeled - data.surrogate.label_count
             if new_labels <= 0 or labeled <= pool.failed_fit_labels:
                 return False
+            every = pool.settings.refit_every_labels or self._config.refit_every_labels
+            if new_labels >= max(every, data.surrogate.label_count):
+                # The labels doubled since the fit: refit without waiting for the gap. A
+                # lagging surrogate costs most while labels are few, and this happens only
+                # about log2(labels / every) times in a pool's life.
+                return True
             waited = now - pool.last_fit_time
             gap = refit_gap_seconds(pool.last_refit_cpu_seconds, self._config.refit_cpu_share)
             if waited < gap:
                 return False
-            every = pool.settings.refit_every_labels or self._config.refit_every_labels
             return new_labels >= every or waited >= self._config.refit_interval_seconds
 
     def run(self, pool: PoolState) -> bool:

@@ -54,7 +54,7 @@ def test_gap_keeps_refits_to_their_share_of_the_time() -> None:
 
 
 def test_refit_waits_for_its_gap(harness_factory, cancer_pool: Dataset) -> None:
-    share = 0.001  # a tiny share makes even a small pool's gap long enough to observe
+    share = 1e-4  # a tiny share makes even a small pool's gap long enough to observe
     harness: Harness = harness_factory(
         refit_every_labels=10, refit_interval_seconds=1e6, refit_cpu_share=share
     )
@@ -63,8 +63,8 @@ def test_refit_waits_for_its_gap(harness_factory, cancer_pool: Dataset) -> None:
     with harness.stubs() as stubs:
         stubs.call(stubs.pools.CreatePool, classification_pool("paced", cancer_pool))
         stubs.call(stubs.ingest.IngestItems, item_batch("paced", cancer_pool, range(300)))
-        label_round(stubs, "paced", cancer_pool, 10)
-        # The first refit has no predecessor: due at once with its 10 labels.
+        label_round(stubs, "paced", cancer_pool, 20)
+        # The first refit has no predecessor: due at once with its 20 labels.
         _wait(lambda: _version(stubs) == 1, 30, "first refit")
         pool = engine.pool("paced")
         took = pool.last_refit_cpu_seconds
@@ -75,6 +75,11 @@ def test_refit_waits_for_its_gap(harness_factory, cancer_pool: Dataset) -> None:
         assert not engine.refit_due(pool, pool.last_fit_time + 0.99 * gap)
         assert engine.refit_due(pool, pool.last_fit_time + 1.01 * gap)
         assert _version(stubs) == 1
+        label_round(stubs, "paced", cancer_pool, 10)
+        # Twenty new labels on a surrogate fitted on twenty: doubled, refit without waiting
+        # for the gap (the worker starts it at once, well before the gap ends).
+        assert gap > 60
+        _wait(lambda: _version(stubs) == 2, 30, "refit after the labels doubled")
 
 
 def test_chunked_rescoring_equals_one_call(cancer_pool: Dataset) -> None:
