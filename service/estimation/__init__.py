@@ -6,6 +6,7 @@ docs/core-api.md and the mathematics in docs/estimation.md.
 """
 
 from .bounds import BET_TRUNCATION, BoundKind
+from .draw_index import RANGE_BUCKETS, DrawIndex
 from .estimators import (
     BALANCED_MIN_LABELS,
     EstimatorMode,
@@ -58,8 +59,10 @@ __all__ = [
     "MIN_DRAWS",
     "PRIOR_DRAWS",
     "PROBABILITY_SUM_TOLERANCE",
+    "RANGE_BUCKETS",
     "BoundKind",
     "DrawBatch",
+    "DrawIndex",
     "DrawTerms",
     "EstimatorMode",
     "GateDecision",

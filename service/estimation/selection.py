@@ -179,71 +179,26 @@ def draw_batch(
     Raises ValueError (field, value, rule) on NaN/inf, shape mismatch, floor outside
     (0, 1], count < 0 or count > n, g outside [0, loss_bound], a negative max_deviation.
     """
-    u = _check_usefulness(usefulness)
-    # Subnormal scores would overflow 1 / sum(u); they carry no usable weight anyway.
-    u = np.where(u < np.finfo(np.float64).tiny, 0.0, u)
-    g = check_finite_array("expected_loss", expected_loss, ndim=1)
+    inputs = _draw_inputs(
+        usefulness,
+        expected_loss,
+        loss_bound=loss_bound,
+        max_deviation=max_deviation,
+        groups=groups,
+        num_groups=num_groups,
+    )
+    u, g, reach_up, reach_down, codes = (
+        inputs.usefulness,
+        inputs.expected_loss,
+        inputs.reach_up,
+        inputs.reach_down,
+        inputs.groups,
+    )
     n = u.shape[0]
-    if g.shape[0] != n:
-        raise ValueError(f"expected_loss has {g.shape[0]} entries: must match usefulness ({n}).")
     floor = check_fraction("floor", floor, low_open=True, high_open=False)
-    bound = float(loss_bound)
-    if not (np.isfinite(bound) and bound > 0.0):
-        raise ValueError(f"loss_bound = {describe(loss_bound)}: must be finite and > 0.")
-    tolerance = 1e-9 * bound
-    if n and (g.min() < -tolerance or g.max() > bound + tolerance):
-        raise ValueError(
-            f"expected_loss range [{describe(g.min())}, {describe(g.max())}]:"
-            f" must lie in [0, {describe(bound)}] "
-            "(loss_bound)."
-        )
-    g = np.clip(g, 0.0, bound)
-    reach_up, reach_down = bound - g, g
-    if max_deviation is not None:
-        deviation = check_finite_array("max_deviation", max_deviation, ndim=1)
-        if deviation.shape[0] != n:
-            raise ValueError(
-                f"max_deviation has {deviation.shape[0]} entries: must match usefulness ({n})."
-            )
-        if n and deviation.min() < 0.0:
-            i = int(np.argmin(deviation))
-            raise ValueError(f"max_deviation[{i}] = {describe(deviation[i])}: must be >= 0.")
-        # A hair of slack: the realised loss is recomputed from the same outputs and may
-        # differ from the table entry in the last bits.
-        deviation = deviation * (1.0 + 1e-9) + 1e-12 * bound
-        reach_up = np.minimum(reach_up, deviation)
-        reach_down = np.minimum(reach_down, deviation)
-    if isinstance(count, bool) or int(count) != count or count < 0:
-        raise ValueError(f"count = {describe(count)}: must be an integer >= 0.")
-    count = int(count)
-    if count > n:
-        raise ValueError(f"count = {count}: must be <= the number of candidates ({n}).")
+    count = _check_count(count, n)
     if not isinstance(rng, np.random.Generator):
         raise ValueError(f"rng = {describe(rng)}: must be a numpy.random.Generator.")
-    codes = None
-    if groups is not None:
-        raw_codes = np.asarray(groups)
-        if np.issubdtype(raw_codes.dtype, np.integer) and raw_codes.ndim == 1:
-            # Integer codes (the server's case) need no finiteness or integrality check:
-            # on a million candidates those checks cost more than the draws themselves.
-            codes = raw_codes
-            whole = True
-        else:
-            codes = check_finite_array("groups", groups, ndim=1)
-            whole = bool(np.all(codes == np.round(codes)))
-        if codes.shape[0] != n:
-            raise ValueError(f"groups has {codes.shape[0]} entries: must match usefulness ({n}).")
-        if int(num_groups) != num_groups or num_groups < 1:
-            raise ValueError(
-                f"num_groups = {describe(num_groups)}: must be an integer >= 1 with groups."
-            )
-        if n and (not whole or codes.min() < 0 or codes.max() >= num_groups):
-            raise ValueError(
-                f"groups range [{describe(codes.min())}, {describe(codes.max())}]:"
-                f" must be integer codes "
-                f"in [0, {num_groups})."
-            )
-        codes = codes.astype(np.int64)
 
     positions = np.empty(count, dtype=np.int64)
     probabilities = np.empty(count)
@@ -320,6 +275,99 @@ def draw_batch(
         correction_high=high,
         min_probability=min_probability,
     )
+
+
+@dataclass(frozen=True)
+class _DrawInputs:
+    """Checked inputs of a draw: u (subnormals flushed to 0), g clipped to [0, B], each
+    item's reach above / below g, and int64 group codes (None without groups)."""
+
+    usefulness: np.ndarray
+    expected_loss: np.ndarray
+    reach_up: np.ndarray
+    reach_down: np.ndarray
+    groups: np.ndarray | None
+
+
+def _draw_inputs(
+    usefulness: object,
+    expected_loss: object,
+    *,
+    loss_bound: float,
+    max_deviation: object | None,
+    groups: object | None,
+    num_groups: int,
+) -> _DrawInputs:
+    """The checks and derived arrays ``draw_batch`` and ``DrawIndex`` share (one place, so
+    both see the same u, g and reach to the last bit)."""
+    u = _check_usefulness(usefulness)
+    # Subnormal scores would overflow 1 / sum(u); they carry no usable weight anyway.
+    u = np.where(u < np.finfo(np.float64).tiny, 0.0, u)
+    g = check_finite_array("expected_loss", expected_loss, ndim=1)
+    n = u.shape[0]
+    if g.shape[0] != n:
+        raise ValueError(f"expected_loss has {g.shape[0]} entries: must match usefulness ({n}).")
+    bound = float(loss_bound)
+    if not (np.isfinite(bound) and bound > 0.0):
+        raise ValueError(f"loss_bound = {describe(loss_bound)}: must be finite and > 0.")
+    tolerance = 1e-9 * bound
+    if n and (g.min() < -tolerance or g.max() > bound + tolerance):
+        raise ValueError(
+            f"expected_loss range [{describe(g.min())}, {describe(g.max())}]:"
+            f" must lie in [0, {describe(bound)}] "
+            "(loss_bound)."
+        )
+    g = np.clip(g, 0.0, bound)
+    reach_up, reach_down = bound - g, g
+    if max_deviation is not None:
+        deviation = check_finite_array("max_deviation", max_deviation, ndim=1)
+        if deviation.shape[0] != n:
+            raise ValueError(
+                f"max_deviation has {deviation.shape[0]} entries: must match usefulness ({n})."
+            )
+        if n and deviation.min() < 0.0:
+            i = int(np.argmin(deviation))
+            raise ValueError(f"max_deviation[{i}] = {describe(deviation[i])}: must be >= 0.")
+        # A hair of slack: the realised loss is recomputed from the same outputs and may
+        # differ from the table entry in the last bits.
+        deviation = deviation * (1.0 + 1e-9) + 1e-12 * bound
+        reach_up = np.minimum(reach_up, deviation)
+        reach_down = np.minimum(reach_down, deviation)
+    codes = None
+    if groups is not None:
+        raw_codes = np.asarray(groups)
+        if np.issubdtype(raw_codes.dtype, np.integer) and raw_codes.ndim == 1:
+            # Integer codes (the server's case) need no finiteness or integrality check:
+            # on a million candidates those checks cost more than the draws themselves.
+            codes = raw_codes
+            whole = True
+        else:
+            codes = check_finite_array("groups", groups, ndim=1)
+            whole = bool(np.all(codes == np.round(codes)))
+        if codes.shape[0] != n:
+            raise ValueError(f"groups has {codes.shape[0]} entries: must match usefulness ({n}).")
+        if int(num_groups) != num_groups or num_groups < 1:
+            raise ValueError(
+                f"num_groups = {describe(num_groups)}: must be an integer >= 1 with groups."
+            )
+        if n and (not whole or codes.min() < 0 or codes.max() >= num_groups):
+            raise ValueError(
+                f"groups range [{describe(codes.min())}, {describe(codes.max())}]:"
+                f" must be integer codes "
+                f"in [0, {num_groups})."
+            )
+        codes = codes.astype(np.int64)
+    return _DrawInputs(u, g, reach_up, reach_down, codes)
+
+
+def _check_count(count: int, candidates: int) -> int:
+    """``count`` as an int in [0, candidates] (ValueError naming the field otherwise)."""
+    if isinstance(count, bool) or int(count) != count or count < 0:
+        raise ValueError(f"count = {describe(count)}: must be an integer >= 0.")
+    value = int(count)
+    if value > candidates:
+        raise ValueError(f"count = {value}: must be <= the number of candidates ({candidates}).")
+    return value
 
 
 def _correction_ranges(

@@ -25,6 +25,7 @@ _ADDED = {
     "estimate_one_sided",  # docs/core-api.md: the gate's one-sided estimate
     # docs/core-api.md, reliance.py (the reliance guard)
     "MIN_DRAWS", "PRIOR_DRAWS", "Reliance", "choose_reliance", "cross_fitted_scores",
+    "RANGE_BUCKETS", "DrawIndex",  # docs/core-api.md, draw_index.py (O(k log N) draws)
 }  # fmt: skip
 
 
