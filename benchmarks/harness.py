@@ -13,7 +13,7 @@ Methods (all on the same pool, same repetition seed):
   loss (with the same floor), LURE weights (``lure_weights``), normal interval from the
   weighted losses' sample variance (common practice, no source).
 - ``unbiased`` / ``balanced`` / ``surrogate``: leadline's selection (``usefulness`` +
-  ``draw_batch``) with its own refit surrogate; the three estimator modes of
+  the draw index the server draws with) with its own refit surrogate; the three estimator modes of
   ``estimate_risk`` on the same draws.
 - ``oracle``: the proposal q proportional to |L - g| from the TRUE losses (unattainable; the
   limit of what a proposal can do with this surrogate), UNBIASED estimator.
@@ -27,7 +27,8 @@ another run's labels is independent of this run's draws, so it is a valid (predi
 control variate and proposal for them, and the comparison isolates the proposal.
 
 Every run draws, logs and builds its terms through the service's own ledger
-(``leadline.service.engine.ledger``: ``select``, ``DrawLedger.record`` / ``label``,
+(``leadline.service.engine.ledger``: ``build_index`` / ``select_from`` as the server
+draws, ``select`` for the other proposals, ``DrawLedger.record`` / ``label``,
 ``DrawLedger.terms`` / ``plug_in_sums``), and leadline's run chooses its reliance with the
 refit's own function (``choose_reliance_at_refit``), so the benchmark measures the code
 the server runs. Only the proposal differs between runs (``Proposal``).
@@ -43,12 +44,13 @@ import numpy as np
 from scipy import stats
 
 from benchmarks.scenarios import Scenario
-from leadline.service.engine.ledger import DrawLedger, select
+from leadline.service.engine.ledger import DrawLedger, build_index, select, select_from
 from leadline.service.engine.refit import choose_reliance_at_refit
 from leadline.service.estimation import (
     DEFAULT_FLOOR,
     DRAW_LABELED,
     BoundKind,
+    DrawIndex,
     DrawTerms,
     EstimatorMode,
     LossSpec,
@@ -175,6 +177,9 @@ class _Run:
         self.labeled = np.zeros(scenario.pool_size, dtype=bool)
         self.sums_at: dict[int, PlugInSums] = {}
         self._terms: DrawTerms | None = None
+        # The service's draw index, for the scores and control variate it was built with.
+        self._index: DrawIndex | None = None
+        self._index_for: tuple[SurrogateScores, float, float] | None = None
 
     def draw(
         self,
@@ -189,17 +194,45 @@ class _Run:
     ) -> None:
         """``size`` draws among the unlabeled items: the service's selection, then labels."""
         scenario = self.scenario
-        candidates = np.flatnonzero(~self.labeled)
-        rule = None if proposal is None else (lambda seen: proposal(seen, candidates, done))
-        selection = select(
-            _subset(scores, candidates),
-            size,
-            reliance=reliance,
-            loss_bound=scenario.spec.bound,
-            rng=rng,
-            rule=rule,
-        )
-        rows = candidates[selection.positions]
+        if proposal is None:
+            # The service's path: the pool's draw index, built once per surrogate and
+            # control variate (as at a refit); the drawn items leave it. Same draws as
+            # ``select`` over the unlabeled items on the same generator.
+            built_for = (scores, reliance.coefficient, reliance.constant)
+            if (
+                self._index is None
+                or self._index_for is None
+                or self._index_for[0] is not scores
+                or self._index_for[1:] != built_for[1:]
+            ):
+                self._index = build_index(
+                    scores,
+                    reliance=reliance,
+                    loss_bound=scenario.spec.bound,
+                    present=~self.labeled,
+                )
+                self._index_for = built_for
+            selection = select_from(
+                self._index,
+                size,
+                reliance=reliance,
+                loss_bound=scenario.spec.bound,
+                rng=rng,
+                scores_at=lambda rows: _subset(scores, rows),
+            )
+            rows = selection.positions
+        else:
+            chosen: Proposal = proposal
+            candidates = np.flatnonzero(~self.labeled)
+            selection = select(
+                _subset(scores, candidates),
+                size,
+                reliance=reliance,
+                loss_bound=scenario.spec.bound,
+                rng=rng,
+                rule=lambda seen: chosen(seen, candidates, done),
+            )
+            rows = candidates[selection.positions]
         start = len(self.ledger)
         self.ledger.record(
             selection, rows=rows, surrogate_version=version, arrival_mark=scenario.pool_size

@@ -14,8 +14,8 @@ import numpy as np
 
 from leadline.service.draws import DrawRecord, DrawStatus
 from leadline.service.engine.ingest import MAX_ITEM_ERRORS, now_ms
-from leadline.service.engine.ledger import select
-from leadline.service.engine.pool import AVAILABLE, ITEM_LABELED, ITEM_SKIPPED, PoolState
+from leadline.service.engine.ledger import select_from
+from leadline.service.engine.pool import ITEM_LABELED, ITEM_SKIPPED, PoolState
 from leadline.service.engine.results import AssignmentInfo, ItemProblem, LabelInput, OutcomeResult
 from leadline.service.errors import (
     FailedPrecondition,
@@ -24,7 +24,6 @@ from leadline.service.errors import (
     PermissionDenied,
     ServiceError,
 )
-from leadline.service.estimation import SurrogateScores
 from leadline.service.store import records as store
 from leadline.service.store.records import Write
 
@@ -210,34 +209,28 @@ def _new_draws(
     ledger (the new records come back for the store).
 
     The generator is seeded by the pool's seed and the draw count, so the same history
-    replays the same draws."""
+    replays the same draws. The pool's draw index makes them in O(k log N); the drawn
+    items leave it."""
     data = pool.data
-    candidates = np.flatnonzero(data.status.view == AVAILABLE)
-    k = min(wanted, int(candidates.shape[0]))
+    index = data.drawing_index(loss_bound=pool.loss_bound, floor=floor)
+    k = min(wanted, index.size)
     if k == 0:
         return []
-    scores = SurrogateScores(
-        expected_loss=data.expected_loss.view[candidates],
-        residual_second_moment=data.second_moment.view[candidates],
-        spread=data.spread.view[candidates],
-        worst_squared_deviation=data.worst_deviation.view[candidates],
-    )
     start = len(data.draws)
-    selection = select(
-        scores,
+    selection = select_from(
+        index,
         k,
         # The reliance guard chose, at the last refit, the control variate h (g shrunk
         # towards a constant) and the floor from the labels of that time: fixed before
-        # these draws.
+        # these draws (the index holds h and the usefulness under it).
         reliance=data.reliance_for(floor),
         loss_bound=pool.loss_bound,
         rng=np.random.default_rng([pool.seed, start]),
-        groups=data.segment.view[candidates].astype(np.int64),
-        num_groups=len(data.segment_names),
+        scores_at=data.scores_at,
     )
     return data.draws.record(
         selection,
-        rows=candidates[selection.positions],
+        rows=selection.positions,
         surrogate_version=data.surrogate_version,
         arrival_mark=data.item_count,
         draw_time_ms=now,

@@ -13,10 +13,14 @@ benchmark measures the service's own code:
 3. :meth:`DrawLedger.terms` builds ``DrawTerms`` for the whole pool or a scope, and
    :meth:`DrawLedger.plug_in_sums` the plug-in's ``PlugInSums``.
 
-Faster versions have their places here: a weight structure for O(k log N) draws replaces
-the whole-candidate pass inside :func:`select` (its state lives with the scores in
-``PoolData``), and sums kept up to date draw by draw replace the full passes of
-:meth:`DrawLedger.terms` and :meth:`DrawLedger.plug_in_sums`.
+The server draws through the core's ``DrawIndex`` instead of :func:`select`'s
+whole-candidate pass: :func:`build_index` applies the same control variate, usefulness and
+reach once per refit (its state lives with the scores in ``PoolData``), :func:`index_rows`
+adds items ingested between refits, and :func:`select_from` makes the draws in
+O(k log N). Both paths give the same draws on the same seed (tests/service/
+test_draw_ledger.py); the index's correction ranges are conservative (docs/estimation.md).
+Sums kept up to date draw by draw replace the full passes of :meth:`DrawLedger.terms` and
+:meth:`DrawLedger.plug_in_sums`.
 """
 
 from __future__ import annotations
@@ -34,6 +38,7 @@ from leadline.service.estimation import (
     DRAW_PENDING,
     DRAW_SKIPPED,
     DrawBatch,
+    DrawIndex,
     DrawTerms,
     PlugInSums,
     Reliance,
@@ -42,7 +47,17 @@ from leadline.service.estimation import (
     usefulness,
 )
 
-__all__ = ["CORE_STATUS", "DrawLedger", "Selection", "UsefulnessRule", "core_status", "select"]
+__all__ = [
+    "CORE_STATUS",
+    "DrawLedger",
+    "Selection",
+    "UsefulnessRule",
+    "build_index",
+    "core_status",
+    "index_rows",
+    "select",
+    "select_from",
+]
 
 #: Each draw status as the core's terms know it: outcome unknown (PENDING), LABELED, SKIPPED.
 CORE_STATUS: dict[DrawStatus, int] = {
@@ -115,6 +130,86 @@ def select(
         batch=batch,
         expected_loss=seen.expected_loss[batch.positions],
         second_moment=seen.residual_second_moment[batch.positions],
+    )
+
+
+def _draw_weights(
+    scores: SurrogateScores,
+    *,
+    reliance: Reliance,
+    loss_bound: float,
+    rule: UsefulnessRule | None = None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """(u, h, reach bound) of items as :func:`select` sees them: elementwise, so a subset of
+    rows gets exactly the values the whole pool would."""
+    seen = reliance.apply(scores, loss_bound=loss_bound)
+    useful = usefulness(seen, loss_bound=loss_bound) if rule is None else rule(seen)
+    worst = seen.worst_squared_deviation
+    return useful, seen.expected_loss, None if worst is None else np.sqrt(worst)
+
+
+def build_index(
+    scores: SurrogateScores,
+    *,
+    reliance: Reliance,
+    loss_bound: float,
+    present: np.ndarray | None = None,
+    groups: np.ndarray | None = None,
+    num_groups: int = 0,
+    rule: UsefulnessRule | None = None,
+) -> DrawIndex:
+    """The core's ``DrawIndex`` over rows 0..n-1 of ``scores`` (the current surrogate's),
+    ``present`` marking the candidates: the same h, usefulness and reach as
+    :func:`select` (O(n); once per refit)."""
+    useful, expected, reach = _draw_weights(
+        scores, reliance=reliance, loss_bound=loss_bound, rule=rule
+    )
+    return DrawIndex.build(
+        useful,
+        expected,
+        loss_bound=loss_bound,
+        present=present,
+        groups=groups,
+        num_groups=num_groups,
+        max_deviation=reach,
+        floor=reliance.floor,
+    )
+
+
+def index_rows(
+    index: DrawIndex,
+    rows: np.ndarray,
+    scores: SurrogateScores,
+    *,
+    reliance: Reliance,
+    loss_bound: float,
+    groups: np.ndarray | None = None,
+) -> None:
+    """New candidates ``rows`` with their ``scores`` (the surrogate in force) join
+    ``index`` (O(r log N))."""
+    useful, expected, reach = _draw_weights(scores, reliance=reliance, loss_bound=loss_bound)
+    index.add(rows, useful, expected, groups=groups, max_deviation=reach)
+
+
+def select_from(
+    index: DrawIndex,
+    count: int,
+    *,
+    reliance: Reliance,
+    loss_bound: float,
+    rng: np.random.Generator,
+    scores_at: Callable[[np.ndarray], SurrogateScores],
+) -> Selection:
+    """``count`` draws from ``index`` (built with ``reliance``'s control variate) at
+    ``reliance.floor``: the drawn rows leave the index. ``DrawBatch.positions`` are pool
+    rows; ``scores_at(rows)`` gives the current surrogate's scores of those rows (for the
+    logged h and E[(L - h)^2]). O(count log N)."""
+    batch = index.draw(count, floor=reliance.floor, rng=rng)
+    seen = reliance.apply(scores_at(batch.positions), loss_bound=loss_bound)
+    return Selection(
+        batch=batch,
+        expected_loss=seen.expected_loss,
+        second_moment=seen.residual_second_moment,
     )
 
 

@@ -24,13 +24,16 @@ import numpy as np
 from leadline.service.draws import DrawStatus
 from leadline.service.engine.columns import Column
 from leadline.service.engine.item_ids import ItemIds
-from leadline.service.engine.ledger import DrawLedger
+from leadline.service.engine.ledger import DrawLedger, build_index, index_rows
 from leadline.service.estimation import (
+    DEFAULT_FLOOR,
+    DrawIndex,
     EstimatorMode,
     LossKind,
     LossSpec,
     Reliance,
     Surrogate,
+    SurrogateScores,
     cold_start_surrogate,
 )
 
@@ -42,6 +45,7 @@ __all__ = [
     "PoolData",
     "PoolSettings",
     "PoolState",
+    "PreparedIndex",
     "RememberedCall",
     "SCORE_DTYPE",
 ]
@@ -154,6 +158,9 @@ class PoolData:
         self.surrogate: Surrogate = cold
         #: The reliance guard's choice made with the surrogate in force (None: full).
         self.reliance: Reliance | None = None
+        #: The draw weights of the AVAILABLE items under the surrogate and reliance in
+        #: force (None: built at the next draw). Rebuilt with every new surrogate.
+        self.draw_index: DrawIndex | None = None
 
     @property
     def item_count(self) -> int:
@@ -194,6 +201,57 @@ class PoolData:
         self.spread.adopt(spread, size)
         self.worst_deviation.adopt(worst_deviation, size)
 
+    def scores_at(self, rows: np.ndarray) -> SurrogateScores:
+        """The current surrogate's scores of pool ``rows``."""
+        return SurrogateScores(
+            expected_loss=self.expected_loss.view[rows],
+            residual_second_moment=self.second_moment.view[rows],
+            spread=self.spread.view[rows],
+            worst_squared_deviation=self.worst_deviation.view[rows],
+        )
+
+    def drawing_index(self, *, loss_bound: float, floor: float = DEFAULT_FLOOR) -> DrawIndex:
+        """The draw index, built now over every item (O(N)) if there is none; ``floor``
+        only shapes its range buckets (each draw takes its own)."""
+        if self.draw_index is None:
+            n = self.item_count
+            self.draw_index = build_index(
+                self.scores_at(np.arange(n)),
+                reliance=self.reliance_for(floor),
+                loss_bound=loss_bound,
+                present=self.status.view == AVAILABLE,
+                groups=self.segment.view.astype(np.int64),
+                num_groups=max(len(self.segment_names), 1),
+            )
+        return self.draw_index
+
+    def index_items(self, start: int, *, loss_bound: float) -> None:
+        """Items ``start``.. (just appended, AVAILABLE, scored with the surrogate in force)
+        join the draw index, if there is one (O(r log N))."""
+        if self.draw_index is None or start >= self.item_count:
+            return
+        rows = np.arange(start, self.item_count)
+        index_rows(
+            self.draw_index,
+            rows,
+            self.scores_at(rows),
+            reliance=self.reliance_for(DEFAULT_FLOOR),
+            loss_bound=loss_bound,
+            groups=self.segment.view[rows].astype(np.int64),
+        )
+
+    def install_index(self, prepared: PreparedIndex | None, *, loss_bound: float) -> None:
+        """Swap in an index prepared outside the lock (:meth:`PoolState.prepare_index`)
+        for the scores and reliance just swapped in: the items drawn since it was prepared
+        leave it, the items that arrived since join it (call with the lock held, after the
+        new scores and reliance are in place). None: built at the next draw."""
+        self.draw_index = None if prepared is None else prepared.index
+        if prepared is None:
+            return
+        drawn = self.draws.row.view[prepared.draw_count :]
+        prepared.index.remove(drawn[drawn < prepared.item_count])
+        self.index_items(prepared.item_count, loss_bound=loss_bound)
+
     def mark_drawn_items(self, start: int) -> None:
         """Set the item status of the items drawn from draw ``start`` on."""
         rows = self.draws.row.view[start:]
@@ -218,6 +276,16 @@ class PoolData:
                 new_codes.append(code)
                 new_names.append(name)
         return new_codes, new_names
+
+
+@dataclass(frozen=True)
+class PreparedIndex:
+    """A draw index built outside the pool lock over the first ``item_count`` items as
+    they were after ``draw_count`` draws (see :meth:`PoolData.install_index`)."""
+
+    index: DrawIndex
+    item_count: int
+    draw_count: int
 
 
 class RememberedCall(NamedTuple):
@@ -274,6 +342,34 @@ class PoolState:
         self.requests.clear()
         self.epoch += 1
         self.touch()
+
+    def prepare_index(
+        self, scores: SurrogateScores, reliance: Reliance, *, floor: float
+    ) -> PreparedIndex:
+        """The draw index for new ``scores`` of the first items (as the score columns will
+        hold them) and their ``reliance``, built outside the lock from a snapshot of which
+        items are AVAILABLE (the lock is held only to copy it). Install it with the scores
+        (:meth:`PoolData.install_index`)."""
+        rows = scores.expected_loss.shape[0]
+        with self.lock:
+            data = self.data
+            present = data.status.view[:rows] == AVAILABLE
+            groups = data.segment.view[:rows].astype(np.int64)
+            num_groups = max(len(data.segment_names), 1)
+            draw_count = len(data.draws)
+        index = build_index(
+            scores,
+            reliance=Reliance(
+                coefficient=reliance.coefficient,
+                constant=reliance.constant,
+                floor=max(reliance.floor, floor),
+            ),
+            loss_bound=self.loss_bound,
+            present=present,
+            groups=groups,
+            num_groups=num_groups,
+        )
+        return PreparedIndex(index=index, item_count=rows, draw_count=draw_count)
 
     @property
     def pool_id(self) -> str:

@@ -442,6 +442,8 @@ class Refits:
             if n - scores.size <= _CATCH_UP_UNDER_LOCK:
                 break
             rescore_into(scores, surrogate, features, outputs, n, loss_bound=pool.loss_bound)
+        # The new draw index, built outside the lock too; installed with the scores.
+        prepared = pool.prepare_index(scores.scores(), reliance, floor=job.floor)
         with pool.lock:
             if pool.epoch != job.epoch:
                 # Reloaded meanwhile: the reload read this version from the store.
@@ -465,6 +467,7 @@ class Refits:
             )
             data.surrogate = surrogate
             data.reliance = reliance
+            data.install_index(prepared, loss_bound=pool.loss_bound)
             pool.last_fit_time = time.monotonic()
             pool.touch()
         return True

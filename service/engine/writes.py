@@ -37,7 +37,7 @@ from leadline.service.engine.ingest import now_ms
 from leadline.service.engine.pool import PoolSettings, PoolState, RememberedCall
 from leadline.service.engine.results import encode
 from leadline.service.errors import InvalidArgument, NotFound, Unavailable
-from leadline.service.estimation import Reliance, Surrogate
+from leadline.service.estimation import DEFAULT_FLOOR, Reliance, Surrogate
 from leadline.service.store import Database, EarlierWriteFailed
 from leadline.service.store import records as store
 from leadline.service.store.records import RememberedRequest
@@ -345,6 +345,9 @@ class PoolWrites:
         for draw in draws:
             pool.data.assignments[draw.assignment_id] = draw.draw_index
         pool.data.mark_drawn_items(0)
+        pool.data.drawing_index(
+            loss_bound=pool.loss_bound, floor=settings.selection_floor or DEFAULT_FLOOR
+        )
         pool.last_fit_time = time.monotonic()
         _LOG.info(
             "loaded pool %s: %d items, %d validation items, %d draws, surrogate version %d"

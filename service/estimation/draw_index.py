@@ -108,6 +108,11 @@ class _SumTree:
         self._view = self.nodes.data
 
     @property
+    def leaves(self) -> np.ndarray:
+        """The leaves (a view: row r at index r)."""
+        return self.nodes[self.capacity :]
+
+    @property
     def total(self) -> float | int:
         return self._view[1]
 
@@ -251,12 +256,12 @@ class DrawIndex:
     def __init__(self) -> None:
         # Use DrawIndex.build; the fields below are set there.
         self.loss_bound_ = 0.0
-        self.usefulness_ = np.zeros(0)
+        # Per row: h (float64) and the group code (int32); u lives in the u tree's leaves
+        # and presence in the presence tree's (no copies: about 36 bytes per row).
         self.expected_loss_ = np.zeros(0)
         self.groups_: np.ndarray | None = None
-        self.present_ = np.zeros(0, dtype=bool)
         self._weights = _SumTree(np.zeros(0), _MIN_CAPACITY)
-        self._members = _SumTree(np.zeros(0, dtype=np.int64), _MIN_CAPACITY)
+        self._members = _SumTree(np.zeros(0, dtype=np.int32), _MIN_CAPACITY)
         self._buckets = _Buckets.build(
             np.zeros(0), np.zeros(0), np.zeros(0), floor=DEFAULT_FLOOR, buckets=1
         )
@@ -306,14 +311,10 @@ class DrawIndex:
         index = cls()
         index.loss_bound_ = float(loss_bound)
         capacity = _capacity_for(n)
-        index.usefulness_ = np.zeros(capacity)
-        index.usefulness_[:n] = inputs.usefulness
         index.expected_loss_ = np.zeros(capacity)
         index.expected_loss_[:n] = inputs.expected_loss
-        index.present_ = np.zeros(capacity, dtype=bool)
-        index.present_[:n] = mask
         index._weights = _SumTree(np.where(mask, inputs.usefulness, 0.0), capacity)
-        index._members = _SumTree(mask.astype(np.int64), capacity)
+        index._members = _SumTree(mask.astype(np.int32), capacity)
         index._buckets = _Buckets.build(
             inputs.usefulness[mask],
             inputs.reach_up[mask],
@@ -322,7 +323,7 @@ class DrawIndex:
             buckets=int(buckets),
         )
         if inputs.groups is not None:
-            index.groups_ = np.zeros(capacity, dtype=np.int64)
+            index.groups_ = np.zeros(capacity, dtype=np.int32)
             index.groups_[:n] = inputs.groups
         index._resum(num_groups=int(num_groups) if inputs.groups is not None else 0)
         return index
@@ -331,6 +332,16 @@ class DrawIndex:
     def capacity(self) -> int:
         """Rows the index has room for (grows by doubling)."""
         return self._weights.capacity
+
+    @property
+    def present_(self) -> np.ndarray:
+        """Whether each row 0..capacity-1 is a candidate (a fresh bool array, O(capacity))."""
+        return np.asarray(self._members.leaves == 1)
+
+    @property
+    def usefulness_(self) -> np.ndarray:
+        """u of each candidate row, 0 elsewhere (a view of the u tree's leaves)."""
+        return self._weights.leaves
 
     @property
     def size(self) -> int:
@@ -393,13 +404,11 @@ class DrawIndex:
         if np.unique(rows).shape[0] != rows.shape[0]:
             raise ValueError("rows: must be distinct.")
         self._reserve(int(rows.max()) + 1)
-        if self.present_[rows].any():
-            row = int(rows[self.present_[rows]][0])
-            raise ValueError(f"rows contains {row}: already a candidate.")
+        taken = self._members.leaves[rows] == 1
+        if taken.any():
+            raise ValueError(f"rows contains {int(rows[taken][0])}: already a candidate.")
         u, h = inputs.usefulness, inputs.expected_loss
-        self.usefulness_[rows] = u
         self.expected_loss_[rows] = h
-        self.present_[rows] = True
         self._weights.set(rows, u)
         self._members.set(rows, 1)
         self._buckets.join(u, inputs.reach_up, inputs.reach_down)
@@ -428,13 +437,12 @@ class DrawIndex:
             raise ValueError("rows: must be distinct.")
         bad = (rows < 0) | (rows >= self.capacity)
         if not bad.any():
-            bad = ~self.present_[rows]
+            bad = self._members.leaves[rows] != 1
         if bad.any():
             raise ValueError(f"rows contains {int(rows[bad][0])}: not a candidate.")
         self._leave(rows)
 
     def _leave(self, rows: np.ndarray) -> None:
-        self.present_[rows] = False
         self._weights.set(rows, 0.0)
         self._members.set(rows, 0)
         h = self.expected_loss_[rows]
@@ -459,16 +467,14 @@ class DrawIndex:
             wider[: array.shape[0]] = array
             return wider
 
-        self.usefulness_ = widen(self.usefulness_)
         self.expected_loss_ = widen(self.expected_loss_)
-        self.present_ = widen(self.present_)
         if self.groups_ is not None:
             self.groups_ = widen(self.groups_)
 
     def _resum(self, *, num_groups: int) -> None:
         """The running sums of h, summed again over the candidates (O(capacity); at the
         build and when rounding could matter)."""
-        h = np.where(self.present_, self.expected_loss_, 0.0)
+        h = np.where(self._members.leaves == 1, self.expected_loss_, 0.0)
         self._loss_sum = float(h.sum())
         self._loss_sum_reference = self._loss_sum
         if self.groups_ is not None:
@@ -487,8 +493,10 @@ class DrawIndex:
         count = _check_count(count, n)
         if not isinstance(rng, np.random.Generator):
             raise ValueError(f"rng = {describe(rng)}: must be a numpy.random.Generator.")
-        u = self.usefulness_
         weights = self._weights
+        members = self._members.leaves
+        u = weights.leaves  # u of the candidates (a drawn row keeps its leaf until cleared)
+        drawn_u: dict[int, float] = {}
         positions = np.empty(count, dtype=np.int64)
         probabilities = np.empty(count)
         scale_u = np.zeros(count)
@@ -502,7 +510,7 @@ class DrawIndex:
         for m in range(count):
             n_m = n - m
             if total_u > 0.0 and remaining_u <= _RESUM_SHARE * total_u:
-                remaining_u = self._usefulness_without(drawn, cleared)
+                remaining_u = self._usefulness_without(drawn_u, cleared)
                 total_u = remaining_u
             if remaining_u > 0.0:
                 scale_u[m] = (1.0 - floor) / remaining_u
@@ -515,7 +523,7 @@ class DrawIndex:
             while True:
                 if use_score:
                     pick = weights.find(rng.random() * sampling_total)
-                    accept = pick < self.capacity and self.present_[pick] and u[pick] > 0.0
+                    accept = members[pick] == 1 and u[pick] > 0.0
                 else:
                     pick = self._members.find(int(rng.integers(n)))
                     accept = True
@@ -532,9 +540,11 @@ class DrawIndex:
             taken.add(pick)
             drawn.append(pick)
             positions[m] = pick
+            weight = float(u[pick])
+            drawn_u[pick] = weight
             # A probability is at most 1 (the last item's (1 - eps) + eps can round above).
-            probabilities[m] = min(scale_u[m] * u[pick] + scale_flat[m], 1.0)
-            remaining_u -= u[pick]
+            probabilities[m] = min(scale_u[m] * weight + scale_flat[m], 1.0)
+            remaining_u -= weight
 
         drawn_h = self.expected_loss_[positions]
         before = np.concatenate([[0.0], np.cumsum(drawn_h)[:-1]]) if count else np.zeros(0)
@@ -559,12 +569,12 @@ class DrawIndex:
             min_probability=min_probability,
         )
 
-    def _usefulness_without(self, drawn: list[int], cleared: set[int]) -> float:
+    def _usefulness_without(self, drawn: dict[int, float], cleared: set[int]) -> float:
         """Sum of u over the candidates minus ``drawn``, from the tree (exact up to the
         pairwise sum's rounding): clear the drawn leaves, read the root, restore the ones
         the sampling still needs."""
         restore = np.array([row for row in drawn if row not in cleared], dtype=np.int64)
         self._weights.set(restore, 0.0)
         value = float(self._weights.total)
-        self._weights.set(restore, self.usefulness_[restore])
+        self._weights.set(restore, np.array([drawn[row] for row in restore.tolist()]))
         return value
