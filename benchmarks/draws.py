@@ -37,7 +37,10 @@ _ROOT = Path(__file__).resolve().parents[1]
 if str(_ROOT) not in sys.path:  # run as a script: make `benchmarks` importable
     sys.path.insert(0, str(_ROOT))
 
+from benchmarks.harness import HarnessConfig, run_repetition  # noqa: E402
+from benchmarks.labels import surrogate_settings  # noqa: E402
 from benchmarks.markdown import replace_section  # noqa: E402
+from benchmarks.scenarios import QUICK_SCENARIO_NAMES, build_scenario  # noqa: E402
 from leadline.service.engine.ledger import build_index  # noqa: E402
 from leadline.service.estimation import (  # noqa: E402
     DEFAULT_FLOOR,
@@ -145,6 +148,53 @@ def measure(n: int, *, calls: int, batch_calls: int, seed: int = 20261202) -> di
     }
 
 
+def label_check(repetitions: int) -> list[dict[str, str]]:
+    """The label benchmark's quick scenarios, each repetition run twice on the same seeds:
+    leadline's draws through the draw index (as the server) and through ``select``'s
+    whole-candidate pass (as before). Same draws; the differences come from the
+    correction ranges (conservative vs exact) and from rounding."""
+    rows = []
+    for name in QUICK_SCENARIO_NAMES:
+        scenario = build_scenario(name, quick=True)
+        estimate, fixed, anytime, widths = 0.0, 0.0, 0.0, []
+        for repetition in range(repetitions):
+            runs = [
+                run_repetition(
+                    scenario,
+                    repetition,
+                    HarnessConfig(surrogate_settings=surrogate_settings(), draw_index=path),
+                )
+                for path in (True, False)
+            ]
+            a, b = runs
+            estimate = max(estimate, float(np.nanmax(np.abs(a.estimate - b.estimate))))
+            for low, high in ((a.lower, b.lower), (a.upper, b.upper)):
+                fixed = max(fixed, float(np.nanmax(np.abs(low - high))))
+            for low, high in (
+                (a.anytime_lower, b.anytime_lower),
+                (a.anytime_upper, b.anytime_upper),
+            ):
+                anytime = max(anytime, float(np.nanmax(np.abs(low - high))))
+            width_a = a.anytime_upper - a.anytime_lower
+            width_b = b.anytime_upper - b.anytime_lower
+            valid = np.isfinite(width_a) & np.isfinite(width_b) & (width_b > 0)
+            widths.extend((width_a[valid] / width_b[valid]).tolist())
+        rows.append(
+            {
+                "scenario": name,
+                "repetitions": str(repetitions),
+                "point estimates, max abs diff": f"{estimate:.2g}",
+                "fixed-time bounds, max abs diff": f"{fixed:.2g}",
+                "anytime bounds, max abs diff": f"{anytime:.2g}",
+                "anytime width ratio index / exact (mean / max)": (
+                    f"{np.mean(widths):.5f} / {np.max(widths):.5f}"
+                ),
+            }
+        )
+        print(_table(rows[-1:]), flush=True)
+    return rows
+
+
 def _table(rows: list[dict[str, str]]) -> str:
     head = list(rows[0])
     lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
@@ -168,6 +218,12 @@ def _commit() -> str:
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="100k and 1M items, print only")
+    parser.add_argument(
+        "--label-repetitions",
+        type=int,
+        default=10,
+        help="repetitions per quick label scenario run by both draw paths (0: skip)",
+    )
     args = parser.parse_args(argv)
     sizes = [100_000, 1_000_000] if args.quick else [100_000, 1_000_000, 10_000_000]
     started = time.monotonic()
@@ -178,6 +234,7 @@ def main(argv: list[str] | None = None) -> int:
         rows.append(measure(n, calls=300, batch_calls=batch_calls))
         print(_table(rows[-1:]), flush=True)
     table = _table(rows)
+    labels = label_check(args.label_repetitions) if args.label_repetitions else []
     body = "\n".join(
         [
             "## Draws: draw index beside draw_batch",
@@ -200,6 +257,21 @@ def main(argv: list[str] | None = None) -> int:
             "",
             table,
         ]
+        + (
+            [
+                "",
+                "The label benchmark with both draw paths (`HarnessConfig.draw_index`), each "
+                "repetition of the quick scenarios run twice on the same seeds: draws "
+                "through the index (as the server makes them) and through `select`'s "
+                "whole-candidate pass (as before). Every budget and method of "
+                "`benchmarks/labels.py`; the anytime width ratio is over every draw "
+                "count of the anytime paths.",
+                "",
+                _table(labels),
+            ]
+            if labels
+            else []
+        )
     )
     print()
     print(body)

@@ -130,6 +130,10 @@ class HarnessConfig:
     usefulness: UsefulnessRule | None = None
     # Which proposals to run besides leadline's (experiments skip the others to save time).
     with_baselines: bool = True
+    # leadline's draws through the draw index, as the server makes them (False: through
+    # ``select``'s whole-candidate pass, the path before the index; same draws, exact
+    # instead of conservative correction ranges; benchmarks/draws.py compares them).
+    draw_index: bool = True
 
     def __post_init__(self) -> None:
         if not self.budgets or list(self.budgets) != sorted(set(self.budgets)):
@@ -171,8 +175,9 @@ class _Run:
     """One sequential run (one proposal) over the pool, logged in the service's ledger;
     every drawn item is labeled at once with its true loss."""
 
-    def __init__(self, scenario: Scenario) -> None:
+    def __init__(self, scenario: Scenario, *, draw_index: bool = True) -> None:
         self.scenario = scenario
+        self.draw_index = draw_index
         self.ledger = DrawLedger()
         self.labeled = np.zeros(scenario.pool_size, dtype=bool)
         self.sums_at: dict[int, PlugInSums] = {}
@@ -194,7 +199,7 @@ class _Run:
     ) -> None:
         """``size`` draws among the unlabeled items: the service's selection, then labels."""
         scenario = self.scenario
-        if proposal is None:
+        if proposal is None and self.draw_index:
             # The service's path: the pool's draw index, built once per surrogate and
             # control variate (as at a refit); the drawn items leave it. Same draws as
             # ``select`` over the unlabeled items on the same generator.
@@ -222,15 +227,15 @@ class _Run:
             )
             rows = selection.positions
         else:
-            chosen: Proposal = proposal
             candidates = np.flatnonzero(~self.labeled)
+            rule = None if proposal is None else _rule(proposal, candidates, done)
             selection = select(
                 _subset(scores, candidates),
                 size,
                 reliance=reliance,
                 loss_bound=scenario.spec.bound,
                 rng=rng,
-                rule=lambda seen: chosen(seen, candidates, done),
+                rule=rule,
             )
             rows = candidates[selection.positions]
         start = len(self.ledger)
@@ -265,6 +270,12 @@ class _Run:
     @property
     def rows(self) -> np.ndarray:
         return self.ledger.row.view
+
+
+def _rule(
+    proposal: Proposal, candidates: np.ndarray, done: int
+) -> Callable[[SurrogateScores], np.ndarray]:
+    return lambda seen: proposal(seen, candidates, done)
 
 
 def _batches(config: HarnessConfig) -> list[int]:
@@ -379,7 +390,7 @@ def _sequential_run(
     scores current at draw m (fitted on labels before m only), ``reliance_for()`` the
     reliance (control variate and floor) in force for the next batch. ``proposal`` None
     is the service's usefulness."""
-    run = _Run(scenario)
+    run = _Run(scenario, draw_index=config.draw_index)
     done = 0
     version = 0
     scores = surrogate_for(0, run)

@@ -17,8 +17,9 @@ The server draws through the core's ``DrawIndex`` instead of :func:`select`'s
 whole-candidate pass: :func:`build_index` applies the same control variate, usefulness and
 reach once per refit (its state lives with the scores in ``PoolData``), :func:`index_rows`
 adds items ingested between refits, and :func:`select_from` makes the draws in
-O(k log N). Both paths give the same draws on the same seed (tests/service/
-test_draw_ledger.py); the index's correction ranges are conservative (docs/estimation.md).
+O(k log N). Both paths give the same draws on the same seed (tests/core/test_draw_index.py,
+tests/service/test_indexed_draws.py); the index's correction ranges are conservative
+(docs/estimation.md).
 Sums kept up to date draw by draw replace the full passes of :meth:`DrawLedger.terms` and
 :meth:`DrawLedger.plug_in_sums`.
 """
