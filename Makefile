@@ -7,7 +7,7 @@ PY := $(VENV)/bin/python
 PROTO_DIR := proto
 PROTO_OUT := proto/leadline/v1
 
-.PHONY: demo test lint format proto bench bench-quick bench-system bench-system-quick bench-ingest clean
+.PHONY: demo test lint format proto bench bench-quick bench-system bench-system-quick bench-ingest bench-draws clean
 
 $(PY):
 	$(PYTHON) -c 'import sys; assert sys.version_info >= (3, 11), "leadline needs Python >= 3.11, found " + sys.version'
@@ -76,6 +76,11 @@ bench-system-quick: $(VENV)/.installed-test
 # Ingest and restart at 100k and 1M items beside bare sqlite3 on the same rows.
 bench-ingest: $(VENV)/.installed-test
 	$(PY) benchmarks/ingest.py
+
+# Draw index vs draw_batch at 100k, 1M and 10M items, plus the label benchmark's quick
+# scenarios through both draw paths (BENCHMARKS.md, draws section).
+bench-draws: $(VENV)/.installed-test
+	$(PY) benchmarks/draws.py
 
 clean:
 	rm -rf $(VENV) build dist *.egg-info .pytest_cache .mypy_cache .ruff_cache

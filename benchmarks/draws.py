@@ -221,7 +221,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument(
         "--label-repetitions",
         type=int,
-        default=10,
+        default=5,
         help="repetitions per quick label scenario run by both draw paths (0: skip)",
     )
     args = parser.parse_args(argv)
