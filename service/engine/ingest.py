@@ -72,6 +72,7 @@ def append_items(
     cold: SurrogateScores,
     current: SurrogateScores,
 ) -> None:
+    start = pool.data.item_count
     pool.data.item_ids.extend(item_ids)
     pool.data.payload_refs.extend(payload_refs)
     pool.data.features.extend(features)
