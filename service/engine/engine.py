@@ -50,7 +50,7 @@ from leadline.service.engine.scopes import Scope
 from leadline.service.engine.writes import NO_CALL, PoolWrites, WriteCall, combine
 from leadline.service.errors import AlreadyExists, InvalidArgument, NotFound, Unavailable
 from leadline.service.estimation import BoundKind, EstimatorMode
-from leadline.service.store import Database
+from leadline.service.store import Database, score_cache
 from leadline.service.store import records as store
 from leadline.service.store.records import RememberedRequest, Write
 from leadline.v1.rules import gate_confidence_problem
@@ -336,6 +336,7 @@ class Engine:
         with self._pools_lock:
             if self._pools.get(pool_id) is pool:
                 del self._pools[pool_id]
+        score_cache.drop_scores(self._db.data_dir, pool_id)
         _LOG.info("deleted pool %s", pool_id)
 
     # ------------------------------------------------------------------------------------

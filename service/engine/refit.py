@@ -57,7 +57,7 @@ from leadline.service.estimation import (
     fit_surrogate,
     worst_squared_deviation_of,
 )
-from leadline.service.store import Database
+from leadline.service.store import Database, score_cache
 from leadline.service.store import records as store
 
 __all__ = [
@@ -281,10 +281,12 @@ class Refits:
         reliance = None
         try:
             surrogate, scores, reliance = self._fit(pool, job)
-            if not self._save(pool, job, surrogate, reliance):
+            digest = self._save(pool, job, surrogate, reliance)
+            if digest is None:
                 return False
             if not self._swap(pool, job, surrogate, scores, reliance):
                 return False
+            self._keep_scores(pool, digest, scores)
         except Exception:
             _LOG.exception("refit of pool %s (version %d) failed", pool.pool_id, job.version)
             with pool.lock:
@@ -388,9 +390,10 @@ class Refits:
 
     def _save(
         self, pool: PoolState, job: _Snapshot, surrogate: Surrogate, reliance: Reliance
-    ) -> bool:
-        """Persist the version with its reliance on the pool's lane; False if the pool
-        moved on (closed, deleted, reloaded) or the write failed (the pool reloads)."""
+    ) -> str | None:
+        """Persist the version with its reliance on the pool's lane; returns the saved
+        bytes' digest (``score_cache.model_digest``), or None if the pool moved on
+        (closed, deleted, reloaded) or the write failed (the pool reloads)."""
         blob = surrogate.to_bytes()
         with pool.lock:
             if (
@@ -401,7 +404,7 @@ class Refits:
             ):
                 # Shutting down: the fit is dropped and redone after the next start. A
                 # reload since the fit began: its labels may include unsaved ones.
-                return False
+                return None
             future = self._db.submit(
                 store.insert_model(
                     pool.pool_id,
@@ -420,8 +423,24 @@ class Refits:
             # fit is redone on the saved labels when due.
             with contextlib.suppress(Unavailable):
                 self._writes.recover(pool, job.epoch, error)
-            return False
-        return True
+            return None
+        return score_cache.model_digest(blob)
+
+    def _keep_scores(self, pool: PoolState, digest: str, scores: ScoreColumns) -> None:
+        """Write the adopted scores beside the database so a restart need not rescore
+        (``score_cache``; rows below ``scores.size`` never change once written)."""
+        n = scores.size
+        score_cache.save_scores(
+            self._db.data_dir,
+            pool.pool_id,
+            digest,
+            score_cache.CachedScores(
+                expected_loss=scores.expected_loss[:n],
+                second_moment=scores.second_moment[:n],
+                spread=scores.spread[:n],
+                worst_deviation=scores.worst_deviation[:n],
+            ),
+        )
 
     def _swap(
         self,

@@ -31,14 +31,22 @@ from concurrent.futures import Future
 from dataclasses import dataclass
 from typing import Any, NoReturn
 
+import numpy as np
+
 from leadline.service.config import ServerConfig
 from leadline.service.engine import ingest
 from leadline.service.engine.ingest import now_ms
 from leadline.service.engine.pool import PoolSettings, PoolState, RememberedCall
 from leadline.service.engine.results import encode
 from leadline.service.errors import InvalidArgument, NotFound, Unavailable
-from leadline.service.estimation import DEFAULT_FLOOR, Reliance, Surrogate
-from leadline.service.store import Database, EarlierWriteFailed
+from leadline.service.estimation import (
+    DEFAULT_FLOOR,
+    Reliance,
+    Surrogate,
+    SurrogateScores,
+    concatenate_scores,
+)
+from leadline.service.store import Database, EarlierWriteFailed, score_cache
 from leadline.service.store import records as store
 from leadline.service.store.records import RememberedRequest
 
@@ -308,12 +316,18 @@ class PoolWrites:
                 pool, rows.item_ids, rows.features, rows.outputs, rows.labels, rows.segments
             )
         model = store.load_latest_model(reader, settings.pool_id)
+        cached: score_cache.CachedScores | None = None
         if model is not None:
             _, _, blob, reliance = model
             if reliance:
                 pool.data.reliance = Reliance(**json.loads(reliance))
             pool.data.surrogate = Surrogate.from_bytes(pool.spec, blob)
+            # The scores the last refit wrote for exactly this surrogate, if intact.
+            cached = score_cache.load_scores(
+                self._db.data_dir, settings.pool_id, score_cache.model_digest(blob)
+            )
         scoring = 0.0
+        reused = 0
         for chunk in store.load_items(
             reader,
             settings.pool_id,
@@ -322,11 +336,11 @@ class PoolWrites:
         ):
             scoring -= time.monotonic()
             cold = pool.cold.score(chunk.features, chunk.outputs)
-            current = (
-                cold
-                if pool.data.surrogate is pool.cold
-                else pool.data.surrogate.score(chunk.features, chunk.outputs)
-            )
+            if pool.data.surrogate is pool.cold:
+                current = cold
+            else:
+                current, taken = _current_scores(pool, chunk.features, chunk.outputs, cached)
+                reused += taken
             scoring += time.monotonic()
             ingest.append_items(
                 pool,
@@ -351,7 +365,7 @@ class PoolWrites:
         pool.last_fit_time = time.monotonic()
         _LOG.info(
             "loaded pool %s: %d items, %d validation items, %d draws, surrogate version %d"
-            " in %.2f s (scoring the items %.2f s)",
+            " in %.2f s (scoring the items %.2f s, %d scores from the score file)",
             settings.pool_id,
             pool.data.item_count,
             pool.data.validation_count,
@@ -359,6 +373,7 @@ class PoolWrites:
             pool.data.surrogate_version,
             time.monotonic() - started,
             scoring,
+            reused,
         )
         return pool
 
@@ -426,3 +441,32 @@ class PoolWrites:
             _LOG.info("forgot %d request ids older than the retention", pruned)
         self.pruned_requests += pruned
         return pruned
+
+
+def _current_scores(
+    pool: PoolState,
+    features: np.ndarray,
+    outputs: np.ndarray,
+    cached: score_cache.CachedScores | None,
+) -> tuple[SurrogateScores, int]:
+    """The scores under the pool's surrogate of the rows about to be appended: from the
+    score file for the rows it covers, scored for the rest; and how many came from the
+    file. The file holds what the surrogate gave these rows at its refit (the same trees
+    on the same rows), so a restart's estimates are the same either way."""
+    start = pool.data.item_count
+    n = features.shape[0]
+    surrogate = pool.data.surrogate
+    covered = 0 if cached is None else max(0, min(n, cached.rows - start))
+    if cached is None or covered == 0:
+        return surrogate.score(features, outputs), 0
+    stop = start + covered
+    taken = SurrogateScores(
+        expected_loss=cached.expected_loss[start:stop],
+        residual_second_moment=cached.second_moment[start:stop],
+        spread=cached.spread[start:stop],
+        worst_squared_deviation=cached.worst_deviation[start:stop],
+    )
+    if covered == n:
+        return taken, covered
+    rest = surrogate.score(features[covered:], outputs[covered:])
+    return concatenate_scores([taken, rest]), covered

@@ -6,6 +6,8 @@ A data directory holds::
     leadline.lock      locked (flock) by the running server, holds its pid
     leadline.marker    written once, when the database is first created here
     leadline.key       per-directory secret of the token holder ids (see api.auth)
+    scores/            item scores under each pool's latest surrogate (score_cache.py;
+                       derived data a restart may use instead of rescoring)
 
 :func:`lock_data_dir` takes an exclusive ``flock`` on ``leadline.lock`` for the server's
 life. The kernel drops the lock when the process ends in any way (kill -9 included), so a
