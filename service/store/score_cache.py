@@ -74,7 +74,7 @@ def save_scores(data_dir: Path, pool_id: str, digest: str, scores: CachedScores)
         arrays = [np.ascontiguousarray(getattr(scores, name)) for name in _COLUMNS]
         crc = 0
         for array in arrays:
-            crc = zlib.crc32(memoryview(array).cast("B"), crc)
+            crc = zlib.crc32(array.data, crc)
         header = json.dumps(
             {
                 "pool_id": pool_id,
@@ -89,7 +89,7 @@ def save_scores(data_dir: Path, pool_id: str, digest: str, scores: CachedScores)
         with os.fdopen(descriptor, "wb") as file:
             file.write(_MAGIC + struct.pack("<I", len(header)) + header)
             for array in arrays:
-                file.write(memoryview(array).cast("B"))
+                file.write(array.data)
         os.replace(temporary, path)
     except OSError as error:
         _LOG.warning("pool %s: score file not written (%s); a restart will rescore", pool_id, error)
