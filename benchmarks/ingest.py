@@ -79,7 +79,7 @@ NUM_CLASSES = 10
 BATCH_ROWS = 2_000
 SEED = 20_261_202
 _LOADED = re.compile(
-    r"loaded pool \S+: (\d+) items, .* in ([0-9.]+) s \(scoring the items ([0-9.]+) s\)"
+    r"loaded pool \S+: (\d+) items, .* in ([0-9.]+) s \(scoring the items ([0-9.]+) s[,)]"
 )
 _CHECKED = re.compile(r"quick_check of \S+: ok in ([0-9.]+) s")
 
