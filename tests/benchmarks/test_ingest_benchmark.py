@@ -16,7 +16,8 @@ def test_one_size_reports_ingest_restart_and_stages(tmp_path: Path) -> None:
     assert all(seconds > 0 for seconds in ingest.leadline + ingest.bare_chunks)
     assert restart.items == 4_500
     assert restart.surrogate_version >= 1
-    assert 0 < restart.scoring <= restart.pool_load < restart.spawn_to_serving
+    # The restart takes the refit's scores from the score file: scoring may round to 0.
+    assert 0 <= restart.scoring <= restart.pool_load < restart.spawn_to_serving
     assert restart.bare_read > 0
     assert restart.bare_row_read > 0
     assert list(figures.stages) == [
