@@ -90,6 +90,7 @@ def append_items(
     pool.data.status.extend(np.full(len(item_ids), AVAILABLE, dtype=np.int8))
     pool.data.item_draw.extend(np.full(len(item_ids), -1, dtype=np.int64))
     pool.data.index_items(start, loss_bound=pool.loss_bound)
+    pool.data.sums_items_added()
 
 
 def apply_batch(

@@ -120,6 +120,7 @@ def submit(
         losses = np.asarray(pool.spec.losses(outputs, typed), dtype=np.float64)
         draws.set_labels(indices, values, losses, time_ms=now)
         data.status.view[rows] = ITEM_LABELED
+        data.sums_rows_changed(rows)
         changed.extend(indices.tolist())
     for index, reason in to_skip:
         draws.skip(index, reason, time_ms=now)

@@ -19,9 +19,10 @@ reach once per refit (its state lives with the scores in ``PoolData``), :func:`i
 adds items ingested between refits, and :func:`select_from` makes the draws in
 O(k log N). Both paths give the same draws on the same seed (tests/core/test_draw_index.py,
 tests/service/test_indexed_draws.py); the index's correction ranges are conservative
-(docs/estimation.md).
-Sums kept up to date draw by draw replace the full passes of :meth:`DrawLedger.terms` and
-:meth:`DrawLedger.plug_in_sums`.
+(docs/estimation.md). The full passes of :meth:`DrawLedger.terms` and
+:meth:`DrawLedger.plug_in_sums` serve event-time windows and stand as the reference for
+the whole pool and segments, whose estimates take their item sums from the pool's running
+sums (:mod:`leadline.service.engine.sums`) through :meth:`DrawLedger.logged_terms`.
 """
 
 from __future__ import annotations
@@ -277,6 +278,7 @@ class DrawLedger:
         for name in _TEXTS:
             setattr(self, name, [])
         self.remaining_by_segment: list[np.ndarray] = []
+        self._remaining_of_segment: dict[int, Column] = {}
 
     def __len__(self) -> int:
         return self.row.size
@@ -460,22 +462,80 @@ class DrawLedger:
             correction_low = self.correction_low.view.copy()
             correction_high = self.correction_high.view.copy()
             second_moment = self.second_moment.view.copy()
-            if segment < 0:
-                remaining = self.remaining_expected_loss.view.copy()
-            else:
-                remaining = np.array(
+            remaining = self._logged_remaining(segment)
+        return self._draw_terms(
+            expected=expected,
+            remaining=remaining,
+            late_count=late_count,
+            late_expected_loss=late_g0,
+            in_scope=in_scope,
+            correction_low=correction_low,
+            correction_high=correction_high,
+            second_moment=second_moment,
+        )
+
+    def logged_terms(
+        self,
+        *,
+        in_scope: np.ndarray | None,
+        late_count: np.ndarray,
+        late_expected_loss: np.ndarray,
+        segment: int = -1,
+    ) -> DrawTerms:
+        """``DrawTerms`` of the whole pool or of ``segment`` from what each draw logged,
+        given the scope's late terms (:class:`~leadline.service.engine.sums.RunningSums`
+        keeps them without a pass over the items): the same terms as :meth:`terms`
+        (``window`` False) up to the rounding of the late sums. ``in_scope`` None: every
+        draw is in scope."""
+        return self._draw_terms(
+            expected=self.expected_loss.view.copy(),
+            remaining=self._logged_remaining(segment),
+            late_count=late_count,
+            late_expected_loss=late_expected_loss,
+            in_scope=np.ones(len(self), dtype=bool) if in_scope is None else in_scope,
+            correction_low=self.correction_low.view.copy(),
+            correction_high=self.correction_high.view.copy(),
+            second_moment=self.second_moment.view.copy(),
+        )
+
+    def _logged_remaining(self, segment: int) -> np.ndarray:
+        """The remaining items' summed control variate logged at each draw (whole pool,
+        or ``segment``'s share)."""
+        if segment < 0:
+            return self.remaining_expected_loss.view.copy()
+        # What a draw logged never changes: each segment's column is read from the
+        # per-draw arrays once, then only for draws made since.
+        column = self._remaining_of_segment.setdefault(segment, Column(np.float64))
+        if column.size < len(self):
+            column.extend(
+                np.array(
                     [
                         float(sums[segment]) if segment < sums.shape[0] else 0.0
-                        for sums in self.remaining_by_segment
+                        for sums in self.remaining_by_segment[column.size :]
                     ],
                     dtype=np.float64,
                 )
+            )
+        return column.view.copy()
+
+    def _draw_terms(
+        self,
+        *,
+        expected: np.ndarray,
+        remaining: np.ndarray,
+        late_count: np.ndarray,
+        late_expected_loss: np.ndarray,
+        in_scope: np.ndarray,
+        correction_low: np.ndarray,
+        correction_high: np.ndarray,
+        second_moment: np.ndarray | None,
+    ) -> DrawTerms:
         labeled = self.status.view == DrawStatus.LABELED
         return DrawTerms(
             probability=self.probability.view.copy(),
             expected_loss=np.asarray(expected, dtype=np.float64),
             remaining_expected_loss=np.asarray(remaining, dtype=np.float64),
-            late_expected_loss=np.asarray(late_g0, dtype=np.float64),
+            late_expected_loss=np.asarray(late_expected_loss, dtype=np.float64),
             late_count=np.asarray(late_count, dtype=np.float64),
             in_scope=np.asarray(in_scope, dtype=bool),
             status=core_status(self.status.view),
@@ -485,6 +545,14 @@ class DrawLedger:
             residual_second_moment=second_moment,
             remaining_count=self.remaining_count.view.astype(np.float64),
         )
+
+    def labeled_loss_sum(self, in_scope: np.ndarray | None = None) -> float:
+        """The summed loss of the labeled draws (of those ``in_scope`` marks, bool over the
+        draws)."""
+        labeled = self.status.view == DrawStatus.LABELED
+        if in_scope is not None:
+            labeled &= in_scope
+        return float(self.loss.view[labeled].sum())
 
     def plug_in_sums(
         self,

@@ -25,6 +25,7 @@ from leadline.service.draws import DrawStatus
 from leadline.service.engine.columns import Column
 from leadline.service.engine.item_ids import ItemIds
 from leadline.service.engine.ledger import DrawLedger, build_index, index_rows
+from leadline.service.engine.sums import RunningSums
 from leadline.service.estimation import (
     DEFAULT_FLOOR,
     DrawIndex,
@@ -145,6 +146,9 @@ class PoolData:
         self.segment_names: list[str] = []
         self.segment_codes: dict[str, int] = {}
         self.draws = DrawLedger()
+        #: Sums over the items kept up to date by the three calls below (items added,
+        #: rows changed, scores replaced), so a fresh estimate needs no pass over them.
+        self.sums = RunningSums(labeled_status=ITEM_LABELED)
         self.assignments: dict[str, int] = {}
         # Validation items: labeled rows from outside the pool that only the surrogate
         # sees (never drawn, never in an estimate, a scope or the item count).
@@ -261,6 +265,39 @@ class PoolData:
         item_status[status == DrawStatus.SKIPPED] = ITEM_SKIPPED
         self.status.view[rows] = item_status
         self.item_draw.view[rows] = np.arange(start, start + rows.shape[0])
+        self.sums_rows_changed(rows[item_status == ITEM_LABELED])
+
+    def sums_items_added(self) -> None:
+        """Keep :attr:`sums` up to date after items were appended to the columns."""
+        self.sums.add_items(
+            g0=self.g0.view,
+            expected_loss=self.expected_loss.view,
+            second_moment=self.second_moment.view,
+            status=self.status.view,
+            segment=self.segment.view,
+            num_segments=len(self.segment_names),
+        )
+
+    def sums_rows_changed(self, rows: np.ndarray) -> None:
+        """Keep :attr:`sums` up to date after items ``rows`` changed status (labeled)."""
+        if rows.shape[0]:
+            self.sums.refresh_rows(
+                rows,
+                expected_loss=self.expected_loss.view,
+                second_moment=self.second_moment.view,
+                status=self.status.view,
+                segment=self.segment.view,
+            )
+
+    def sums_scores_replaced(self) -> None:
+        """Recompute :attr:`sums` after every item's scores were replaced (a refit)."""
+        self.sums.rebuild(
+            expected_loss=self.expected_loss.view,
+            second_moment=self.second_moment.view,
+            status=self.status.view,
+            segment=self.segment.view,
+            num_segments=len(self.segment_names),
+        )
 
     def add_segments(self, names: list[str]) -> tuple[list[int], list[str]]:
         """Codes for new segment names, in first-seen order; returns the new (codes, names)."""

@@ -484,6 +484,7 @@ class Refits:
                 scores.worst_deviation,
                 size=scores.size,
             )
+            data.sums_scores_replaced()
             data.surrogate = surrogate
             data.reliance = reliance
             data.install_index(prepared, loss_bound=pool.loss_bound)

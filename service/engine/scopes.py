@@ -17,7 +17,7 @@ from leadline.service.engine.pool import ITEM_LABELED, PoolState
 from leadline.service.errors import FailedPrecondition, NotFound
 from leadline.service.estimation import DrawTerms, PlugInSums
 
-__all__ = ["Scope", "ScopeInputs", "build_scope_inputs"]
+__all__ = ["Scope", "ScopeInputs", "build_scope_inputs", "build_window_inputs"]
 
 
 @dataclass(frozen=True)
@@ -44,16 +44,18 @@ class ScopeInputs:
 
 
 def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
-    """The core's inputs for ``scope``; call with ``pool.lock`` held. The terms and the
-    plug-in sums come from the pool's ledger (:mod:`leadline.service.engine.ledger`).
+    """The core's inputs for ``scope``; call with ``pool.lock`` held.
+
+    The whole pool and a segment read the pool's running sums
+    (:mod:`leadline.service.engine.sums`) and the draw ledger: O(draws * log N + blocks *
+    segments), no pass over the items. A scope with an event-time window is one pass over
+    the items (:func:`build_window_inputs`).
 
     ``scope`` comes checked from the API layer (``validation.check_scope``: a window is
     [start, end) with start < end). Raises NotFound for an unknown segment and
     FailedPrecondition when the scope holds no items.
     """
     data = pool.data
-    n = data.item_count
-    mask: np.ndarray | None = None
     code = -1
     if scope.segment:
         if scope.segment not in data.segment_codes:
@@ -63,6 +65,48 @@ def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
                 field="segment",
             )
         code = data.segment_codes[scope.segment]
+    if scope.has_window:
+        return build_window_inputs(pool, scope, code)
+    sums = data.sums
+    draws = data.draws
+    scope_size = sums.size if code < 0 else sums.segment_size(code)
+    if scope_size == 0:
+        raise _empty(pool, scope)
+    marks = draws.arrival_mark.view
+    in_scope = None if code < 0 else data.segment.view[draws.row.view] == code
+    late_count, late_expected_loss = sums.late(marks, code)
+    terms = draws.logged_terms(
+        in_scope=in_scope,
+        late_count=late_count,
+        late_expected_loss=late_expected_loss,
+        segment=code,
+    )
+    unlabeled = sums.unlabeled(code)
+    plug_in = PlugInSums(
+        scope_size=scope_size,
+        labeled_loss_sum=draws.labeled_loss_sum(in_scope),
+        unlabeled_expected_loss_sum=unlabeled.expected_loss,
+        unlabeled_second_moment_sum=unlabeled.second_moment,
+        unlabeled_count=unlabeled.count,
+    )
+    unreached = sums.arrived_from(int(marks[-1]), code) if len(draws) else scope_size
+    return ScopeInputs(
+        terms=terms,
+        sums=plug_in,
+        items_in_scope=scope_size,
+        items_unreached=int(unreached),
+        surrogate_version=data.surrogate_version,
+    )
+
+
+def build_window_inputs(pool: PoolState, scope: Scope, code: int) -> ScopeInputs:
+    """The core's inputs for a scope with an event-time window (of segment ``code``, -1:
+    any): one pass over the items, since event time does not follow arrival order. Also the
+    reference the running sums are checked against (with ``scope`` windowless)."""
+    data = pool.data
+    n = data.item_count
+    mask: np.ndarray | None = None
+    if code >= 0:
         mask = data.segment.view == code
     if scope.has_window:
         times = data.event_time_ms.view
@@ -74,11 +118,7 @@ def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
         mask = window if mask is None else mask & window
     scope_size = n if mask is None else int(np.count_nonzero(mask))
     if scope_size == 0:
-        raise FailedPrecondition(
-            f"pool {pool.pool_id!r} has no items in scope (segment = {scope.segment!r}, "
-            f"window = [{scope.start_time_ms}, {scope.end_time_ms})).",
-            field="segment" if not scope.has_window else "start_time_ms",
-        )
+        raise _empty(pool, scope)
     draws = data.draws
     terms = draws.terms(
         item_count=n,
@@ -105,4 +145,12 @@ def build_scope_inputs(pool: PoolState, scope: Scope) -> ScopeInputs:
         items_in_scope=scope_size,
         items_unreached=int(unreached),
         surrogate_version=data.surrogate_version,
+    )
+
+
+def _empty(pool: PoolState, scope: Scope) -> FailedPrecondition:
+    return FailedPrecondition(
+        f"pool {pool.pool_id!r} has no items in scope (segment = {scope.segment!r}, "
+        f"window = [{scope.start_time_ms}, {scope.end_time_ms})).",
+        field="segment" if not scope.has_window else "start_time_ms",
     )
