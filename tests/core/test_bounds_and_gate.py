@@ -22,6 +22,11 @@ from leadline.service.estimation import (
     lure_weights,
 )
 from leadline.service.estimation.bounds import (
+    BET_TRUNCATION,
+    _base_bets,
+    _excluded_edge,
+    _fixed_bets,
+    betting_fixed_lower_bound,
     betting_lower_bound,
     betting_lower_path,
     empirical_bernstein_lower_path,
@@ -65,6 +70,61 @@ def test_betting_final_bound_refines_the_grid_path_and_is_not_smaller():
     assert np.all(np.diff(path) >= 0)  # a running intersection only tightens
     assert path[-1] <= final <= x.mean()
     assert final - path[-1] < 0.01
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_bound_edges_sit_at_the_root_of_their_capital_margin(seed):
+    """The final betting bounds are the root of their log-capital margin (log K(r) -
+    log(1/alpha), written out here from the module docstring's formula), checked against
+    scipy.optimize.brentq (an outside root finder) on that margin; the value returned is
+    itself excluded (margin >= 0), as plain bisection's was."""
+    from scipy.optimize import brentq
+
+    rng = np.random.default_rng(seed)
+    m = int(rng.integers(20, 1500))
+    lo = -rng.uniform(0.0, 4.0, m)
+    hi = rng.uniform(1.0, 5.0, m)
+    x = np.clip(rng.normal(0.3, 0.8, m), lo, hi)
+    alpha, prior = 0.05, (0.3, 0.25)
+    threshold = math.log(1.0 / alpha)
+
+    def logs(r, bets):
+        with np.errstate(divide="ignore"):
+            cap = np.where(r - lo > 0.0, BET_TRUNCATION / (r - lo), np.inf)
+        return np.log1p(np.minimum(bets, cap) * (x - r))
+
+    fixed_bets = _fixed_bets(x, lo, hi, alpha, prior, np.ones(m))
+    anytime_bets = _base_bets(x, lo, hi, alpha, prior)
+    for bound, margin in (
+        (betting_fixed_lower_bound, lambda r: np.sum(logs(r, fixed_bets)) - threshold),
+        (betting_lower_bound, lambda r: np.max(np.cumsum(logs(r, anytime_bets))) - threshold),
+    ):
+        edge = bound(x, lo, hi, alpha=alpha, support=(0.0, 1.0), prior=prior)
+        if margin(0.0) < 0.0:
+            assert edge == 0.0  # nothing excluded
+            continue
+        reference = brentq(margin, 0.0, 1.0, xtol=1e-15, rtol=4 * np.finfo(float).eps)
+        assert margin(edge) >= 0.0
+        assert edge == pytest.approx(reference, rel=1e-12, abs=1e-14)
+
+
+@pytest.mark.parametrize("root", [1e-9, 0.123456789, 0.5, 1.0 - 1e-9])
+def test_edge_search_finds_the_root_of_smooth_and_kinked_margins(root):
+    """Against scipy.optimize.brentq; a margin with a kink (slope 1 then 1e-6) must not
+    slow the search below bisection's precision."""
+    from scipy.optimize import brentq
+
+    def smooth(r):
+        return 40.0 * math.log((1.0 + root) / (1.0 + r))
+
+    def kinked(r):
+        return (root - r) * (1.0 if r < root else 1e-6)
+
+    for margin in (smooth, kinked):
+        edge = _excluded_edge(margin, (0.0, 1.0))
+        reference = brentq(margin, 0.0, 1.0, xtol=1e-15, rtol=4 * np.finfo(float).eps)
+        assert margin(edge) >= 0.0
+        assert edge == pytest.approx(reference, rel=1e-12, abs=1e-15)
 
 
 def test_empirical_bernstein_sequence_is_valid_and_wider_than_betting():
