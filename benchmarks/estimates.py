@@ -144,7 +144,7 @@ def label_next(pool: PoolState, labels: np.ndarray, *, count: int = 1) -> None:
         submissions = [
             LabelInput(
                 assignment_id=info.assignment_id,
-                class_label=int(labels[pool.data.index[info.item_id]]),
+                class_label=int(labels[int(info.item_id.rsplit("-", 1)[1])]),
             )
             for info in infos
         ]
