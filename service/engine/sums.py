@@ -94,6 +94,9 @@ class RunningSums:
         last = float(self._prefix.view[-1])
         self._prefix.extend(np.cumsum(np.concatenate([[last], new_g0]))[1:])
         codes = segment[start:stop]
+        if codes.size:
+            # Codes the pool has not named (a caller that skipped add_segments) still count.
+            num_segments = max(num_segments, int(codes.max()) + 1)
         while len(self._segment_rows) < num_segments:
             self._segment_rows.append(Column(np.int64))
             rows_prefix = Column(np.float64)
