@@ -230,11 +230,16 @@ class PoolData:
         return self.draw_index
 
     def index_items(self, start: int, *, loss_bound: float) -> None:
-        """Items ``start``.. (just appended, AVAILABLE, scored with the surrogate in force)
-        join the draw index, if there is one (O(r log N))."""
+        """Items ``start``.. that are still AVAILABLE (scored with the surrogate in force)
+        join the draw index, if there is one (O(r log N)). Only available ones: when a
+        prepared index is installed, items that arrived after its snapshot may have been
+        drawn meanwhile through the old index, and must not be drawn again."""
         if self.draw_index is None or start >= self.item_count:
             return
         rows = np.arange(start, self.item_count)
+        rows = rows[self.status.view[rows] == AVAILABLE]
+        if rows.size == 0:
+            return
         index_rows(
             self.draw_index,
             rows,
