@@ -8,6 +8,7 @@ risk worth measuring.
 from __future__ import annotations
 
 import contextlib
+import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -241,3 +242,18 @@ def label_round(
     )
     assert not result.errors, result.errors
     return int(result.accepted)
+
+
+def wait_for_refits(stubs: Stubs, pool: str, labeled: int, *, min_version: int = 1) -> None:
+    """Refits run in the background: wait until one covers every label (``labeled``), the
+    surrogate is at least ``min_version``, and no further refit follows within 1.5 s."""
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        got = stubs.call(stubs.pools.GetPool, pb.GetPoolRequest(name=pool))
+        if got.surrogate_version >= min_version and got.labeled_count == labeled:
+            time.sleep(1.5)
+            again = stubs.call(stubs.pools.GetPool, pb.GetPoolRequest(name=pool))
+            if again.surrogate_version == got.surrogate_version:
+                return
+        time.sleep(0.2)
+    raise AssertionError("refits did not settle within 60 s")

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import time
-
 from leadline.v1 import leadline_pb2 as pb
 from tests.service.helpers import (
     Dataset,
@@ -12,6 +10,7 @@ from tests.service.helpers import (
     classification_pool,
     item_batch,
     label_round,
+    wait_for_refits,
 )
 
 _POOL = "pools/tumours"
@@ -47,20 +46,6 @@ def _snapshot(stubs: Stubs) -> dict[str, object]:
         "gate": gate.SerializeToString(deterministic=True),
         "pools": [p.name for p in listed.pools],
     }
-
-
-def _wait_refits(stubs: Stubs, labeled: int) -> None:
-    """Refits run in the background: wait until one covers every label (version settles)."""
-    deadline = time.monotonic() + 60
-    while time.monotonic() < deadline:
-        pool = stubs.call(stubs.pools.GetPool, pb.GetPoolRequest(name=_POOL))
-        if pool.surrogate_version >= 2 and pool.labeled_count == labeled:
-            time.sleep(1.5)
-            again = stubs.call(stubs.pools.GetPool, pb.GetPoolRequest(name=_POOL))
-            if again.surrogate_version == pool.surrogate_version:
-                return
-        time.sleep(0.2)
-    raise AssertionError("refits did not settle within 60 s")
 
 
 def test_restart_restores_everything_and_estimates_are_identical(
@@ -108,7 +93,7 @@ def test_restart_restores_everything_and_estimates_are_identical(
                 pool=_POOL, labeler="vendor-a", assignment_ids=[held[1].assignment_id]
             ),
         )
-        _wait_refits(stubs, labeled)
+        wait_for_refits(stubs, _POOL, labeled, min_version=2)
         before = _snapshot(stubs)
     pool_before = pb.Pool.FromString(before["pool"])  # type: ignore[arg-type]
     assert (pool_before.labeled_count, pool_before.skipped_count, pool_before.pending_count) == (

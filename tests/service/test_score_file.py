@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import json
 import struct
-import time
 import zlib
 from pathlib import Path
 
@@ -20,6 +19,7 @@ from tests.service.helpers import (
     classification_pool,
     item_batch,
     label_round,
+    wait_for_refits,
 )
 
 _POOL = "pools/wards"
@@ -31,20 +31,6 @@ def _estimates(stubs: Stubs) -> list[bytes]:
         for mode in (pb.ESTIMATOR_MODE_SURROGATE, pb.ESTIMATOR_MODE_BALANCED)
     ]
     return [r.SerializeToString(deterministic=True) for r in replies]
-
-
-def _settle(stubs: Stubs, labeled: int) -> None:
-    """Wait until a refit covers every label and no other follows."""
-    deadline = time.monotonic() + 60
-    while time.monotonic() < deadline:
-        pool = stubs.call(stubs.pools.GetPool, pb.GetPoolRequest(name=_POOL))
-        if pool.surrogate_version >= 1 and pool.labeled_count == labeled:
-            time.sleep(1.5)
-            again = stubs.call(stubs.pools.GetPool, pb.GetPoolRequest(name=_POOL))
-            if again.surrogate_version == pool.surrogate_version:
-                return
-        time.sleep(0.2)
-    raise AssertionError("refits did not settle within 60 s")
 
 
 def _score_file(data_dir: Path) -> Path:
@@ -81,7 +67,7 @@ def test_a_restart_reads_the_score_file_and_ignores_a_damaged_one(
         stubs.call(stubs.pools.CreatePool, classification_pool("wards", data))
         stubs.call(stubs.ingest.IngestItems, item_batch("wards", data, first))
         labeled = sum(label_round(stubs, "wards", data, 10) for _ in range(2))
-        _settle(stubs, labeled)
+        wait_for_refits(stubs, _POOL, labeled)
         # Items after the last refit are not in the file: the load scores them.
         stubs.call(stubs.ingest.IngestItems, item_batch("wards", data, later))
         before = _estimates(stubs)
